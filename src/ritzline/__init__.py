@@ -1,0 +1,56 @@
+"""ritzline: spectrometer line identification.
+
+Calibrate a spectrometer against a reference lamp, find emission lines with honest
+uncertainties, identify the atomic transitions behind them from Ritz wavelengths, and
+batch-check exposures.  The public names below are imported lazily so that
+``import ritzline`` stays fast; heavy dependencies load on first use.
+"""
+
+from importlib import import_module
+from typing import TYPE_CHECKING, Any
+
+from .errors import CalibrationError, RitzlineError, SolutionFormatError, SpectrumFormatError
+
+__version__ = "0.1.0"
+
+_LAZY = {
+    "read_spectrum": "spectrum",
+    "find_lines": "peaks",
+    "transitions": "levels",
+    "blends": "levels",
+    "calibrate": "calibrate",
+    "Solution": "calibrate",
+    "identify_lines": "identify",
+    "Identification": "identify",
+    "check_exposures": "check",
+}
+
+__all__ = [
+    "CalibrationError",
+    "RitzlineError",
+    "SolutionFormatError",
+    "SpectrumFormatError",
+    "__version__",
+    *sorted(_LAZY),
+]
+
+if TYPE_CHECKING:  # pragma: no cover
+    from .calibrate import Solution, calibrate
+    from .check import check_exposures
+    from .identify import Identification, identify_lines
+    from .levels import blends, transitions
+    from .peaks import find_lines
+    from .spectrum import read_spectrum
+
+
+def __getattr__(name: str) -> Any:
+    module = _LAZY.get(name)
+    if module is None:
+        raise AttributeError(f"module 'ritzline' has no attribute {name!r}")
+    value = getattr(import_module(f".{module}", __name__), name)
+    globals()[name] = value
+    return value
+
+
+def __dir__() -> list[str]:
+    return sorted(set(globals()) | set(_LAZY))

@@ -1,0 +1,40 @@
+"""Locate the data shipped with ritzline (line lists, lamp definitions).
+
+In a built wheel the top-level ``line_lists/`` and ``calibration/`` folders are mapped to
+``ritzline/_data/``; in an editable install or a source checkout they stay at the project
+root.  Every reader goes through :func:`data_path` so both layouts work.
+"""
+
+from functools import cache
+from pathlib import Path
+
+__all__ = ["data_path"]
+
+_FOLDERS = ("line_lists", "calibration")
+
+
+@cache
+def _root(folder: str) -> Path:
+    if folder not in _FOLDERS:
+        raise ValueError(f"unknown data folder {folder!r}; expected one of {_FOLDERS}")
+    package = Path(__file__).resolve().parent
+    for candidate in (package / "_data" / folder, package.parents[1] / folder):
+        if candidate.is_dir():
+            return candidate
+    raise FileNotFoundError(
+        f"ritzline data folder {folder!r} not found next to the package or at the project "
+        "root; reinstall ritzline"
+    )
+
+
+def data_path(folder: str, *parts: str) -> Path:
+    """Return the path of a shipped data file, e.g. ``data_path("line_lists", "Ne_I.lines.ecsv")``.
+
+    Parameters
+    ----------
+    folder : {"line_lists", "calibration"}
+        Top-level data folder.
+    *parts : str
+        Path components inside that folder.
+    """
+    return _root(folder).joinpath(*parts)
