@@ -12,7 +12,14 @@ from dataclasses import dataclass, field
 import numpy as np
 from scipy.special import erf
 
-__all__ = ["Instrument", "integrated_gaussians", "observe", "random_instrument"]
+__all__ = [
+    "Instrument",
+    "LampTruth",
+    "integrated_gaussians",
+    "lamp_exposure",
+    "observe",
+    "random_instrument",
+]
 
 _SQRT2 = np.sqrt(2.0)
 FWHM_PER_SIGMA = 2.0 * np.sqrt(2.0 * np.log(2.0))
@@ -172,3 +179,189 @@ def random_instrument(
         background=float(rng.uniform(20.0, 500.0)),
         saturation=65535.0,
     )
+
+
+# ---- lamp exposures (calibration tests, benchmarks, drift sequences, demo) --------------
+
+
+@dataclass(frozen=True)
+class LampTruth:
+    """What :func:`lamp_exposure` rendered, for checking a calibration against it.
+
+    Arrays with one entry per listed lamp line that fell on the detector and was rendered
+    (``missing`` lines are not among them): ``wavelength`` (air nm), ``pixel``, ``flux``
+    (counts), ``snr`` (matched-filter signal-to-noise expected for the line alone),
+    ``saturated`` (peak above the saturation level), ``resolved`` (no other rendered line,
+    listed or extra, within 1.5 FWHM), ``usable`` (resolved, unsaturated, SNR >= 10) and
+    ``index`` (row in the input list).  ``missing_index`` lists the rows on the detector that
+    were left out; ``extra_pixel``/``extra_flux`` the unlisted lines added; ``spike_pixel``
+    the single-pixel hits.
+    """
+
+    instrument: Instrument
+    wavelength: np.ndarray
+    pixel: np.ndarray
+    flux: np.ndarray
+    snr: np.ndarray
+    saturated: np.ndarray
+    resolved: np.ndarray
+    usable: np.ndarray
+    index: np.ndarray
+    missing_index: np.ndarray
+    extra_pixel: np.ndarray
+    extra_flux: np.ndarray
+    spike_pixel: np.ndarray
+
+    def wavelength_at(self, pixels) -> np.ndarray:
+        """True air wavelength (nm) at pixel positions."""
+        return self.instrument.wavelength(pixels)
+
+    @property
+    def n_usable(self) -> int:
+        return int(np.count_nonzero(self.usable))
+
+
+def _lamp_reference(lamp) -> tuple[np.ndarray, np.ndarray]:
+    """(wavelength nm, intensity) of a lamp: a name / names for ``levels.lamp_lines``, or
+    anything with ``wavelength`` and ``intensity`` columns (intensity may be NaN)."""
+    if isinstance(lamp, str) or (
+        isinstance(lamp, (tuple, list)) and lamp and all(isinstance(s, str) for s in lamp)
+    ):
+        from . import levels
+
+        names = [lamp] if isinstance(lamp, str) else list(lamp)
+        wl, inten = [], []
+        for name in names:
+            table = levels.lamp_lines(name, medium="air")
+            keep = np.asarray(table["usable"], bool) if "usable" in table.colnames else True
+            wl.append(np.asarray(table["wavelength"], float)[keep])
+            inten.append(np.asarray(table["intensity"], float)[keep])
+        return np.concatenate(wl), np.concatenate(inten)
+    return np.asarray(lamp["wavelength"], float), np.asarray(lamp["intensity"], float)
+
+
+def lamp_exposure(
+    instrument: Instrument,
+    lamp,
+    rng: np.random.Generator,
+    *,
+    missing: tuple[float, float] = (0.1, 0.3),
+    extra: tuple[float, float] = (0.0, 0.3),
+    saturate: tuple[float, float] = (0.0, 0.1),
+    spikes: tuple[int, int] = (0, 5),
+    intensity_scatter: float = 0.7,
+    dynamic_range: float = 3000.0,
+) -> tuple[np.ndarray, LampTruth]:
+    """A noisy reference-lamp exposure with everything a real one gets wrong.
+
+    Parameters
+    ----------
+    instrument : Instrument
+        The spectrometer (true pixel -> air wavelength mapping, LSF, detector noise).
+    lamp : str, sequence of str, or table
+        Lamp name(s) understood by ``ritzline.levels.lamp_lines`` (only lines marked usable
+        are rendered), or any table/mapping with ``wavelength`` (air nm) and ``intensity``
+        columns; NaN intensities get the list's median.
+    rng : numpy.random.Generator
+        The only source of randomness.
+    missing : (low, high)
+        Fraction of the listed lines on the detector left out, drawn uniformly.
+    extra : (low, high)
+        Unlisted lines (impurities, ghosts) added, as a fraction of the rendered listed lines,
+        at random positions with fluxes drawn from the same distribution.
+    saturate : (low, high)
+        Fraction of the rendered lines whose peak exceeds the saturation level.
+    spikes : (low, high)
+        Number of single-pixel cosmic-ray hits, inclusive range.
+    intensity_scatter : float
+        Log-normal scatter (natural-log sigma) of the line fluxes about the listed relative
+        intensities: lamps never match the tables.
+    dynamic_range : float
+        Listed intensities are clipped to this ratio below the brightest.
+
+    Returns
+    -------
+    counts : ndarray of shape (n_pixels,)
+        ADU, noisy, clipped at ``instrument.saturation``.
+    truth : LampTruth
+    """
+    wl_all, inten_all = _lamp_reference(lamp)
+    n = instrument.n_pixels
+    fwhm = instrument.fwhm_px
+    sigma = fwhm / FWHM_PER_SIGMA
+    pix_all = instrument.pixel(wl_all)
+    on = np.flatnonzero((pix_all > -3 * fwhm) & (pix_all < n - 1 + 3 * fwhm))
+    n_drop = round(rng.uniform(*missing) * on.size)
+    drop = np.sort(rng.choice(on, size=n_drop, replace=False)) if n_drop else on[:0]
+    keep = np.setdiff1d(on, drop)
+
+    inten = inten_all.copy()
+    finite = np.isfinite(inten) & (inten > 0)
+    fill = np.median(inten[finite]) if finite.any() else 1.0
+    inten = np.where(finite, inten, fill)
+    inten = np.clip(inten / inten.max(), 1.0 / dynamic_range, None)
+    rel = inten[keep] * np.exp(rng.normal(0.0, intensity_scatter, keep.size))
+
+    n_extra = round(rng.uniform(*extra) * keep.size)
+    extra_pix = rng.uniform(0, n - 1, n_extra)
+    extra_rel = rng.choice(rel, size=n_extra) if rel.size and n_extra else np.zeros(n_extra)
+
+    # Scale fluxes so the requested fraction of lines saturates (peak = flux x peak_frac).
+    peak_frac = 1.0 / (sigma * np.sqrt(2 * np.pi))
+    all_rel = np.concatenate([rel, extra_rel])
+    sat = instrument.saturation if instrument.saturation is not None else 65535.0
+    headroom = sat - instrument.background
+    n_sat = round(rng.uniform(*saturate) * all_rel.size)
+    ranked = np.sort(all_rel)[::-1]
+    if all_rel.size == 0:
+        scale = 1.0
+    elif n_sat > 0:
+        # the n_sat-th brightest line peaks just above saturation, the next one below
+        lo = ranked[n_sat] if n_sat < ranked.size else 0.0
+        target_rel = np.sqrt(ranked[n_sat - 1] * max(lo, ranked[n_sat - 1] * 0.5))
+        scale = headroom / (target_rel * peak_frac)
+    else:
+        scale = rng.uniform(0.3, 0.9) * headroom / (ranked[0] * peak_frac)
+    flux = rel * scale
+    extra_flux = extra_rel * scale
+
+    centres = np.concatenate([pix_all[keep], extra_pix])
+    fluxes = np.concatenate([flux, extra_flux])
+    expected = integrated_gaussians(n, centres, fluxes, fwhm) + instrument.background
+    counts = observe(expected, rng, gain=instrument.gain, read_noise=instrument.read_noise)
+    n_spikes = int(rng.integers(spikes[0], spikes[1] + 1))
+    spike_pix = np.sort(rng.choice(n, size=n_spikes, replace=False)) if n_spikes else np.zeros(0)
+    if n_spikes:
+        counts[spike_pix.astype(int)] += rng.uniform(0.05, 1.0, n_spikes) * headroom
+    if instrument.saturation is not None:
+        counts = np.minimum(counts, instrument.saturation)
+
+    # Expected matched-filter SNR of each line on its own (background + read noise + shot).
+    var_bg = instrument.background / instrument.gain + instrument.read_noise**2
+    n_eff = 2.0 * np.sqrt(np.pi) * sigma
+    snr = flux / np.sqrt(n_eff * var_bg + flux / instrument.gain)
+    saturated = flux * peak_frac + instrument.background > sat
+    order = np.argsort(centres)
+    gaps = np.diff(centres[order])
+    near = np.full(centres.size, np.inf)
+    near_sorted = np.minimum(np.r_[np.inf, gaps], np.r_[gaps, np.inf])
+    near[order] = near_sorted
+    resolved = near[: keep.size] >= 1.5 * fwhm
+    inside = (pix_all[keep] >= 0) & (pix_all[keep] <= n - 1)
+    usable = resolved & ~saturated & (snr >= 10.0) & inside
+    truth = LampTruth(
+        instrument=instrument,
+        wavelength=wl_all[keep],
+        pixel=pix_all[keep],
+        flux=flux,
+        snr=snr,
+        saturated=saturated,
+        resolved=resolved,
+        usable=usable,
+        index=keep,
+        missing_index=drop,
+        extra_pixel=extra_pix,
+        extra_flux=extra_flux,
+        spike_pixel=spike_pix,
+    )
+    return counts, truth
