@@ -35,12 +35,12 @@ __all__ = [
 ]
 
 if TYPE_CHECKING:  # pragma: no cover
-    from .calibrate import Solution, calibrate
-    from .check import check_exposures
-    from .identify import Identification, identify_lines
-    from .levels import blends, transitions
-    from .peaks import find_lines
-    from .spectrum import read_spectrum
+    from .calibrate import Solution, calibrate  # noqa: F401
+    from .check import check_exposures  # noqa: F401
+    from .identify import Identification, identify_lines  # noqa: F401
+    from .levels import blends, transitions  # noqa: F401
+    from .peaks import find_lines  # noqa: F401
+    from .spectrum import read_spectrum  # noqa: F401
 
 
 def __getattr__(name: str) -> Any:
