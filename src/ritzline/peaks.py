@@ -1,0 +1,1035 @@
+"""Emission-line finder: background, noise model, matched-filter detection and batched fits.
+
+Every line is fitted as a Gaussian line-spread function integrated over each pixel, weighted
+by a Poisson + read-noise model whose variance comes from the model (not the data).  The fits
+of all lines run at once as one damped Gauss-Newton (Levenberg-Marquardt) problem on stacked
+pixel windows; lines closer than about two FWHM share a window and are fitted jointly.
+"""
+
+from __future__ import annotations
+
+import warnings
+from dataclasses import dataclass
+
+import numpy as np
+from scipy.special import chdtrc, ndtr
+
+from .errors import RitzlineError, SpectrumFormatError
+from .spectrum import spectrum_arrays
+from .synthetic import FWHM_PER_SIGMA
+
+__all__ = ["attach_wavelengths", "centroid_crlb", "find_lines", "line_crlb"]
+
+_SQRT2PI = np.sqrt(2.0 * np.pi)
+_DEFAULT_FWHM = 2.5  # px, used only when no line is bright enough to measure the LSF
+_GROUP_SEPARATION = 2.0  # lines closer than this many FWHM are fitted jointly
+_WINDOW_HALF = 2.0  # fit window half-width beyond the outer lines, in FWHM
+_MAX_COMPONENTS = 8  # a group larger than this is split at its widest gaps
+_MAX_ITER = 30
+
+
+# ---------------------------------------------------------------------------------------
+# The pixel-integrated Gaussian and its derivatives
+
+
+def _integrated(x, c, s):
+    """Fraction of a unit-flux Gaussian (centre ``c``, sigma ``s``) falling in pixel ``x``.
+
+    Returns the fraction and its derivatives with respect to ``c`` and ``s``; arrays
+    broadcast.
+    """
+    up = (x + 0.5 - c) / s
+    um = (x - 0.5 - c) / s
+    pp = np.exp(-0.5 * up * up) / _SQRT2PI
+    pm = np.exp(-0.5 * um * um) / _SQRT2PI
+    frac = ndtr(up) - ndtr(um)
+    d_c = (pm - pp) / s
+    d_s = (um * pm - up * pp) / s
+    return frac, d_c, d_s
+
+
+def line_crlb(
+    centre: float,
+    fwhm: float,
+    flux: float,
+    background: float = 0.0,
+    *,
+    gain: float = 1.0,
+    read_noise: float = 0.0,
+    half_width: float | None = None,
+    fit_background: bool = True,
+) -> dict[str, float]:
+    """Cramér-Rao lower bounds for one pixel-integrated Gaussian line.
+
+    The Fisher information is computed numerically over the pixels within ``half_width``
+    (default 6 FWHM) of the centre, for the parameters centre, sigma, flux and (when
+    ``fit_background``) a constant background, with the Poisson + read-noise variance
+    ``(model) / gain + read_noise**2`` (counts in ADU).
+
+    Parameters
+    ----------
+    centre, fwhm : float
+        Line centre and FWHM in pixels.
+    flux : float
+        Total line counts (ADU).
+    background : float
+        Background level (ADU per pixel).
+    gain : float
+        Electrons per ADU.
+    read_noise : float
+        Read noise in ADU.
+    half_width : float, optional
+        Half-width of the pixel window, in pixels.
+    fit_background : bool
+        Whether the background is an unknown of the problem.
+
+    Returns
+    -------
+    dict
+        ``pixel``, ``fwhm`` and ``flux``: the smallest standard deviations any unbiased
+        estimator can reach.
+    """
+    sigma = fwhm / FWHM_PER_SIGMA
+    hw = 6.0 * fwhm if half_width is None else half_width
+    x = np.arange(np.floor(centre - hw), np.ceil(centre + hw) + 1)
+    frac, d_c, d_s = _integrated(x, centre, sigma)
+    var = np.clip(flux * frac + background, 0, None) / gain + read_noise**2
+    cols = [flux * d_c, flux * d_s, frac]
+    if fit_background:
+        cols.append(np.ones_like(x))
+    jac = np.stack(cols, axis=1)
+    fisher = jac.T @ (jac / var[:, None])
+    cov = np.linalg.inv(fisher)
+    return {
+        "pixel": float(np.sqrt(cov[0, 0])),
+        "fwhm": float(FWHM_PER_SIGMA * np.sqrt(cov[1, 1])),
+        "flux": float(np.sqrt(cov[2, 2])),
+    }
+
+
+def centroid_crlb(centre: float, fwhm: float, flux: float, background: float = 0.0,
+                  **kwargs) -> float:
+    """Cramér-Rao bound on the centroid (pixels); see :func:`line_crlb` for the arguments."""
+    return line_crlb(centre, fwhm, flux, background, **kwargs)["pixel"]
+
+
+# ---------------------------------------------------------------------------------------
+# Preparation: arrays, dark, saturation, noise at the background, spikes, background
+
+
+@dataclass(frozen=True)
+class _Noise:
+    """Variance model ``var = a + b * (level - ref)`` (ADU^2), level = expected counts."""
+
+    a: float
+    b: float
+    ref: float
+    method: str
+
+    def variance(self, level):
+        return np.maximum(self.a + self.b * (level - self.ref), 0.05 * self.a + 1e-12)
+
+    def as_meta(self) -> dict:
+        gain = 1.0 / self.b if self.b > 0 else None
+        rn2 = self.a - self.b * self.ref
+        return {
+            "method": self.method,
+            "gain": gain,
+            "read_noise": float(np.sqrt(rn2)) if rn2 > 0 else 0.0,
+            "variance_at_background": self.a,
+            "background_level": self.ref,
+            "formula": "var = a + b*(level - background_level), b = 1/gain",
+            "a": self.a,
+            "b": self.b,
+        }
+
+
+def _as_counts(obj, n: int, what: str):
+    arr = spectrum_arrays(obj)
+    if arr.counts.size != n:
+        raise SpectrumFormatError(
+            f"the {what} has {arr.counts.size} samples but the spectrum has {n}; "
+            "give a frame of the same detector and binning"
+        )
+    return arr.counts, arr.mask
+
+
+def _detect_saturation(counts, valid) -> float | None:
+    """The saturation level, if the spectrum shows repeated maximum values (a clipped top)."""
+    if not valid.any():
+        return None
+    top = counts[valid].max()
+    n_top = int(np.count_nonzero(counts[valid] == top))
+    if n_top >= 3:
+        return float(top)
+    if n_top == 2 and top > 0 and (np.log2(top + 1) % 1 == 0 or np.log2(top) % 1 == 0):
+        return float(top)
+    return None
+
+
+def _second_diff_sigma(y, ok):
+    """Robust white-noise sigma from the second difference (MAD), on pixels where ``ok``."""
+    d2 = y[1:-1] - 0.5 * (y[:-2] + y[2:])
+    good = ok[1:-1] & ok[:-2] & ok[2:]
+    if np.count_nonzero(good) < 8:
+        return None
+    d = d2[good]
+    mad = np.median(np.abs(d - np.median(d)))
+    return 1.4826 * mad / np.sqrt(1.5)
+
+
+def _block_background(y, ok, width, q=None, sigma=0.0):
+    """Smooth background: a per-block statistic of ``y`` interpolated between block centres.
+
+    ``q`` (0-1) takes that quantile and adds the Gaussian offset back to the mean (for
+    dense spectra); ``q=None`` takes the median of the samples (lines already removed).
+    """
+    n = y.size
+    nb = max(1, round(n / width))
+    edges = np.linspace(0, n, nb + 1).round().astype(int)
+    w = int(np.max(np.diff(edges)))
+    idx = edges[:-1, None] + np.arange(w)[None, :]
+    inside = idx < edges[1:, None]
+    idx = np.minimum(idx, n - 1)
+    vals = np.where(inside & ok[idx], y[idx], np.inf)
+    vals.sort(axis=1)
+    nval = np.count_nonzero(np.isfinite(vals), axis=1)
+    has = nval >= max(3, w // 4)
+    quant = 0.5 if q is None else q
+    pos = quant * np.maximum(nval - 1, 0)
+    lo = np.floor(pos).astype(int)
+    hi = np.minimum(lo + 1, np.maximum(nval - 1, 0))
+    rows = np.arange(nb)
+    frac = pos - lo
+    vlo = vals[rows, lo]
+    vhi = vals[rows, hi]
+    stat = np.where(has, vlo + frac * (np.where(np.isfinite(vhi), vhi, vlo) - vlo), np.nan)
+    if q is not None:
+        from scipy.special import ndtri
+
+        stat = stat - ndtri(q) * sigma
+    centres = 0.5 * (edges[:-1] + edges[1:] - 1)
+    if not np.any(has):
+        level = np.median(y[ok]) if ok.any() else 0.0
+        return np.full(n, level)
+    return np.interp(np.arange(n), centres[has], stat[has])
+
+
+def _unit_kernel(fwhm):
+    sigma = fwhm / FWHM_PER_SIGMA
+    half = int(np.ceil(3.0 * sigma)) + 1
+    k, _, _ = _integrated(np.arange(-half, half + 1, dtype=float), 0.0, sigma)
+    return k
+
+
+def _matched_filter(excess, weight, fwhm):
+    """Flux estimate and significance of a line centred on each pixel (known background)."""
+    k = _unit_kernel(fwhm)
+    num = np.convolve(excess * weight, k[::-1], mode="same")
+    den = np.convolve(weight, (k * k)[::-1], mode="same")
+    with np.errstate(divide="ignore", invalid="ignore"):
+        flux = np.where(den > 0, num / den, 0.0)
+        snr = np.where(den > 0, num / np.sqrt(den), 0.0)
+    return flux, snr
+
+
+def _local_maxima(z, threshold):
+    """Indices where ``z`` is a strict-left/non-strict-right local maximum above threshold."""
+    if z.size < 3:
+        return np.zeros(0, int)
+    mid = z[1:-1]
+    peak = (mid > z[:-2]) & (mid >= z[2:]) & (mid > threshold)
+    return np.flatnonzero(peak) + 1
+
+
+def _spike_pixels(excess, var, ok, fwhm, min_snr):
+    """Pixels far too sharp for the LSF: single-pixel spikes (hot pixels, cosmic-ray hits)."""
+    # Neighbour/centre ratio of the sharpest line still allowed (half the LSF, centred).
+    f_lim = 0.5 * fwhm
+    frac, _, _ = _integrated(np.array([0.0, 1.0]), 0.0, f_lim / FWHM_PER_SIGMA)
+    r = frac[1] / frac[0]
+    s = np.where(ok, excess, 0.0)
+    left = np.r_[s[0], s[:-1]]
+    right = np.r_[s[1:], s[-1]]
+    ok_l = np.r_[False, ok[:-1]]
+    ok_r = np.r_[ok[1:], False]
+    both = ok_l & ok_r
+    neigh = np.where(both, 0.5 * (left + right), np.where(ok_l, left, right))
+    v_l = np.r_[var[0], var[:-1]]
+    v_r = np.r_[var[1:], var[-1]]
+    v_n = np.where(both, 0.25 * (v_l + v_r), np.where(ok_l, v_l, v_r))
+    stat = (r * s - neigh) / np.sqrt(r * r * var + v_n)
+    sig = s / np.sqrt(var)
+    return ok & (ok_l | ok_r) & (stat > 5.0) & (sig > min(5.0, min_snr))
+
+
+def _half_max_widths(excess, ok, peaks, max_half=15):
+    """Full width at half maximum of the profile around each peak (linear interpolation)."""
+    n = excess.size
+    off = np.arange(-max_half, max_half + 1)
+    idx = np.clip(peaks[:, None] + off[None, :], 0, n - 1)
+    prof = np.where(ok[idx], excess[idx], np.nan)
+    top = prof[:, max_half]
+    half = 0.5 * top
+    widths = np.full(peaks.size, np.nan)
+    right = prof[:, max_half:]
+    left = prof[:, max_half::-1]
+    edges = []
+    for side in (right, left):
+        below = side < half[:, None]
+        has = below.any(axis=1) & ~np.isnan(side).any(axis=1)
+        j = np.argmax(below, axis=1)
+        j = np.maximum(j, 1)
+        rows = np.arange(peaks.size)
+        y0 = side[rows, j - 1]
+        y1 = side[rows, j]
+        with np.errstate(divide="ignore", invalid="ignore"):
+            t = (y0 - half) / (y0 - y1)
+        edges.append(np.where(has, j - 1 + t, np.nan))
+    widths = edges[0] + edges[1]
+    return widths
+
+
+# ---------------------------------------------------------------------------------------
+# Batched Levenberg-Marquardt on stacked windows
+
+
+@dataclass
+class _Groups:
+    """Components arranged in padded groups: arrays of shape (G, K) and windows (G, L)."""
+
+    member: np.ndarray  # (G, K) index into the component list, -1 for padding
+    lo: np.ndarray  # (G,) first pixel of each window
+    hi: np.ndarray  # (G,) last pixel of each window
+
+
+def _make_groups(centres, fwhm, n):
+    """Group sorted component centres closer than ``_GROUP_SEPARATION`` FWHM, by size class."""
+    order = np.argsort(centres)
+    c = centres[order]
+    new = np.r_[True, np.diff(c) > _GROUP_SEPARATION * fwhm]
+    gid = np.cumsum(new) - 1
+    # Split oversized groups: cut every _MAX_COMPONENTS members (rare: dense forests).
+    start = np.flatnonzero(new)
+    rank = np.arange(c.size) - start[gid]
+    gid = gid * (c.size // _MAX_COMPONENTS + 2) + rank // _MAX_COMPONENTS
+    _, gid = np.unique(gid, return_inverse=True)
+    n_groups = gid.max() + 1 if c.size else 0
+    size = np.bincount(gid, minlength=n_groups)
+    first = np.r_[0, np.cumsum(size)[:-1]]
+    hw = _WINDOW_HALF * fwhm + 1.0
+    lo = np.clip(np.floor(c[first] - hw), 0, n - 1).astype(int)
+    hi = np.clip(np.ceil(c[first + size - 1] + hw), 0, n - 1).astype(int)
+    out = []
+    for k in np.unique(size):  # loop over group sizes (a handful), not over lines
+        sel = np.flatnonzero(size == k)
+        member = order[first[sel][:, None] + np.arange(k)[None, :]]
+        out.append(_Groups(member=member, lo=lo[sel], hi=hi[sel]))
+    return out
+
+
+def _fit_batch(groups, state, ctx, noise, neighbours_model):
+    """Fit one size class of groups; updates ``state`` (component arrays) in place.
+
+    Returns per-group chi2, dof, and per-component covariance pieces.
+    """
+    m = groups.member
+    n_g, k = m.shape
+    n_par = 1 + 3 * k
+    length = int((groups.hi - groups.lo).max()) + 1
+    x = groups.lo[:, None] + np.arange(length)[None, :]
+    inside = x <= groups.hi[:, None]
+    xi = np.minimum(x, ctx.n - 1)
+    valid = inside & ctx.ok[xi]
+    xf = x.astype(float)
+    bg_glob = ctx.background[xi]
+    # Data minus global background minus the other lines' current models.
+    c = state.centre[m].copy()
+    s = state.sigma[m].copy()
+    f = state.flux[m].copy()
+    frac0, _, _ = _integrated(xf[:, None, :], c[..., None], s[..., None])
+    own0 = np.einsum("gk,gkl->gl", f, frac0)
+    others = neighbours_model[xi] - own0
+    y = ctx.excess[xi] - others
+    b0 = np.zeros(n_g)
+    fixed_sigma = state.fix_sigma[m]
+
+    def evaluate(b0, c, s, f):
+        frac, d_c, d_s = _integrated(xf[:, None, :], c[..., None], s[..., None])
+        model = b0[:, None] + np.einsum("gk,gkl->gl", f, frac)
+        jac = np.empty((n_g, n_par, length))
+        jac[:, 0, :] = 1.0
+        jac[:, 1::3, :] = f[..., None] * d_c
+        jac[:, 2::3, :] = np.where(fixed_sigma[..., None], 0.0, f[..., None] * d_s)
+        jac[:, 3::3, :] = frac
+        return model, jac, frac
+
+    def level_of(model):
+        return bg_glob + others + model
+
+    c_lo = groups.lo[:, None] - 0.5
+    c_hi = groups.hi[:, None] + 0.5
+    s_lo = 0.2 * ctx.sigma_lsf
+    s_hi = np.maximum(6.0 * ctx.sigma_lsf, (groups.hi - groups.lo)[:, None] / 4.0)
+
+    model, jac, frac = evaluate(b0, c, s, f)
+    var = noise.variance(level_of(model))
+    w = np.where(valid, 1.0 / var, 0.0)
+    resid = y - model
+    chi2 = np.sum(w * resid * resid, axis=1)
+    lam = np.full(n_g, 1e-3)
+    active = np.ones(n_g, bool)
+    eye = np.eye(n_par)
+    # Parameters that are not free: sigma when fixed (none by default, saturated lines keep it).
+    frozen = np.zeros((n_g, n_par), bool)
+    frozen[:, 2::3] = fixed_sigma
+    for _ in range(_MAX_ITER):
+        wj = jac * w[:, None, :]
+        hess = np.einsum("gpl,gql->gpq", wj, jac)
+        grad = np.einsum("gpl,gl->gp", wj, resid)
+        diag = np.einsum("gpp->gp", hess)
+        dead = frozen | (diag <= 0)
+        damp = hess + (lam[:, None] * np.where(dead, 1.0, diag))[:, :, None] * eye
+        damp = np.where(dead[:, :, None] | dead[:, None, :], eye, damp)
+        grad = np.where(dead, 0.0, grad)
+        try:
+            step = np.linalg.solve(damp, grad[..., None])[..., 0]
+        except np.linalg.LinAlgError:
+            step = np.zeros_like(grad)
+        nb0 = b0 + step[:, 0]
+        nc = np.clip(c + step[:, 1::3], c_lo, c_hi)
+        ns = np.clip(s + step[:, 2::3], s_lo, s_hi)
+        nf = f + step[:, 3::3]
+        nmodel, njac, nfrac = evaluate(nb0, nc, ns, nf)
+        nres = y - nmodel
+        nchi2 = np.sum(w * nres * nres, axis=1)
+        better = (nchi2 <= chi2) & active
+        lam = np.where(better, np.maximum(lam / 5.0, 1e-7), np.minimum(lam * 4.0, 1e7))
+        # Converged when the Gauss-Newton step would lower chi2 by a negligible amount.
+        predicted = np.einsum("gp,gp->g", step, grad)
+        done = active & ((predicted < 1e-2) | (lam >= 1e7))
+        bsel = better[:, None]
+        b0 = np.where(better, nb0, b0)
+        c = np.where(bsel, nc, c)
+        s = np.where(bsel, ns, s)
+        f = np.where(bsel, nf, f)
+        model = np.where(bsel, nmodel, model)
+        jac = np.where(better[:, None, None], njac, jac)
+        frac = np.where(better[:, None, None], nfrac, frac)
+        # Variance from the model at the accepted point (not from the data).
+        var = np.where(bsel, noise.variance(level_of(model)), var)
+        w = np.where(valid, 1.0 / var, 0.0)
+        resid = y - model
+        chi2 = np.sum(w * resid * resid, axis=1)
+        active &= ~done
+        if not active.any():
+            break
+    converged = ~active
+    # Covariance from the Jacobian at the solution.
+    wj = jac * w[:, None, :]
+    hess = np.einsum("gpl,gql->gpq", wj, jac)
+    diag = np.einsum("gpp->gp", hess)
+    dead = frozen | (diag <= 0)
+    hess = np.where(dead[:, :, None] | dead[:, None, :], eye, hess)
+    try:
+        cov = np.linalg.inv(hess)
+    except np.linalg.LinAlgError:
+        cov = np.linalg.pinv(hess)
+    cov = np.where(dead[:, :, None] | dead[:, None, :], 0.0, cov)
+    n_free = np.count_nonzero(~dead, axis=1)
+    dof = np.count_nonzero(valid, axis=1) - n_free
+    # Leverage of each pixel (for the noise re-estimate).
+    lev = np.einsum("gpl,gpq,gql->gl", jac, cov, jac) * w
+    # Shape-fixed flux significance on a known background (the matched-filter SNR).
+    info_f = np.einsum("gkl,gl->gk", frac * frac, w)
+    comp = m
+    state.centre[comp] = c
+    state.sigma[comp] = s
+    state.flux[comp] = f
+    state.bg_offset[comp] = b0[:, None]
+    state.centre_err[comp] = np.sqrt(np.maximum(cov[:, 1::3, 1::3].diagonal(axis1=1, axis2=2), 0))
+    state.sigma_err[comp] = np.sqrt(np.maximum(cov[:, 2::3, 2::3].diagonal(axis1=1, axis2=2), 0))
+    state.flux_err[comp] = np.sqrt(np.maximum(cov[:, 3::3, 3::3].diagonal(axis1=1, axis2=2), 0))
+    state.snr[comp] = f * np.sqrt(info_f)
+    state.chi2[comp] = chi2[:, None]
+    state.dof[comp] = dof[:, None]
+    state.converged[comp] = converged[:, None]
+    state.group_size[comp] = k
+    return {
+        "x": xi[valid], "resid": resid[valid], "lev": lev[valid],
+        "level": level_of(model)[valid], "chi2": chi2, "dof": dof,
+    }
+
+
+@dataclass
+class _State:
+    centre: np.ndarray
+    sigma: np.ndarray
+    flux: np.ndarray
+    fix_sigma: np.ndarray
+
+    def __post_init__(self):
+        n = self.centre.size
+        z = np.zeros(n)
+        self.bg_offset = z.copy()
+        self.centre_err = z.copy()
+        self.sigma_err = z.copy()
+        self.flux_err = z.copy()
+        self.snr = z.copy()
+        self.chi2 = z.copy()
+        self.dof = np.zeros(n, int)
+        self.converged = np.zeros(n, bool)
+        self.group_size = np.ones(n, int)
+
+    def subset(self, keep):
+        new = _State(self.centre[keep].copy(), self.sigma[keep].copy(), self.flux[keep].copy(),
+                     self.fix_sigma[keep].copy())
+        for name in ("bg_offset", "centre_err", "sigma_err", "flux_err", "snr", "chi2", "dof",
+                     "converged", "group_size"):
+            setattr(new, name, getattr(self, name)[keep].copy())
+        return new
+
+    def extend(self, centre, sigma, flux):
+        new = _State(np.r_[self.centre, centre], np.r_[self.sigma, sigma],
+                     np.r_[self.flux, flux], np.r_[self.fix_sigma, np.zeros(centre.size, bool)])
+        return new
+
+
+@dataclass(frozen=True)
+class _Context:
+    n: int
+    excess: np.ndarray  # counts - background
+    background: np.ndarray
+    ok: np.ndarray  # usable for fitting
+    sigma_lsf: float
+
+
+def _lines_model(state, n, keep=None):
+    """Noise-free counts of all (kept) components on the full pixel grid."""
+    c, s, f = state.centre, state.sigma, state.flux
+    if keep is not None:
+        c, s, f = c[keep], s[keep], f[keep]
+    out = np.zeros(n)
+    if c.size == 0:
+        return out
+    half = int(np.ceil(6.0 * float(np.max(s)))) + 1
+    pix = np.rint(c)[:, None].astype(int) + np.arange(-half, half + 1)[None, :]
+    frac, _, _ = _integrated(pix.astype(float), c[:, None], s[:, None])
+    ok = (pix >= 0) & (pix < n)
+    return np.bincount(pix[ok], weights=(f[:, None] * frac)[ok], minlength=n)
+
+
+def _fit_all(state, ctx, noise):
+    """Fit every component (grouped jointly), other lines' models held fixed."""
+    everything = _lines_model(state, ctx.n)
+    diag = []
+    for groups in _make_groups(state.centre, ctx.sigma_lsf * FWHM_PER_SIGMA, ctx.n):
+        diag.append(_fit_batch(groups, state, ctx, noise, everything))
+    return diag
+
+
+def _reestimate_slope(noise, diag):
+    """Re-estimate the variance slope b (1/gain) from fit residuals (leverage-corrected)."""
+    if not diag:
+        return noise
+    x_res = np.concatenate([d["resid"] for d in diag])
+    lev = np.concatenate([d["lev"] for d in diag])
+    level = np.concatenate([d["level"] for d in diag])
+    delta = level - noise.ref
+    bright = delta > 5.0 * np.sqrt(noise.a)
+    if np.count_nonzero(bright) < 20:
+        return noise
+    e2 = x_res * x_res / np.clip(1.0 - lev, 0.2, 1.0)
+    b = noise.b
+    for _ in range(3):
+        v = noise.a + b * delta
+        w = np.where(bright, 1.0 / np.maximum(v, 1e-12) ** 2, 0.0)
+        # Robustness: drop gross outliers (unmodelled structure) before the moment estimate.
+        keep = bright & (e2 < 16.0 * v)
+        num = np.sum((w * delta * (e2 - noise.a))[keep])
+        den = np.sum((w * delta * delta)[keep])
+        if den <= 0:
+            return noise
+        b = max(num / den, 0.0)
+    return _Noise(a=noise.a, b=float(b), ref=noise.ref, method=noise.method)
+
+
+# ---------------------------------------------------------------------------------------
+# Public functions
+
+
+def _empty_table(meta, has_wavelength):
+    from astropy.table import Table
+
+    t = _build_table({k: np.zeros(0) for k in _COLUMNS}, np.zeros(0, dtype="U1"), meta)
+    if has_wavelength:
+        for name in ("wavelength", "wavelength_err", "fwhm"):
+            t[name] = np.zeros(0)
+            t[name].unit = "nm"
+    assert isinstance(t, Table)
+    return t
+
+
+_COLUMNS = {
+    "pixel": ("pix", "fitted line centre (0 = centre of the first pixel)"),
+    "pixel_err": ("pix", "1-sigma uncertainty of the centre"),
+    "fwhm_pixel": ("pix", "FWHM of the fitted Gaussian line-spread profile"),
+    "fwhm_pixel_err": ("pix", "1-sigma uncertainty of the FWHM"),
+    "amplitude": ("ct / pix", "peak height of the fitted Gaussian"),
+    "flux": ("ct", "total counts in the line"),
+    "flux_err": ("ct", "1-sigma uncertainty of the flux"),
+    "background": ("ct / pix", "background level under the line centre"),
+    "snr": ("", "flux over its uncertainty for a line of the fitted shape (matched filter)"),
+}
+
+
+def _build_table(cols, flags, meta):
+    from astropy.table import Column, Table
+
+    t = Table(meta=meta)
+    for name, (unit, desc) in _COLUMNS.items():
+        t[name] = Column(np.asarray(cols[name], float), unit=unit or None, description=desc)
+    t["flags"] = Column(np.asarray(flags, dtype=str), description=(
+        "comma-separated: saturated, blended, blend_suspect, edge; empty when clean"))
+    return t
+
+
+class _AxisSolution:
+    """Wavelength axis of a spectrum seen through the Solution interface (no model band)."""
+
+    def __init__(self, axis_nm):
+        self._axis = axis_nm
+        self._pix = np.arange(axis_nm.size, dtype=float)
+        self._disp = np.gradient(axis_nm)
+
+    def wavelength(self, p):
+        p = np.asarray(p, float)
+        lin = np.interp(p, self._pix, self._axis)
+        # Extrapolate linearly past the ends.
+        lin = np.where(p < 0, self._axis[0] + p * self._disp[0], lin)
+        last = self._pix[-1]
+        return np.where(p > last, self._axis[-1] + (p - last) * self._disp[-1], lin)
+
+    def wavelength_err(self, p):
+        return np.zeros(np.shape(p))
+
+    def dispersion(self, p):
+        return np.interp(np.asarray(p, float), self._pix, self._disp)
+
+
+def attach_wavelengths(lines, solution):
+    """Add ``wavelength``, ``wavelength_err`` and ``fwhm`` (nm) to a line table.
+
+    Parameters
+    ----------
+    lines : astropy.table.Table
+        A table from :func:`find_lines` (needs ``pixel``, ``pixel_err``, ``fwhm_pixel``).
+    solution : object
+        Anything with ``wavelength(p)``, ``wavelength_err(p)`` and ``dispersion(p)`` (nm per
+        pixel), e.g. a :class:`ritzline.calibrate.Solution`.
+
+    Returns
+    -------
+    astropy.table.Table
+        A copy of ``lines`` with the three columns added.  ``wavelength_err`` combines the
+        centroid error through the dispersion with the solution's own band in quadrature.
+    """
+    out = lines.copy(copy_data=True)
+    p = np.asarray(out["pixel"], float)
+    disp = np.abs(np.asarray(solution.dispersion(p), float))
+    wl = np.asarray(solution.wavelength(p), float)
+    band = np.asarray(solution.wavelength_err(p), float)
+    err = np.hypot(disp * np.asarray(out["pixel_err"], float), band)
+    out["wavelength"] = wl
+    out["wavelength"].unit = "nm"
+    out["wavelength"].description = "wavelength of the line centre"
+    out["wavelength_err"] = err
+    out["wavelength_err"].unit = "nm"
+    out["wavelength_err"].description = "centroid error through the dispersion (+) solution band"
+    out["fwhm"] = disp * np.asarray(out["fwhm_pixel"], float)
+    out["fwhm"].unit = "nm"
+    out["fwhm"].description = "FWHM in wavelength"
+    medium = getattr(solution, "medium", None)
+    if medium is not None:
+        out.meta["medium"] = medium
+    return out
+
+
+def find_lines(
+    spectrum,
+    *,
+    min_snr: float = 5.0,
+    fwhm_guess: float | None = None,
+    saturation: float | None = None,
+    gain: float | None = None,
+    read_noise: float | None = None,
+    dark=None,
+):
+    """Find the emission lines of a spectrum and fit each with a pixel-integrated Gaussian.
+
+    Parameters
+    ----------
+    spectrum : specutils.Spectrum or array
+        Counts (ADU) on a pixel or wavelength axis; masked samples are left out of every fit.
+    min_snr : float
+        Significance threshold: a line is reported when its flux over its (shape-fixed)
+        uncertainty reaches this.
+    fwhm_guess : float, optional
+        Line-spread FWHM in pixels; estimated from the brightest isolated lines if omitted.
+    saturation : float, optional
+        Saturation level (ADU) of the raw counts; otherwise ``meta["saturation"]`` of the
+        spectrum, otherwise detected from repeated maximum values.
+    gain : float, optional
+        Electrons per ADU.  Estimated from the fit residuals when omitted.
+    read_noise : float, optional
+        Read noise (ADU).  With ``gain`` and ``read_noise`` both given the variance is
+        ``counts / gain + read_noise**2``; otherwise the variance at the background is
+        measured from the data.
+    dark : specutils.Spectrum or array, optional
+        A dark/background exposure of the same detector, subtracted first.
+
+    Returns
+    -------
+    astropy.table.Table
+        One row per line: ``pixel, pixel_err, fwhm_pixel, fwhm_pixel_err, amplitude, flux,
+        flux_err, background, snr, flags`` and, on a wavelength axis, ``wavelength,
+        wavelength_err, fwhm`` (nm).  ``meta`` records the noise model, the LSF FWHM, the
+        saturation level and the candidates rejected per reason.
+
+    Notes
+    -----
+    The background is a block quantile of the spectrum, then a block median of the spectrum
+    minus the fitted lines.  Candidates are local maxima of a matched filter (an integrated
+    Gaussian at the LSF width); single-pixel spikes far sharper than the LSF are masked
+    first.  Lines closer than two FWHM are fitted together with one constant background
+    offset; after a first fit the residuals are searched for missed components and every
+    line is refitted with its neighbours' models held fixed.  Errors come from the inverse
+    Fisher matrix at the solution, inflated by the reduced chi-square when the fit is
+    significantly poor (p < 0.01).  Saturated pixels (and their neighbours) are excluded; the
+    centroid error of a saturated line includes an allowance of 0.15 px per clipped pixel.
+    """
+    from . import __version__
+
+    arr = spectrum_arrays(spectrum)
+    raw = np.array(arr.counts, float)
+    n = raw.size
+    mask = np.array(arr.mask, bool)
+    meta = {
+        "ritzline_version": __version__,
+        "stage": "find_lines",
+        "min_snr": float(min_snr),
+        "source": arr.meta.get("source"),
+    }
+    has_wavelength = arr.unit == "nm"
+    if fwhm_guess is not None and not fwhm_guess > 0:
+        raise RitzlineError(f"fwhm_guess must be a positive number of pixels, got {fwhm_guess}")
+    min_len = 2 * int(np.ceil(_WINDOW_HALF * (fwhm_guess or 2.0))) + 1
+    if n < min_len:
+        raise RitzlineError(
+            f"the spectrum has {n} samples, shorter than one line-fit window ({min_len} "
+            "pixels for the line width); give a longer spectrum"
+        )
+    if dark is not None:
+        d_counts, d_mask = _as_counts(dark, n, "dark frame")
+        mask |= d_mask
+    if saturation is None:
+        saturation = arr.meta.get("saturation")
+    sat_source = "given" if saturation is not None else None
+    valid = ~mask
+    if saturation is None:
+        saturation = _detect_saturation(raw, valid)
+        sat_source = "detected from repeated maximum values" if saturation is not None else None
+    saturated_px = np.zeros(n, bool)
+    if saturation is not None:
+        saturated_px = valid & (raw >= float(saturation) * (1 - 1e-9))
+    counts = raw - d_counts if dark is not None else raw
+    counts = np.where(valid, counts, 0.0)
+    meta["saturation"] = None if saturation is None else float(saturation)
+    meta["saturation_source"] = sat_source
+    meta["dark_subtracted"] = dark is not None
+
+    def empty(reason):
+        meta["warning"] = reason
+        warnings.warn(f"find_lines: {reason}; returning an empty line table", stacklevel=3)
+        return _empty_table(meta, has_wavelength)
+
+    if not valid.any():
+        return empty("every sample is masked")
+    if np.ptp(counts[valid]) == 0:
+        return empty("the spectrum is constant (all samples equal)")
+
+    # Pixels used in fits: valid, not saturated, not next to a saturated pixel (bloom).
+    sat_zone = saturated_px | np.r_[False, saturated_px[:-1]] | np.r_[saturated_px[1:], False]
+    ok = valid & ~sat_zone
+    sigma0 = _second_diff_sigma(counts, ok)
+    if sigma0 is None or sigma0 <= 0:
+        sigma0 = float(np.std(counts[ok])) if np.count_nonzero(ok) > 1 else 0.0
+    if not sigma0 > 0:
+        return empty("no noise could be measured (too few usable samples)")
+
+    fwhm = float(fwhm_guess) if fwhm_guess is not None else None
+    width_block = 8.0 * (fwhm or _DEFAULT_FWHM)
+    bg = _block_background(counts, ok, max(12.0, width_block), q=0.25, sigma=sigma0)
+    excess = counts - bg
+    ref = float(np.median(bg[valid]))
+    # Noise model at the background: second differences on pixels away from any bright line.
+    quiet = ok & (np.abs(excess) < 4.0 * sigma0)
+    quiet = quiet & np.r_[quiet[1:], True] & np.r_[True, quiet[:-1]]
+    sig_bg = _second_diff_sigma(counts, quiet) or sigma0
+    if gain is not None and read_noise is not None:
+        noise = _Noise(a=read_noise**2 + max(ref, 0.0) / gain, b=1.0 / gain, ref=ref,
+                       method="given gain and read noise")
+    else:
+        a = sig_bg**2
+        if gain is not None:
+            b, method = 1.0 / gain, "given gain; variance at background measured"
+        else:
+            # Until the fit residuals say otherwise: all background variance photon noise.
+            b = a / max(ref, a) if ref > 0 else 1.0
+            method = "estimated: background variance from second differences, gain from fit " \
+                     "residuals"
+        noise = _Noise(a=a, b=b, ref=ref, method=method)
+    var_null = noise.variance(bg)
+
+    # Spikes narrower than the LSF: masked everywhere downstream.
+    fwhm_for_spikes = fwhm or _DEFAULT_FWHM
+    spikes = _spike_pixels(excess, noise.variance(bg + np.maximum(excess, 0)), ok,
+                           min(fwhm_for_spikes, 2.0) if fwhm is None else fwhm, min_snr)
+    rejected = {"spike": int(np.count_nonzero(spikes)), "too_narrow": 0, "below_snr": 0,
+                "not_converged": 0, "duplicate": 0, "outside": 0}
+    ok &= ~spikes
+
+    # LSF width from the brightest isolated, unsaturated peaks.
+    lsf_method = "given"
+    if fwhm is None:
+        sig = np.where(ok, excess / np.sqrt(var_null), 0.0)
+        pk = _local_maxima(sig, 15.0)
+        if pk.size:
+            gaps = np.diff(pk)
+            iso = np.r_[True, gaps > 12] & np.r_[gaps > 12, True]
+            near_sat = np.convolve(sat_zone, np.ones(9), mode="same")[pk] > 0
+            pk = pk[iso & ~near_sat]
+        widths = _half_max_widths(excess, ok, pk) if pk.size else np.zeros(0)
+        widths = widths[np.isfinite(widths) & (widths > 0.8)]
+        if widths.size >= 1:
+            # Pixel integration adds 1/12 px^2 to the profile variance.
+            fwhm = float(np.sqrt(max(np.median(widths) ** 2 - FWHM_PER_SIGMA**2 / 12, 0.64)))
+            lsf_method = f"half-maximum widths of {widths.size} bright peaks, then fits"
+        else:
+            fwhm = _DEFAULT_FWHM
+            lsf_method = "default (no bright isolated line)"
+        bg = _block_background(counts, ok, max(12.0, 8.0 * fwhm), q=0.25, sigma=sig_bg)
+        excess = counts - bg
+    if n < 2 * int(np.ceil(_WINDOW_HALF * fwhm)) + 1:
+        raise RitzlineError(
+            f"the spectrum has {n} samples, shorter than one line-fit window for a "
+            f"{fwhm:.2f}-pixel FWHM; give a longer spectrum"
+        )
+    sigma_lsf = fwhm / FWHM_PER_SIGMA
+
+    # Detection: matched filter on the background-subtracted counts.
+    weight = np.where(ok, 1.0 / noise.variance(bg), 0.0)
+    f_mf, snr_mf = _matched_filter(excess, weight, fwhm)
+    cand = _local_maxima(snr_mf, 0.7 * min_snr)
+    # A run of saturated pixels is one line: put one candidate at its middle.
+    if saturated_px.any():
+        edges = np.diff(np.r_[0, saturated_px.astype(np.int8), 0])
+        starts, stops = np.flatnonzero(edges == 1), np.flatnonzero(edges == -1)
+        mids = 0.5 * (starts + stops - 1)
+        run = stops - starts
+        far = ~_near_saturation(sat_zone, cand, fwhm)
+        cand_c = np.r_[cand[far].astype(float), mids]
+        cand_f = np.r_[f_mf[cand[far]], np.full(mids.size, 1.0)]
+        sat_run_of = np.r_[np.zeros(np.count_nonzero(far)), run]
+    else:
+        cand_c = cand.astype(float)
+        cand_f = f_mf[cand]
+        sat_run_of = np.zeros(cand.size)
+    if cand_c.size == 0:
+        meta.update(_meta_tail(noise, fwhm, None, lsf_method, rejected, 0, min_snr))
+        return empty(f"no line reaches the detection threshold (min_snr={min_snr:g})")
+    # Sub-pixel start: parabola through the filter peak.
+    ic = np.clip(np.rint(cand_c).astype(int), 1, n - 2)
+    zl, z0, zr = snr_mf[ic - 1], snr_mf[ic], snr_mf[ic + 1]
+    den = zl - 2 * z0 + zr
+    shift = np.where((den < 0) & (sat_run_of == 0), 0.5 * (zl - zr) / np.where(den < 0, den, -1),
+                     0.0)
+    cand_c = cand_c + np.clip(shift, -0.5, 0.5)
+    # Saturated lines: flux start from the wings is unknown; use the peak counts.
+    cand_f = np.where(sat_run_of > 0, (float(saturation or 1.0) - np.interp(cand_c, np.arange(n),
+                      bg)) * _SQRT2PI * sigma_lsf * np.maximum(sat_run_of, 1), cand_f)
+    state = _State(cand_c, np.full(cand_c.size, sigma_lsf), cand_f,
+                   np.zeros(cand_c.size, bool))
+    n_candidates = int(cand_c.size)
+    ctx = _Context(n=n, excess=excess, background=bg, ok=ok, sigma_lsf=sigma_lsf)
+
+    # Pass 1.
+    diag = _fit_all(state, ctx, noise)
+    if gain is None:
+        noise = _reestimate_slope(noise, diag)
+    state, rejected = _prune(state, ctx, fwhm, 0.5 * min_snr, rejected, final=False)
+    # Background again, from the spectrum minus the fitted lines.
+    lines_now = _lines_model(state, n)
+    bg = _block_background(counts - lines_now, ok, max(12.0, 8.0 * fwhm), q=None)
+    excess = counts - bg
+    ctx = _Context(n=n, excess=excess, background=bg, ok=ok, sigma_lsf=sigma_lsf)
+    # Residual search for components the first pass missed (close blends).
+    resid = excess - lines_now
+    weight = np.where(ok, 1.0 / noise.variance(bg + lines_now), 0.0)
+    f_r, snr_r = _matched_filter(resid, weight, fwhm)
+    extra = _local_maxima(snr_r, min_snr)
+    if extra.size and state.centre.size:
+        dist = np.min(np.abs(extra[:, None] - state.centre[None, :]), axis=1)
+        extra = extra[(dist > 0.5 * fwhm) & ~_near_saturation(sat_zone, extra, fwhm)]
+    n_candidates += int(extra.size)
+    if extra.size:
+        state = state.extend(extra.astype(float), np.full(extra.size, sigma_lsf), f_r[extra])
+    # Pass 2, neighbours from pass 1.
+    diag = _fit_all(state, ctx, noise)
+    if gain is None:
+        noise = _reestimate_slope(noise, diag)
+    before = state
+    state, rejected = _prune(state, ctx, fwhm, min_snr, rejected, final=True)
+    if state.centre.size and state.centre.size < before.centre.size:
+        # Something was dropped: refit so its neighbours no longer share flux with it.
+        diag = _fit_all(state, ctx, noise)
+        state, rejected = _prune(state, ctx, fwhm, min_snr, rejected, final=True)
+
+    # LSF estimate from the clean, isolated, bright lines.
+    fw = FWHM_PER_SIGMA * state.sigma
+    clean = (state.group_size == 1) & (state.snr > 20) & (state.converged)
+    sat_line = _saturated_lines(state, saturated_px, fwhm)
+    clean &= ~sat_line
+    lsf_fit = None
+    if np.count_nonzero(clean) >= 3:
+        lsf_fit = float(np.median(fw[clean]))
+        if fwhm_guess is None:
+            fwhm = lsf_fit
+            lsf_method += f" (median fitted FWHM of {np.count_nonzero(clean)} lines)"
+    meta.update(_meta_tail(noise, fwhm, lsf_fit, lsf_method, rejected, n_candidates, min_snr))
+    meta["background_method"] = (
+        "block quantile (25%, corrected to the mean) then block median of the spectrum "
+        f"minus the fitted lines, blocks of {max(12.0, 8.0 * fwhm):.0f} px, linear "
+        "interpolation; plus a constant offset fitted in each line window")
+    if state.centre.size == 0:
+        return empty(f"no line reaches min_snr={min_snr:g} after fitting")
+
+    table = _table_from_state(state, ctx, fwhm, saturated_px, sat_line, meta, n)
+    if has_wavelength:
+        table = attach_wavelengths(table, _AxisSolution(arr.axis))
+    return table
+
+
+def _near_saturation(sat_zone, idx, fwhm):
+    """Whether pixels ``idx`` lie within 1.5 FWHM of a saturated (or bloomed) pixel."""
+    reach = int(np.ceil(1.5 * fwhm))
+    zone = np.convolve(sat_zone, np.ones(2 * reach + 1), mode="same") > 0
+    return zone[idx]
+
+
+def _saturated_lines(state, saturated_px, fwhm):
+    n = saturated_px.size
+    if not saturated_px.any() or state.centre.size == 0:
+        return np.zeros(state.centre.size, bool)
+    cs = np.r_[0, np.cumsum(saturated_px)]
+    reach = np.maximum(1.0 * fwhm, 1.5 * FWHM_PER_SIGMA * state.sigma)
+    lo = np.clip(np.floor(state.centre - reach).astype(int), 0, n)
+    hi = np.clip(np.ceil(state.centre + reach).astype(int) + 1, 0, n)
+    return (cs[hi] - cs[lo]) > 0
+
+
+def _meta_tail(noise, fwhm, lsf_fit, lsf_method, rejected, n_candidates, min_snr):
+    return {
+        "noise_model": noise.as_meta(),
+        "lsf_fwhm_pixel": float(fwhm),
+        "lsf_fwhm_fitted_median": lsf_fit,
+        "lsf_method": lsf_method,
+        "n_candidates": int(n_candidates),
+        "rejected": dict(rejected),
+        "detection": f"matched filter (integrated Gaussian, FWHM {fwhm:.3f} px); "
+                     f"report when snr >= {min_snr:g}",
+    }
+
+
+def _prune(state, ctx, fwhm, snr_cut, rejected, *, final):
+    """Drop components that are not credible lines; count each reason in ``rejected``."""
+    if state.centre.size == 0:
+        return state, rejected
+    fw = FWHM_PER_SIGMA * state.sigma
+    fw_err = FWHM_PER_SIGMA * state.sigma_err
+    outside = (state.centre < -0.5) | (state.centre > ctx.n - 0.5) | ~np.isfinite(state.centre)
+    narrow = (fw < 0.5 * fwhm) & ((0.5 * fwhm - fw) > 2.0 * fw_err) & ~outside
+    weak = (state.snr < snr_cut) & ~outside & ~narrow
+    drop = outside | narrow | weak
+    # Duplicates: two components within 0.6 FWHM; keep the brighter.
+    order = np.argsort(state.centre)
+    c = state.centre[order]
+    close = np.flatnonzero(np.diff(c) < 0.6 * fwhm)
+    dup = np.zeros(state.centre.size, bool)
+    for_idx_a, for_idx_b = order[close], order[close + 1]
+    weaker = np.where(state.flux[for_idx_a] < state.flux[for_idx_b], for_idx_a, for_idx_b)
+    dup[weaker] = True
+    dup &= ~drop
+    not_conv = ~state.converged & ~drop & ~dup
+    if final:
+        rejected["outside"] += int(np.count_nonzero(outside))
+        rejected["too_narrow"] += int(np.count_nonzero(narrow))
+        rejected["below_snr"] += int(np.count_nonzero(weak))
+        rejected["duplicate"] += int(np.count_nonzero(dup))
+        # A fit that did not converge keeps its last values (flagged by a large chi2); it is
+        # only counted, not dropped, unless its errors are unusable.
+        bad_err = not_conv & ~np.isfinite(state.centre_err)
+        rejected["not_converged"] += int(np.count_nonzero(bad_err))
+        drop = drop | dup | bad_err
+    else:
+        rejected["too_narrow"] += int(np.count_nonzero(narrow))
+        drop = drop | dup
+    return state.subset(~drop), rejected
+
+
+def _table_from_state(state, ctx, fwhm, saturated_px, sat_line, meta, n):
+    order = np.argsort(state.centre)
+    st = state.subset(order)
+    sat_line = sat_line[order]
+    c = st.centre
+    s = st.sigma
+    scale = np.ones(c.size)
+    dof = np.maximum(st.dof, 1)
+    poor = chdtrc(dof, st.chi2) < 0.01
+    scale = np.where(poor, np.sqrt(st.chi2 / dof), 1.0)
+    c_err = st.centre_err * scale
+    s_err = st.sigma_err * scale
+    f_err = st.flux_err * scale
+    # Saturated lines: wings only; add an allowance for the clipped core.
+    if sat_line.any():
+        cs = np.r_[0, np.cumsum(saturated_px)]
+        reach = np.maximum(fwhm, 1.5 * FWHM_PER_SIGMA * s)
+        lo = np.clip(np.floor(c - reach).astype(int), 0, n)
+        hi = np.clip(np.ceil(c + reach).astype(int) + 1, 0, n)
+        n_sat = cs[hi] - cs[lo]
+        c_err = np.where(sat_line, np.hypot(c_err, 0.15 * np.maximum(n_sat, 1)), c_err)
+        f_err = np.where(sat_line, np.hypot(f_err, 0.25 * np.abs(st.flux)), f_err)
+        s_err = np.where(sat_line, np.hypot(s_err, 0.25 * s), s_err)
+    fw = FWHM_PER_SIGMA * s
+    fw_err = FWHM_PER_SIGMA * s_err
+    blended = st.group_size > 1
+    suspect = (fw > 1.2 * fwhm) & ((fw - fwhm) > 3.0 * fw_err) & ~sat_line
+    edge = (c < 1.5 * fwhm - 0.5) | (c > n - 0.5 - 1.5 * fwhm)
+    words = np.array(["saturated", "blended", "blend_suspect", "edge"])
+    bits = np.stack([sat_line, blended, suspect, edge], axis=1)
+    flags = [",".join(words[b]) for b in bits]
+    bg_at = np.interp(c, np.arange(n), ctx.background) + st.bg_offset
+    cols = {
+        "pixel": c,
+        "pixel_err": c_err,
+        "fwhm_pixel": fw,
+        "fwhm_pixel_err": fw_err,
+        "amplitude": st.flux / (_SQRT2PI * s),
+        "flux": st.flux,
+        "flux_err": f_err,
+        "background": bg_at,
+        "snr": st.snr,
+    }
+    meta["n_lines"] = int(c.size)
+    meta["error_scaling"] = "inverse Fisher matrix; x sqrt(chi2/dof) where p(chi2) < 0.01"
+    return _build_table(cols, flags if flags else np.zeros(0, "U1"), meta)
