@@ -1,0 +1,1343 @@
+"""Wavelength calibration against a reference lamp with no initial guess, and the
+:class:`Solution` it produces (a frozen pixel -> wavelength map with covariance, saved as
+versioned JSON).
+
+How a lamp exposure is solved
+-----------------------------
+1. Lines are found (``peaks.find_lines``) and the lamp's reference lines are taken from
+   ``levels.lamp_lines`` (usable lines only, inside the allowed wavelength range).
+2. *Invariants.*  For every detected line and three of its next few neighbours, the two
+   ratios ``(p_j - p_i)/(p_l - p_i)`` and ``(p_k - p_i)/(p_l - p_i)`` do not depend on the
+   (locally linear) dispersion, its offset or its sign.  The same ratios are computed for
+   reference-line quadruplets (with wider gaps, because many listed lines are not seen); a
+   k-d tree finds every pair of quadruplets whose ratios agree within the centroid noise.
+3. *Votes.*  Each agreeing pair implies a direction, a dispersion and a central wavelength;
+   these are histogrammed, and the strongest few cells (the true one collects votes from all
+   over the detector) give candidate sets of line correspondences.
+4. *Grow.*  From each candidate, a robust low-degree Chebyshev fit predicts where every other
+   reference line should fall, lines within the prediction band are added, and the fit is
+   repeated until nothing changes: the solution widens to the whole detector.
+5. *Fit and trust.*  The final weighted Chebyshev fit (degree by BIC, capped by the number and
+   spread of lines) rejects outliers iteratively, with a reason per line, and keeps the full
+   covariance.  The confidence is one minus the chance that a list of lines at the same
+   density would match this many detections this well by accident, multiplied by the number
+   of hypotheses searched (a look-elsewhere correction).  Below the threshold,
+   :class:`~ritzline.errors.CalibrationError` says what was tried and what is missing.
+
+With ``guess=`` (an earlier Solution) the search is a vote over the shift only, and the fit
+is the earlier shape moved by a shift and a small stretch when few lines are found.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import math
+import os
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+from numpy.polynomial import chebyshev as _cheb
+
+from ._io import atomic_write, write_table
+from .errors import CalibrationError, SolutionFormatError
+
+__all__ = [
+    "SCHEMA_NAME",
+    "SCHEMA_VERSION",
+    "Solution",
+    "calibrate",
+    "calibrated_spectrum",
+    "write_calibrated",
+]
+
+SCHEMA_NAME = "ritzline.wavelength-solution"
+SCHEMA_VERSION = 1
+DEFAULT_RANGE_NM = (200.0, 1100.0)
+# Plausible dispersions of a grating spectrometer, nm per pixel (common practice: from
+# ~0.005 nm/px echelle-like to ~2 nm/px survey instruments).
+DISPERSION_LIMITS = (0.003, 3.0)
+CONFIDENT_P = 1e-6  # largest chance-match probability that still gives a solution
+MAX_DEGREE = 5
+_MATCH_NSIGMA = 4.0  # a detection belongs to a reference line within this many sigma
+_CLIP_NSIGMA = 4.0  # rejection threshold of the final fit
+
+
+# ---- the Solution ---------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class Solution:
+    """A pixel -> wavelength map: Chebyshev series in normalised pixel, with covariance.
+
+    ``x = 2 p / (n_pixels - 1) - 1`` (the domain ``[0, n_pixels - 1]`` maps to ``[-1, 1]``) and
+    ``wavelength(p) = sum_k coefficients[k] T_k(x)`` in nm in ``medium``.
+
+    Attributes
+    ----------
+    coefficients, covariance : ndarray
+        Chebyshev coefficients (nm) and their covariance (nm^2), already scaled by the
+        reduced chi-square when that exceeds 1.
+    n_pixels : int
+        Detector length the map was made for.
+    medium : str
+        "air" or "vacuum".
+    lamps : tuple of str
+        Lamp names used.
+    matches : astropy.table.Table
+        One row per detection associated with a reference line: ``pixel, pixel_err,
+        wavelength_ref, wavelength_ref_err, species, designation, flux, snr, wavelength_fit,
+        residual_nm, residual_pixel, used, reason``.
+    rms_nm, rms_pixel : float
+        Unweighted RMS of the residuals of the used lines.
+    confidence : float
+        One minus the look-elsewhere-corrected chance of a match this good by accident.
+    verdict : str
+        "confident" (the only verdict a returned solution carries without a guess),
+        "confident (from guess)" for re-calibrations.
+    fwhm_pixel : float
+        Median FWHM (pixels) of the used lamp lines (NaN when unknown).
+    model_spread : ndarray
+        Coefficients of the difference to the next-higher-degree fit; its absolute value is
+        added in quadrature to the covariance band, so the band stays honest where the
+        lines give no constraint (beyond the outermost lines).
+    meta : dict
+        Provenance: ``created``, ``ritzline_version``, ``input``, ``input_sha256``,
+        ``method``, ``p_chance``, ``n_hypotheses``, ``chi2_reduced``, ``wavelength_range``...
+    """
+
+    coefficients: np.ndarray
+    covariance: np.ndarray
+    n_pixels: int
+    medium: str
+    lamps: tuple[str, ...]
+    matches: Any
+    rms_nm: float
+    rms_pixel: float
+    confidence: float
+    verdict: str
+    fwhm_pixel: float = float("nan")
+    model_spread: np.ndarray = field(default_factory=lambda: np.zeros(1))
+    meta: dict = field(default_factory=dict)
+
+    # -- evaluation --------------------------------------------------------------------
+    @property
+    def degree(self) -> int:
+        """Degree of the Chebyshev series."""
+        return len(self.coefficients) - 1
+
+    @property
+    def domain(self) -> tuple[float, float]:
+        """Pixel range mapped to [-1, 1]."""
+        return (0.0, float(self.n_pixels - 1))
+
+    def _x(self, pixels) -> np.ndarray:
+        return 2.0 * np.asarray(pixels, float) / (self.n_pixels - 1) - 1.0
+
+    def wavelength(self, pixels) -> np.ndarray:
+        """Wavelength (nm, in :attr:`medium`) at pixel positions."""
+        return _cheb.chebval(self._x(pixels), self.coefficients)
+
+    def wavelength_err(self, pixels) -> np.ndarray:
+        """1-sigma uncertainty (nm) of :meth:`wavelength`: fit covariance plus the spread to
+        the next-higher-degree model (which dominates beyond the outermost lines)."""
+        x = self._x(pixels)
+        v = _cheb.chebvander(np.atleast_1d(x).ravel(), self.degree)
+        var = np.einsum("ij,jk,ik->i", v, self.covariance, v)
+        spread = _cheb.chebval(np.atleast_1d(x).ravel(), self.model_spread)
+        err = np.sqrt(np.clip(var, 0, None) + spread**2)
+        return err.reshape(np.shape(x)) if np.ndim(x) else float(err[0])
+
+    def dispersion(self, pixels) -> np.ndarray:
+        """d(wavelength)/d(pixel), nm per pixel (negative when wavelength falls with pixel)."""
+        dcoef = _cheb.chebder(self.coefficients)
+        return _cheb.chebval(self._x(pixels), dcoef) * 2.0 / (self.n_pixels - 1)
+
+    def pixel(self, wavelengths) -> np.ndarray:
+        """Pixel position of wavelengths (nm): the inverse of :meth:`wavelength`."""
+        wl = np.asarray(wavelengths, float)
+        grid = np.linspace(-0.5, self.n_pixels - 0.5, 2 * self.n_pixels + 1)
+        wgrid = self.wavelength(grid)
+        order = np.argsort(wgrid)
+        p = np.interp(wl, wgrid[order], grid[order], left=np.nan, right=np.nan)
+        # beyond the detector, extrapolate linearly then polish with Newton steps
+        lo, hi = wgrid[order][0], wgrid[order][-1]
+        out = ~np.isfinite(p) & np.isfinite(wl)
+        if np.any(out):
+            end = np.where(wl < lo, grid[order][0], grid[order][-1])
+            p = np.where(out, end + (wl - np.where(wl < lo, lo, hi)) / self.dispersion(end), p)
+        for _ in range(3):
+            p = p - (self.wavelength(p) - wl) / self.dispersion(p)
+        return p
+
+    @property
+    def wavelength_limits(self) -> tuple[float, float]:
+        """Wavelengths (nm) at the two ends of the detector, smaller first."""
+        ends = self.wavelength([-0.5, self.n_pixels - 0.5])
+        return float(ends.min()), float(ends.max())
+
+    # -- file ----------------------------------------------------------------------------
+    def to_dict(self) -> dict:
+        """The JSON document (schema ``ritzline.wavelength-solution`` version 1)."""
+        m = self.matches
+        lines = []
+        if m is not None and len(m):
+            for row in m:
+                lines.append(
+                    {
+                        "pixel": float(row["pixel"]),
+                        "pixel_err": float(row["pixel_err"]),
+                        "wavelength_ref": float(row["wavelength_ref"]),
+                        "wavelength_ref_err": float(row["wavelength_ref_err"]),
+                        "species": str(row["species"]),
+                        "designation": str(row["designation"]),
+                        "flux": _json_float(row["flux"]),
+                        "snr": _json_float(row["snr"]),
+                        "residual_nm": float(row["residual_nm"]),
+                        "used": bool(row["used"]),
+                        "reason": str(row["reason"]),
+                    }
+                )
+        return {
+            "schema": SCHEMA_NAME,
+            "schema_version": SCHEMA_VERSION,
+            "polynomial": {
+                "kind": "chebyshev",
+                "variable": "x = 2*pixel/(n_pixels-1) - 1",
+                "domain": list(self.domain),
+                "coefficients": [float(c) for c in self.coefficients],
+                "covariance": [[float(c) for c in row] for row in self.covariance],
+                "model_spread": [float(c) for c in self.model_spread],
+            },
+            "wavelength_unit": "nm",
+            "medium": self.medium,
+            "lamps": list(self.lamps),
+            "n_pixels": int(self.n_pixels),
+            "fwhm_pixel": _json_float(self.fwhm_pixel),
+            "rms_nm": float(self.rms_nm),
+            "rms_pixel": float(self.rms_pixel),
+            "confidence": float(self.confidence),
+            "verdict": self.verdict,
+            "lines": lines,
+            "meta": _jsonable(self.meta),
+        }
+
+    def save(self, path: str | os.PathLike) -> Path:
+        """Write the solution as JSON, atomically; returns the path."""
+        path = Path(path)
+        text = json.dumps(self.to_dict(), indent=1, allow_nan=False)
+        with atomic_write(path, "w", encoding="utf-8") as fh:
+            fh.write(text + "\n")
+        return path
+
+    @classmethod
+    def load(cls, path: str | os.PathLike) -> Solution:
+        """Read and validate a solution file.
+
+        Raises
+        ------
+        SolutionFormatError
+            Naming the file and the problem: missing, unreadable, not JSON, wrong schema or
+            version, a missing or wrong-typed field, a covariance of the wrong shape, or
+            non-finite numbers.
+        """
+        path = Path(path)
+        try:
+            text = path.read_text(encoding="utf-8")
+        except FileNotFoundError:
+            raise SolutionFormatError(f"{path}: solution file not found") from None
+        except (OSError, UnicodeDecodeError) as exc:
+            raise SolutionFormatError(f"{path}: cannot read solution file ({exc})") from None
+        try:
+            doc = json.loads(text)
+        except json.JSONDecodeError as exc:
+            raise SolutionFormatError(
+                f"{path}: not a JSON solution file ({exc.msg} at line {exc.lineno})"
+            ) from None
+        return cls.from_dict(doc, source=str(path))
+
+    @classmethod
+    def from_dict(cls, doc: Any, *, source: str = "solution") -> Solution:
+        """Build a Solution from its JSON document, validating every field."""
+
+        def bad(problem: str) -> SolutionFormatError:
+            return SolutionFormatError(f"{source}: {problem}; re-create it with ritzline calibrate")
+
+        if not isinstance(doc, dict):
+            raise bad("top level is not a JSON object")
+        if doc.get("schema") != SCHEMA_NAME:
+            raise bad(f"'schema' is {doc.get('schema')!r}, expected {SCHEMA_NAME!r}")
+        version = doc.get("schema_version")
+        if "schema_version" not in doc:
+            raise bad("missing field 'schema_version'")
+        if not isinstance(version, int) or isinstance(version, bool):
+            raise bad(f"'schema_version' must be an integer, got {version!r}")
+        if version != SCHEMA_VERSION:
+            raise bad(
+                f"schema_version {version} is not supported (this ritzline reads {SCHEMA_VERSION})"
+            )
+
+        def get(obj: dict, key: str, kind, where: str = ""):
+            name = f"{where}{key}"
+            if key not in obj:
+                raise bad(f"missing field '{name}'")
+            value = obj[key]
+            ok = isinstance(value, kind) and not (
+                isinstance(value, bool) and bool not in np.atleast_1d(kind)
+            )
+            if not ok:
+                raise bad(f"field '{name}' has type {type(value).__name__}")
+            return value
+
+        poly = get(doc, "polynomial", dict)
+        kind = get(poly, "kind", str, "polynomial.")
+        if kind != "chebyshev":
+            raise bad(f"polynomial kind {kind!r} is not supported (expected 'chebyshev')")
+        n_pixels = get(doc, "n_pixels", int)
+        if n_pixels < 2:
+            raise bad(f"n_pixels must be >= 2, got {n_pixels}")
+        domain = _numbers(get(poly, "domain", list, "polynomial."), "polynomial.domain", bad)
+        if domain.shape != (2,) or domain[0] != 0 or domain[1] != n_pixels - 1:
+            raise bad(f"polynomial.domain must be [0, {n_pixels - 1}], got {domain.tolist()}")
+        coef = _numbers(get(poly, "coefficients", list, "polynomial."), "coefficients", bad)
+        if coef.ndim != 1 or coef.size < 2:
+            raise bad("polynomial.coefficients must be a list of at least 2 numbers")
+        cov = _numbers(get(poly, "covariance", list, "polynomial."), "covariance", bad)
+        if cov.shape != (coef.size, coef.size):
+            raise bad(
+                f"polynomial.covariance has shape {cov.shape}, expected "
+                f"{(coef.size, coef.size)} for {coef.size} coefficients"
+            )
+        spread = _numbers(poly.get("model_spread", [0.0]), "model_spread", bad)
+        if spread.ndim != 1 or spread.size < 1:
+            raise bad("polynomial.model_spread must be a list of numbers")
+        medium = get(doc, "medium", str)
+        if medium not in ("air", "vacuum"):
+            raise bad(f"medium must be 'air' or 'vacuum', got {medium!r}")
+        if doc.get("wavelength_unit", "nm") != "nm":
+            raise bad(f"wavelength_unit must be 'nm', got {doc.get('wavelength_unit')!r}")
+        lamps = get(doc, "lamps", list)
+        if not all(isinstance(s, str) for s in lamps):
+            raise bad("lamps must be a list of strings")
+        rms_nm = float(_numbers([get(doc, "rms_nm", (int, float))], "rms_nm", bad)[0])
+        rms_px = float(_numbers([get(doc, "rms_pixel", (int, float))], "rms_pixel", bad)[0])
+        conf = float(_numbers([get(doc, "confidence", (int, float))], "confidence", bad)[0])
+        if not 0.0 <= conf <= 1.0:
+            raise bad(f"confidence must lie in [0, 1], got {conf}")
+        verdict = get(doc, "verdict", str)
+        fwhm = doc.get("fwhm_pixel")
+        if fwhm is not None and (not isinstance(fwhm, (int, float)) or isinstance(fwhm, bool)):
+            raise bad(f"field 'fwhm_pixel' has type {type(fwhm).__name__}")
+        lines = get(doc, "lines", list)
+        meta = doc.get("meta", {})
+        if not isinstance(meta, dict):
+            raise bad("field 'meta' must be an object")
+        matches = _lines_table(lines, bad)
+        return cls(
+            coefficients=coef,
+            covariance=cov,
+            n_pixels=n_pixels,
+            medium=medium,
+            lamps=tuple(lamps),
+            matches=matches,
+            rms_nm=rms_nm,
+            rms_pixel=rms_px,
+            confidence=conf,
+            verdict=verdict,
+            fwhm_pixel=float("nan") if fwhm is None else float(fwhm),
+            model_spread=spread,
+            meta=dict(meta, loaded_from=source),
+        )
+
+    def summary(self) -> dict:
+        """The figures a person reads first (used by the CLI report)."""
+        used = np.asarray(self.matches["used"], bool) if len(self.matches) else np.zeros(0, bool)
+        disp = np.abs(self.dispersion(np.linspace(0, self.n_pixels - 1, 64)))
+        return {
+            "lines_used": int(used.sum()),
+            "lines_rejected": int((~used).sum()),
+            "rms_nm": self.rms_nm,
+            "rms_pixel": self.rms_pixel,
+            "degree": self.degree,
+            "dispersion_nm_per_px": (float(disp.min()), float(disp.max())),
+            "wavelength_limits_nm": self.wavelength_limits,
+            "direction": "increasing" if self.dispersion(self.n_pixels / 2) > 0 else "decreasing",
+            "confidence": self.confidence,
+            "verdict": self.verdict,
+            "medium": self.medium,
+            "lamps": list(self.lamps),
+        }
+
+
+_LINE_FIELDS = {
+    "pixel": (int, float),
+    "pixel_err": (int, float),
+    "wavelength_ref": (int, float),
+    "wavelength_ref_err": (int, float),
+    "species": str,
+    "designation": str,
+    "residual_nm": (int, float),
+    "used": bool,
+    "reason": str,
+}
+
+
+def _numbers(value, name: str, bad) -> np.ndarray:
+    try:
+        arr = np.asarray(value, dtype=float)
+    except (TypeError, ValueError):
+        raise bad(f"{name} must contain only numbers") from None
+    if any(isinstance(v, bool) for v in np.ravel(np.asarray(value, dtype=object))):
+        raise bad(f"{name} must contain only numbers")
+    if not np.all(np.isfinite(arr)):
+        raise bad(f"{name} contains non-finite values")
+    return arr
+
+
+def _lines_table(lines: list, bad):
+    from astropy.table import Table
+
+    cols: dict[str, list] = {k: [] for k in (*_LINE_FIELDS, "flux", "snr")}
+    for i, item in enumerate(lines):
+        if not isinstance(item, dict):
+            raise bad(f"lines[{i}] is not an object")
+        for key, kind in _LINE_FIELDS.items():
+            if key not in item:
+                raise bad(f"missing field 'lines[{i}].{key}'")
+            value = item[key]
+            if not isinstance(value, kind) or (kind != bool and isinstance(value, bool)):
+                raise bad(f"field 'lines[{i}].{key}' has type {type(value).__name__}")
+            if kind != str and kind != bool and not math.isfinite(value):
+                raise bad(f"field 'lines[{i}].{key}' is not finite")
+            cols[key].append(value)
+        for key in ("flux", "snr"):
+            value = item.get(key)
+            cols[key].append(float("nan") if value is None else float(value))
+    return _matches_table(
+        pixel=np.array(cols["pixel"], float),
+        pixel_err=np.array(cols["pixel_err"], float),
+        wavelength_ref=np.array(cols["wavelength_ref"], float),
+        wavelength_ref_err=np.array(cols["wavelength_ref_err"], float),
+        species=cols["species"],
+        designation=cols["designation"],
+        flux=np.array(cols["flux"], float),
+        snr=np.array(cols["snr"], float),
+        residual_nm=np.array(cols["residual_nm"], float),
+        used=np.array(cols["used"], bool),
+        reason=cols["reason"],
+        table_cls=Table,
+    )
+
+
+def _matches_table(*, table_cls=None, wavelength_fit=None, dispersion=None, **cols):
+    if table_cls is None:
+        from astropy.table import Table as table_cls
+    import astropy.units as u
+
+    n = len(cols["pixel"])
+    if wavelength_fit is None:
+        wavelength_fit = np.asarray(cols["wavelength_ref"], float) + np.asarray(
+            cols["residual_nm"], float
+        )
+    residual_px = (
+        np.asarray(cols["residual_nm"], float) / dispersion
+        if dispersion is not None
+        else np.full(n, np.nan)
+    )
+    t = table_cls()
+    t["pixel"] = np.asarray(cols["pixel"], float) * u.pix
+    t["pixel_err"] = np.asarray(cols["pixel_err"], float) * u.pix
+    t["wavelength_ref"] = np.asarray(cols["wavelength_ref"], float) * u.nm
+    t["wavelength_ref_err"] = np.asarray(cols["wavelength_ref_err"], float) * u.nm
+    t["species"] = np.asarray(cols["species"], dtype=str) if n else np.zeros(0, "U1")
+    t["designation"] = np.asarray(cols["designation"], dtype=str) if n else np.zeros(0, "U1")
+    t["flux"] = np.asarray(cols["flux"], float) * u.ct
+    t["snr"] = np.asarray(cols["snr"], float)
+    t["wavelength_fit"] = np.asarray(wavelength_fit, float) * u.nm
+    t["residual_nm"] = np.asarray(cols["residual_nm"], float) * u.nm
+    t["residual_pixel"] = residual_px * u.pix
+    t["used"] = np.asarray(cols["used"], bool)
+    t["reason"] = np.asarray(cols["reason"], dtype=str) if n else np.zeros(0, "U1")
+    return t
+
+
+def _json_float(value) -> float | None:
+    v = float(value)
+    return v if math.isfinite(v) else None
+
+
+def _jsonable(obj):
+    if isinstance(obj, dict):
+        return {str(k): _jsonable(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [_jsonable(v) for v in obj]
+    if isinstance(obj, (np.integer,)):
+        return int(obj)
+    if isinstance(obj, (float, np.floating)):
+        return _json_float(obj)
+    if isinstance(obj, (str, int, bool)) or obj is None:
+        return obj
+    return str(obj)
+
+
+# ---- inputs ---------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class _Lines:
+    """Detected lamp lines, sorted by pixel."""
+
+    pixel: np.ndarray
+    pixel_err: np.ndarray
+    flux: np.ndarray
+    snr: np.ndarray
+    fwhm: np.ndarray
+    bad: np.ndarray  # saturated / blended / edge: matched but not fitted
+    reason: np.ndarray  # why a line is not fitted ("" when clean)
+    n_pixels: int
+
+
+@dataclass(frozen=True)
+class _Refs:
+    """Reference lamp lines, sorted by wavelength."""
+
+    wavelength: np.ndarray
+    wavelength_err: np.ndarray
+    intensity: np.ndarray
+    species: np.ndarray
+    designation: np.ndarray
+
+
+def _detections(spectrum, n_pixels: int | None) -> tuple[_Lines, dict]:
+    """Lines of a lamp exposure: run ``find_lines`` on a spectrum, or take a line table."""
+    from astropy.table import Table
+
+    info: dict = {}
+    if isinstance(spectrum, Table):
+        table = spectrum
+        n = n_pixels or table.meta.get("n_pixels")
+        if n is None:
+            raise CalibrationError(
+                "a line table was given without the detector length: pass n_pixels= or put "
+                "'n_pixels' in the table meta"
+            )
+    else:
+        from .peaks import find_lines
+        from .spectrum import spectrum_arrays
+
+        arrays = spectrum_arrays(spectrum)
+        n = arrays.counts.size
+        info = {k: arrays.meta.get(k) for k in ("source", "sha256") if arrays.meta.get(k)}
+        table = find_lines(spectrum)
+    if "pixel" not in table.colnames:
+        raise CalibrationError("the line table has no 'pixel' column")
+    p = np.asarray(table["pixel"], float)
+    m = p.size
+
+    def col(name, default):
+        return np.asarray(table[name], float) if name in table.colnames else np.full(m, default)
+
+    perr = col("pixel_err", 0.05)
+    perr = np.where(np.isfinite(perr) & (perr > 0), perr, 0.05)
+    flags = (
+        np.asarray(table["flags"], dtype=str) if "flags" in table.colnames else np.full(m, "")
+    )
+    reason = np.full(m, "", dtype=object)
+    for word in ("saturated", "blended", "edge"):
+        has = np.char.find(flags.astype(str), word) >= 0
+        reason[has & (reason == "")] = word
+    order = np.argsort(p)
+    lines = _Lines(
+        pixel=p[order],
+        pixel_err=perr[order],
+        flux=col("flux", np.nan)[order],
+        snr=col("snr", np.nan)[order],
+        fwhm=col("fwhm_pixel", np.nan)[order],
+        bad=(reason != "")[order],
+        reason=reason[order].astype(str),
+        n_pixels=int(n),
+    )
+    return lines, info
+
+
+def _references(lamps, wavelength_range, medium: str, fwhm_nm: float | None = None) -> _Refs:
+    from . import levels
+
+    parts = []
+    for name in lamps:
+        t = levels.lamp_lines(name, wavelength_range=wavelength_range, medium=medium,
+                              fwhm_nm=fwhm_nm)
+        if "usable" in t.colnames:
+            t = t[np.asarray(t["usable"], bool)]
+        parts.append(t)
+    w = np.concatenate([np.asarray(t["wavelength"], float) for t in parts])
+    m = w.size
+
+    def cat(name, default):
+        vals = [
+            np.asarray(t[name]) if name in t.colnames else np.full(len(t), default)
+            for t in parts
+        ]
+        return np.concatenate(vals) if vals else np.zeros(0)
+
+    werr = cat("wavelength_err", 0.001).astype(float)
+    werr = np.where(np.isfinite(werr) & (werr >= 0), werr, 0.001)
+    order = np.argsort(w, kind="stable")
+    des = cat("designation", "").astype(str) if m else np.zeros(0, str)
+    return _Refs(
+        wavelength=w[order],
+        wavelength_err=werr[order],
+        intensity=cat("intensity", np.nan).astype(float)[order],
+        species=cat("species", "").astype(str)[order],
+        designation=des[order],
+    )
+
+
+# ---- fitting ----------------------------------------------------------------------------
+
+
+def _xnorm(p, n):
+    return 2.0 * np.asarray(p, float) / (n - 1) - 1.0
+
+
+def _wls(x, y, sig, deg):
+    """Weighted least squares Chebyshev fit: coefficients and (unscaled) covariance."""
+    v = _cheb.chebvander(x, deg)
+    a = v / sig[:, None]
+    b = y / sig
+    q, r = np.linalg.qr(a)
+    coef = np.linalg.solve(r, q.T @ b)
+    rinv = np.linalg.inv(r)
+    return coef, rinv @ rinv.T
+
+
+def _fit_clip(x, y, sig, deg, *, nsigma=_CLIP_NSIGMA, keep=None, max_iter=8):
+    """Fit with iterative rejection (robust scale); returns coef, cov, used mask, scale."""
+    use = np.ones(x.size, bool) if keep is None else keep.copy()
+    for _ in range(max_iter):
+        coef, cov = _wls(x[use], y[use], sig[use], deg)
+        z = (y - _cheb.chebval(x, coef)) / sig
+        scale = max(1.0, 1.4826 * float(np.median(np.abs(z[use]))))
+        new = np.abs(z) < nsigma * scale
+        if keep is not None:
+            new &= keep
+        if new.sum() < deg + 2:
+            break
+        if np.array_equal(new, use):
+            break
+        use = new
+    coef, cov = _wls(x[use], y[use], sig[use], deg)
+    z = (y - _cheb.chebval(x, coef)) / sig
+    dof = max(1, int(use.sum()) - deg - 1)
+    chi2r = float(np.sum(z[use] ** 2) / dof)
+    return coef, cov * max(1.0, chi2r), use, chi2r
+
+
+def _band(x, coef, cov, spread=None):
+    v = _cheb.chebvander(x, len(coef) - 1)
+    var = np.einsum("ij,jk,ik->i", v, cov, v)
+    if spread is not None:
+        var = var + _cheb.chebval(x, spread) ** 2
+    return np.sqrt(np.clip(var, 0, None))
+
+
+def _degree_cap(n_lines: int, spread: float) -> int:
+    """Highest degree allowed by the number of lines (the next degree must still leave two
+    degrees of freedom, for the model-spread band) and by their spread over the detector."""
+    return int(max(1, min(MAX_DEGREE, n_lines - 4, 1 + math.floor(4 * spread))))
+
+
+def _line_sigma(det: _Lines, ref: _Refs, di, ri, disp):
+    return np.sqrt((det.pixel_err[di] * disp) ** 2 + ref.wavelength_err[ri] ** 2)
+
+
+# ---- searching -------------------------------------------------------------------------
+
+
+def _quads(pos: np.ndarray, ahead: int, min_gap: float):
+    """Index quadruplets (anchor + 3 of its next ``ahead`` neighbours) and their two
+    spacing-ratio invariants."""
+    from itertools import combinations
+
+    n = pos.size
+    if n < 4:
+        return np.zeros((0, 4), int), np.zeros((0, 2))
+    combos = np.array(list(combinations(range(1, ahead + 1), 3)))
+    i = np.arange(n)[:, None]
+    idx = np.stack(
+        [np.broadcast_to(i, (n, len(combos))), i + combos[:, 0], i + combos[:, 1],
+         i + combos[:, 2]],
+        axis=-1,
+    ).reshape(-1, 4)
+    idx = idx[idx[:, 3] < n]
+    pq = pos[idx]
+    gaps = np.diff(pq, axis=1)
+    ok = gaps.min(axis=1) >= min_gap
+    idx, pq = idx[ok], pq[ok]
+    span = pq[:, 3] - pq[:, 0]
+    inv = np.stack([(pq[:, 1] - pq[:, 0]) / span, (pq[:, 2] - pq[:, 0]) / span], axis=1)
+    return idx, inv
+
+
+def _seed_candidates(det: _Lines, ref: _Refs, wrange, *, max_lines=60, max_seeds=6):
+    """Vote over (direction, dispersion, central wavelength) from matched quadruplets; return
+    the best cells' correspondence sets and the number of hypotheses examined."""
+    from scipy.spatial import cKDTree
+
+    n = det.n_pixels
+    pc = (n - 1) / 2.0
+    strong = np.arange(det.pixel.size)
+    if strong.size > max_lines:
+        score = np.where(np.isfinite(det.flux), det.flux, 0.0)
+        strong = np.sort(np.argsort(score)[::-1][:max_lines])
+    pos = det.pixel[strong]
+    dq, dinv = _quads(pos, 5, 1.0)
+    rq, rinv = _quads(ref.wavelength, 8, 0.0)
+    if len(dq) == 0 or len(rq) == 0:
+        return [], 0
+    rtree = cKDTree(rinv)
+    votes = []
+    for direction in (1, -1):
+        q_inv = dinv if direction == 1 else np.stack([1 - dinv[:, 1], 1 - dinv[:, 0]], 1)
+        span_px = pos[dq[:, 3]] - pos[dq[:, 0]]
+        tol = np.clip(4.0 * np.sqrt(2) * 0.1 / span_px + 0.004, 0.004, 0.03)
+        dtree = cKDTree(q_inv)
+        pairs = dtree.sparse_distance_matrix(rtree, 0.03, output_type="ndarray")
+        if pairs.size == 0:
+            continue
+        qi, rj, dist = pairs["i"], pairs["j"], pairs["v"]
+        keep = dist < tol[qi]
+        qi, rj = qi[keep], rj[keep]
+        dquad = dq[qi]
+        rquad = rq[rj]
+        d = (ref.wavelength[rquad[:, 3]] - ref.wavelength[rquad[:, 0]]) / (
+            pos[dquad[:, 3]] - pos[dquad[:, 0]]
+        )
+        if direction == 1:
+            lc = ref.wavelength[rquad[:, 0]] + d * (pc - pos[dquad[:, 0]])
+            det_order = dquad
+        else:
+            lc = ref.wavelength[rquad[:, 0]] - d * (pc - pos[dquad[:, 3]])
+            det_order = dquad[:, ::-1]
+        lo = lc - d * pc
+        hi = lc + d * pc
+        width = hi - lo
+        ok = (
+            (d > DISPERSION_LIMITS[0])
+            & (d < DISPERSION_LIMITS[1])
+            & (lo > wrange[0] - 0.1 * width)
+            & (hi < wrange[1] + 0.1 * width)
+        )
+        votes.append((direction, d[ok], lc[ok], strong[det_order[ok]], rquad[ok]))
+    n_hyp = int(sum(v[1].size for v in votes))
+    if n_hyp == 0:
+        return [], 0
+    cells = []
+    bw_ld, bw_lc = 0.04, 0.02
+    for direction, d, lc, dpairs, rpairs in votes:
+        ld = np.log(d)
+        for off_a in (0.0, 0.5):
+            a = np.floor(ld / bw_ld + off_a).astype(np.int64)
+            d_cell = np.exp((a - off_a + 0.5) * bw_ld)
+            for off_b in (0.0, 0.5):
+                b = np.floor(lc / (bw_lc * d_cell * n) + off_b).astype(np.int64)
+                key = a * 10_000_000 + b
+                _, inverse, counts = np.unique(key, return_inverse=True, return_counts=True)
+                top = np.argsort(counts)[::-1][:max_seeds]
+                for t in top:
+                    if counts[t] < 2:
+                        continue
+                    sel = inverse == t
+                    cells.append((int(counts[t]), direction, dpairs[sel], rpairs[sel]))
+    cells.sort(key=lambda c: -c[0])
+    seeds, seen = [], []
+    for count, direction, dp, rp in cells:
+        pairs = np.unique(np.stack([dp.ravel(), rp.ravel()], 1), axis=0)
+        sig = (direction, pairs.shape[0], int(pairs[:, 0].sum()), int(pairs[:, 1].sum()))
+        if sig in seen:
+            continue
+        seen.append(sig)
+        seeds.append((count, direction, pairs))
+        if len(seeds) >= max_seeds:
+            break
+    return seeds, n_hyp
+
+
+def _initial_pairs(pairs: np.ndarray):
+    """One reference per detection and one detection per reference, by vote count."""
+    key, counts = np.unique(pairs, axis=0, return_counts=True)
+    order = np.argsort(-counts, kind="stable")
+    key = key[order]
+    _, first_d = np.unique(key[:, 0], return_index=True)
+    key = key[np.sort(first_d)]
+    _, first_r = np.unique(key[:, 1], return_index=True)
+    key = key[np.sort(first_r)]
+    return key[:, 0], key[:, 1]
+
+
+def _associate(det: _Lines, ref: _Refs, pred, tol):
+    """Nearest reference line to each predicted wavelength inside ``tol``; one-to-one."""
+    w = ref.wavelength
+    j = np.clip(np.searchsorted(w, pred), 1, w.size - 1)
+    left, right = w[j - 1], w[j]
+    near = np.where(np.abs(pred - left) < np.abs(pred - right), j - 1, j)
+    dist = np.abs(pred - w[near])
+    ok = dist < tol
+    di = np.flatnonzero(ok)
+    ri = near[ok]
+    score = dist[ok] / tol[ok]
+    order = np.argsort(score)
+    di, ri = di[order], ri[order]
+    _, first = np.unique(ri, return_index=True)
+    di, ri = di[first], ri[first]
+    order = np.argsort(di)
+    return di[order], ri[order]
+
+
+def _grow(det: _Lines, ref: _Refs, di, ri, *, max_iter=25, max_degree=3):
+    """Widen a set of correspondences to the whole detector by match-and-refit."""
+    n = det.n_pixels
+    xall = _xnorm(det.pixel, n)
+    state = None
+    for _ in range(max_iter):
+        if di.size < 3:
+            return None
+        x = xall[di]
+        y = ref.wavelength[ri]
+        spread = (x.max() - x.min()) / 2.0
+        deg = int(max(1, min(max_degree, di.size - 3, 1 + math.floor(3 * spread))))
+        coef0, _ = _wls(x, y, np.ones_like(x), 1)
+        disp = np.abs(_cheb.chebval(x, _cheb.chebder(coef0))) * 2 / (n - 1)
+        sig = np.sqrt(_line_sigma(det, ref, di, ri, disp) ** 2 + (0.02 * disp) ** 2)
+        coef, cov, use, chi2r = _fit_clip(x, y, sig, deg, nsigma=5.0)
+        spread_c = None
+        if use.sum() >= deg + 4:
+            c_hi, _, _, _ = _fit_clip(x, y, sig, deg + 1, keep=use, max_iter=1)
+            spread_c = c_hi - np.pad(coef, (0, 1))
+        pred = _cheb.chebval(xall, coef)
+        dall = np.abs(_cheb.chebval(xall, _cheb.chebder(coef))) * 2 / (n - 1)
+        band = _band(xall, coef, cov, spread_c)
+        meas = np.sqrt((det.pixel_err * dall) ** 2 + (np.sqrt(chi2r) * 0.05 * dall) ** 2)
+        tol = _MATCH_NSIGMA * np.sqrt(band**2 + meas**2 + np.median(ref.wavelength_err) ** 2)
+        tol = np.minimum(tol, 0.45 * _min_spacing_px(ref, pred, dall))
+        new_di, new_ri = _associate(det, ref, pred, tol)
+        if state is not None and np.array_equal(new_di, di) and np.array_equal(new_ri, ri):
+            break
+        state = (coef, cov)
+        di, ri = new_di, new_ri
+    return di, ri
+
+
+def _min_spacing_px(ref: _Refs, pred, dall):
+    """Half the local reference-line spacing in nm, per prediction (caps the window)."""
+    w = ref.wavelength
+    gaps = np.diff(w)
+    j = np.clip(np.searchsorted(w, pred), 1, w.size - 1)
+    g = np.minimum(gaps[np.clip(j - 1, 0, gaps.size - 1)], gaps[np.clip(j - 2, 0, gaps.size - 1)])
+    return np.maximum(g, 2 * dall)
+
+
+# ---- final fit and trust ---------------------------------------------------------------
+
+
+@dataclass
+class _Fit:
+    di: np.ndarray
+    ri: np.ndarray
+    coef: np.ndarray
+    cov: np.ndarray
+    spread: np.ndarray
+    used: np.ndarray
+    reason: np.ndarray
+    chi2r: float
+    sig: np.ndarray
+    log10_p: float = 0.0
+    n_hyp: int = 1
+    method: str = "search"
+
+
+def _final_fit(det: _Lines, ref: _Refs, di, ri, degree: int | None) -> _Fit | None:
+    """Weighted Chebyshev fit with degree selection, rejection with reasons, model spread."""
+    n = det.n_pixels
+    x = _xnorm(det.pixel[di], n)
+    y = ref.wavelength[ri]
+    fit_ok = ~det.bad[di]
+    if fit_ok.sum() < 3:
+        return None
+    c1, _ = _wls(x[fit_ok], y[fit_ok], np.ones(fit_ok.sum()), 1)
+    disp = np.abs(_cheb.chebval(x, _cheb.chebder(c1))) * 2 / (n - 1)
+    sig = _line_sigma(det, ref, di, ri, disp)
+    spread = (x[fit_ok].max() - x[fit_ok].min()) / 2.0
+    cap = _degree_cap(int(fit_ok.sum()), spread)
+    if degree is not None:
+        if degree + 2 > fit_ok.sum():
+            raise CalibrationError(
+                f"degree {degree} needs at least {degree + 2} clean matched lines, found "
+                f"{int(fit_ok.sum())}; lower --degree"
+            )
+        deg = int(degree)
+        coef, cov, use, chi2r = _fit_clip(x, y, sig, deg, keep=fit_ok)
+    else:
+        coef, cov, use, chi2r = _fit_clip(x, y, sig, min(cap, 3), keep=fit_ok)
+        cap = _degree_cap(int(use.sum()), spread)
+        best = None
+        m = int(use.sum())
+        for deg_try in range(1, cap + 1):
+            c, _ = _wls(x[use], y[use], sig[use], deg_try)
+            chi2 = float(np.sum(((y[use] - _cheb.chebval(x[use], c)) / sig[use]) ** 2))
+            bic = chi2 + (deg_try + 1) * math.log(m)
+            if best is None or bic < best[0]:
+                best = (bic, deg_try)
+        deg = best[1]
+        coef, cov, use, chi2r = _fit_clip(x, y, sig, deg, keep=fit_ok)
+    spread_c = np.zeros(deg + 2)
+    if use.sum() >= deg + 4:
+        c_hi, _, _, _ = _fit_clip(x, y, sig, deg + 1, keep=use, max_iter=1)
+        spread_c = c_hi - np.pad(coef, (0, 1))
+    z = (y - _cheb.chebval(x, coef)) / (sig * math.sqrt(max(1.0, chi2r)))
+    reason = np.where(fit_ok, "", det.reason[di]).astype(object)
+    outlier = fit_ok & ~use
+    reason[outlier] = [f"outlier {abs(v):.1f} sigma" for v in z[outlier]]
+    return _Fit(di, ri, coef, cov, spread_c, use, reason.astype(str), chi2r, sig)
+
+
+def _refine(det: _Lines, ref: _Refs, fit: _Fit, degree) -> _Fit | None:
+    """Re-associate every detection with the fitted model and refit, until stable."""
+    n = det.n_pixels
+    xall = _xnorm(det.pixel, n)
+    for _ in range(4):
+        pred = _cheb.chebval(xall, fit.coef)
+        dall = np.abs(_cheb.chebval(xall, _cheb.chebder(fit.coef))) * 2 / (n - 1)
+        band = _band(xall, fit.coef, fit.cov, fit.spread)
+        tol = _MATCH_NSIGMA * np.sqrt(
+            band**2 + max(1.0, fit.chi2r) * ((det.pixel_err * dall) ** 2
+                                             + np.median(ref.wavelength_err) ** 2)
+        )
+        tol = np.minimum(tol, 0.45 * _min_spacing_px(ref, pred, dall))
+        di, ri = _associate(det, ref, pred, tol)
+        if np.array_equal(di, fit.di) and np.array_equal(ri, fit.ri):
+            break
+        new = _final_fit(det, ref, di, ri, degree)
+        if new is None:
+            break
+        fit = new
+    return fit
+
+
+def _log10_chance(det: _Lines, ref: _Refs, fit: _Fit, n_hyp: int, n_free: int) -> float:
+    """log10 of the look-elsewhere-corrected chance that a line list of the same local
+    density matches at least as many detections inside the same windows."""
+    from scipy.stats import poisson
+
+    n = det.n_pixels
+    xall = _xnorm(det.pixel, n)
+    pred = _cheb.chebval(xall, fit.coef)
+    dall = np.abs(_cheb.chebval(xall, _cheb.chebder(fit.coef))) * 2 / (n - 1)
+    scale = math.sqrt(max(1.0, fit.chi2r))
+    window = _MATCH_NSIGMA * scale * np.sqrt(
+        (det.pixel_err * dall) ** 2 + np.median(ref.wavelength_err) ** 2
+    ) + _band(xall, fit.coef, fit.cov, fit.spread)
+    span = abs(pred.max() - pred.min()) + 1e-9
+    half = 0.05 * span
+    w = ref.wavelength
+    local = np.searchsorted(w, pred + half) - np.searchsorted(w, pred - half)
+    density = np.maximum(local, 1) / (2 * half)
+    q = 1.0 - np.exp(-2.0 * window * density)
+    mu = float(q.sum())
+    k = int(fit.used.sum()) - n_free
+    if k <= 0:
+        return 0.0
+    log10_single = float(poisson.logsf(k - 1, mu)) / math.log(10)
+    return min(0.0, math.log10(max(n_hyp, 1)) + log10_single)
+
+
+def _solution_from_fit(det, ref, fit: _Fit, lamps, medium, meta, verdict) -> Solution:
+    n = det.n_pixels
+    x = _xnorm(det.pixel[fit.di], n)
+    wfit = _cheb.chebval(x, fit.coef)
+    disp = _cheb.chebval(x, _cheb.chebder(fit.coef)) * 2 / (n - 1)
+    resid = wfit - ref.wavelength[fit.ri]
+    used = fit.used
+    rms_nm = float(np.sqrt(np.mean(resid[used] ** 2)))
+    rms_px = float(np.sqrt(np.mean((resid[used] / disp[used]) ** 2)))
+    matches = _matches_table(
+        pixel=det.pixel[fit.di],
+        pixel_err=det.pixel_err[fit.di],
+        wavelength_ref=ref.wavelength[fit.ri],
+        wavelength_ref_err=ref.wavelength_err[fit.ri],
+        species=ref.species[fit.ri],
+        designation=ref.designation[fit.ri],
+        flux=det.flux[fit.di],
+        snr=det.snr[fit.di],
+        residual_nm=resid,
+        used=used,
+        reason=fit.reason,
+        wavelength_fit=wfit,
+        dispersion=disp,
+    )
+    fw = det.fwhm[fit.di][used]
+    fw = fw[np.isfinite(fw)]
+    p_chance = 10.0**fit.log10_p
+    return Solution(
+        coefficients=np.asarray(fit.coef, float),
+        covariance=np.asarray(fit.cov, float),
+        n_pixels=n,
+        medium=medium,
+        lamps=tuple(lamps),
+        matches=matches,
+        rms_nm=rms_nm,
+        rms_pixel=rms_px,
+        confidence=float(1.0 - p_chance),
+        verdict=verdict,
+        fwhm_pixel=float(np.median(fw)) if fw.size else float("nan"),
+        model_spread=np.asarray(fit.spread, float),
+        meta=dict(
+            meta,
+            p_chance=p_chance,
+            log10_p_chance=fit.log10_p,
+            n_hypotheses=fit.n_hyp,
+            chi2_reduced=fit.chi2r,
+            method=fit.method,
+        ),
+    )
+
+
+# ---- the guess path --------------------------------------------------------------------
+
+
+def _guess_fit(det: _Lines, ref: _Refs, guess: Solution, max_shift: float):
+    """Shift + stretch of an earlier solution: vote for the shift, fit both, keep the shape."""
+    n = det.n_pixels
+    c = (n - 1) / 2.0
+    p_old = guess.pixel(ref.wavelength)
+    inside = (p_old > -max_shift) & (p_old < n - 1 + max_shift)
+    ref_idx = np.flatnonzero(inside)
+    if ref_idx.size < 2:
+        return None
+    delta = det.pixel[:, None] - p_old[None, ref_idx]
+    near = np.abs(delta) < max_shift
+    if not near.any():
+        return None
+    bins = np.arange(-max_shift, max_shift + 0.5, 0.5)
+    hist, _ = np.histogram(delta[near], bins=bins)
+    hist = hist + np.r_[0, hist[:-1]] + np.r_[hist[1:], 0]
+    shift0 = float(bins[np.argmax(hist)] + 0.25)
+    n_hyp = bins.size
+    shift, stretch = shift0, 0.0
+    tol_px = 2.0
+    for _ in range(6):
+        pred_new = p_old[ref_idx] + shift + stretch * (p_old[ref_idx] - c)
+        # nearest prediction to each detection (one-to-one via _associate on pixels)
+        order = np.argsort(pred_new)
+        fake = _Refs(pred_new[order], np.zeros(order.size), np.zeros(order.size),
+                     np.zeros(order.size, str), np.zeros(order.size, str))
+        di, k = _associate(det, fake, det.pixel, np.full(det.pixel.size, tol_px))
+        ri = ref_idx[order][k]
+        ok = ~det.bad[di]
+        if ok.sum() < 3:
+            return None
+        a = np.stack([np.ones(ok.sum()), p_old[ri][ok] - c], 1) / det.pixel_err[di][ok, None]
+        b = (det.pixel[di][ok] - p_old[ri][ok]) / det.pixel_err[di][ok]
+        sol, *_ = np.linalg.lstsq(a, b, rcond=None)
+        resid = b - a @ sol
+        scale = max(1.0, 1.4826 * float(np.median(np.abs(resid))))
+        shift, stretch = float(sol[0]), float(sol[1])
+        tol_px = max(_MATCH_NSIGMA * scale * float(np.median(det.pixel_err[di])), 0.3)
+    return di, ri, shift, stretch, n_hyp
+
+
+def _compose_guess(guess: Solution, shift: float, stretch: float, cov_affine: np.ndarray):
+    """Chebyshev coefficients (and covariance) of guess.wavelength(p_old(p))."""
+    n = guess.n_pixels
+    c = (n - 1) / 2.0
+    deg = guess.degree
+    nodes = np.cos(np.pi * (np.arange(deg + 1) + 0.5) / (deg + 1))
+    p_new = (nodes + 1) * (n - 1) / 2
+
+    def transform(sh, st, coef):
+        p_old = c + (p_new - sh - c) / (1 + st)
+        vals = _cheb.chebval(_xnorm(p_old, n), coef)
+        return _cheb.chebfit(nodes, vals, deg)
+
+    coef = transform(shift, stretch, guess.coefficients)
+    m = np.stack([transform(shift, stretch, e) for e in np.eye(deg + 1)], axis=1)
+    eps = (1e-3, 1e-6)
+    ja = np.stack(
+        [
+            (transform(shift + eps[0], stretch, guess.coefficients) - coef) / eps[0],
+            (transform(shift, stretch + eps[1], guess.coefficients) - coef) / eps[1],
+        ],
+        axis=1,
+    )
+    cov = m @ guess.covariance @ m.T + ja @ cov_affine @ ja.T
+    spread = guess.model_spread
+    if spread.size:
+        ds = spread.size - 1
+        nodes_s = np.cos(np.pi * (np.arange(ds + 1) + 0.5) / (ds + 1))
+        p_s = (nodes_s + 1) * (n - 1) / 2
+        p_old = c + (p_s - shift - c) / (1 + stretch)
+        spread = _cheb.chebfit(nodes_s, _cheb.chebval(_xnorm(p_old, n), spread), ds)
+    return coef, cov, spread
+
+
+# ---- the public function ---------------------------------------------------------------
+
+
+def _as_nm_range(wavelength_range) -> tuple[float, float]:
+    if wavelength_range is None:
+        return DEFAULT_RANGE_NM
+    lo, hi = wavelength_range
+    vals = []
+    for v in (lo, hi):
+        if hasattr(v, "unit"):
+            import astropy.units as u
+
+            v = v.to_value(u.nm, equivalencies=u.spectral())
+        vals.append(float(v))
+    lo, hi = sorted(vals)
+    if not (math.isfinite(lo) and math.isfinite(hi)) or hi - lo <= 0:
+        raise CalibrationError(f"wavelength_range {wavelength_range!r} is empty or not finite")
+    return lo, hi
+
+
+def calibrate(
+    spectrum,
+    lamps: str | tuple[str, ...] | list[str] = ("Ne",),
+    *,
+    wavelength_range=None,
+    degree: int | None = None,
+    guess: Solution | None = None,
+    medium: str = "air",
+    n_pixels: int | None = None,
+    max_shift: float = 40.0,
+) -> Solution:
+    """Solve the pixel -> wavelength map of a reference-lamp exposure without a starting guess.
+
+    Parameters
+    ----------
+    spectrum : specutils.Spectrum, 1-D array of counts, or astropy Table of lines
+        The lamp exposure on a pixel axis (lines are found with ``peaks.find_lines``), or a
+        line table with at least a ``pixel`` column (``pixel_err``, ``flux``, ``snr``,
+        ``fwhm_pixel``, ``flags`` used when present) and ``n_pixels`` in its meta.
+    lamps : str or sequence of str
+        Lamp names known to ``levels.lamp_lines`` (e.g. "Ne", or ("Hg", "Ar")).
+    wavelength_range : (low, high), nm or Quantity, optional
+        Coarse range the detector lies in; default 200-1100 nm.
+    degree : int, optional
+        Chebyshev degree; by default chosen by BIC, capped by the number and spread of lines.
+    guess : Solution, optional
+        An earlier solution of the same detector: only a shift (up to ``max_shift`` pixels)
+        and a small stretch are searched, and fewer lines are needed.
+    medium : {"air", "vacuum"}
+        Medium of the reference wavelengths and of the solution.
+    n_pixels : int, optional
+        Detector length, needed only when ``spectrum`` is a line table without it in meta.
+    max_shift : float
+        Largest drift (pixels) searched on the ``guess`` path.
+
+    Returns
+    -------
+    Solution
+
+    Raises
+    ------
+    CalibrationError
+        When no trustworthy solution exists: too few lines, no consistent match (wrong lamp,
+        wrong range, not a lamp spectrum), or a match that could be chance.  The message says
+        what was tried and what is missing.
+    """
+    t0 = time.perf_counter()
+    if medium not in ("air", "vacuum"):
+        raise CalibrationError(f"medium must be 'air' or 'vacuum', got {medium!r}")
+    lamps = (lamps,) if isinstance(lamps, str) else tuple(lamps)
+    if not lamps:
+        raise CalibrationError("no lamp given: name the lamp species, e.g. lamps=('Ne',)")
+    wrange = _as_nm_range(wavelength_range)
+    det, info = _detections(spectrum, n_pixels)
+    if guess is not None:
+        if guess.n_pixels != det.n_pixels:
+            raise CalibrationError(
+                f"the guess was made for {guess.n_pixels} pixels, this exposure has "
+                f"{det.n_pixels}"
+            )
+        if guess.medium != medium:
+            raise CalibrationError(
+                f"the guess is in {guess.medium} wavelengths but medium={medium!r} was asked"
+            )
+        lo, hi = guess.wavelength_limits
+        margin = (hi - lo) * 0.1
+        wrange = (max(wrange[0], lo - margin), min(wrange[1], hi + margin))
+    ref = _references(lamps, wrange, medium)
+    lamp_txt = "+".join(lamps)
+    tried = (
+        f"{det.pixel.size} lines detected, {ref.wavelength.size} usable {lamp_txt} reference "
+        f"lines in {wrange[0]:.0f}-{wrange[1]:.0f} nm ({medium})"
+    )
+    if det.pixel.size < (3 if guess is not None else 5):
+        raise CalibrationError(
+            f"too few lines to calibrate: {tried}. Is this a lamp exposure? Check the "
+            "exposure level (lines need SNR >= 5) and that the lamp was on."
+        )
+    if ref.wavelength.size < 4:
+        raise CalibrationError(
+            f"too few reference lines: {tried}. Widen the wavelength range or add a lamp."
+        )
+    meta = {
+        "created": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
+        "ritzline_version": _version(),
+        "wavelength_range": list(wrange),
+        "n_detected": int(det.pixel.size),
+        "n_reference": int(ref.wavelength.size),
+        "input": info.get("source"),
+        "input_sha256": info.get("sha256"),
+    }
+    if guess is not None:
+        fit = _calibrate_from_guess(det, ref, guess, degree, max_shift)
+        verdict = "confident (from guess)"
+        what = f"a shift of up to {max_shift:g} px and a small stretch of the guess"
+    else:
+        fit = _calibrate_blind(det, ref, wrange, degree)
+        verdict = "confident"
+        what = "spacing-ratio matching of line quadruplets in both directions"
+    if fit is None:
+        raise CalibrationError(
+            f"no consistent match found ({what}): {tried}. Wrong lamp, wrong wavelength "
+            "range, or not a lamp exposure?"
+        )
+    if fit.log10_p > math.log10(CONFIDENT_P):
+        raise CalibrationError(
+            f"best match ({int(fit.used.sum())} lines, degree {len(fit.coef) - 1}) could be "
+            f"chance (p = {10**fit.log10_p:.2g} > {CONFIDENT_P:g}) after {what}: {tried}. "
+            "Wrong lamp or range, or too few lines: add a lamp, expose longer, or give "
+            "--range/--guess."
+        )
+    meta["solve_seconds"] = time.perf_counter() - t0
+    return _solution_from_fit(det, ref, fit, lamps, medium, meta, verdict)
+
+
+def _calibrate_blind(det: _Lines, ref: _Refs, wrange, degree) -> _Fit | None:
+    seeds, n_hyp = _seed_candidates(det, ref, wrange)
+    best = None
+    for _count, _direction, pairs in seeds:
+        di, ri = _initial_pairs(pairs)
+        grown = _grow(det, ref, di, ri)
+        if grown is None or grown[0].size < 4:
+            continue
+        fit = _final_fit(det, ref, *grown, degree)
+        if fit is None:
+            continue
+        fit = _refine(det, ref, fit, degree)
+        if fit is None or fit.used.sum() < 4:
+            continue
+        fit.n_hyp = max(n_hyp, 1)
+        fit.log10_p = _log10_chance(det, ref, fit, fit.n_hyp, len(fit.coef))
+        if best is None or fit.log10_p < best.log10_p:
+            best = fit
+    return best
+
+
+def _calibrate_from_guess(det, ref, guess: Solution, degree, max_shift) -> _Fit | None:
+    found = _guess_fit(det, ref, guess, max_shift)
+    if found is None:
+        return None
+    di, ri, _shift, _stretch, n_hyp = found
+    ok = ~det.bad[di]
+    free_needed = (degree if degree is not None else guess.degree) + 5
+    if degree is not None or ok.sum() >= free_needed:
+        fit = _final_fit(det, ref, di, ri, degree)
+        if fit is not None:
+            fit = _refine(det, ref, fit, degree)
+            fit.n_hyp, fit.method = n_hyp, "guess, free refit"
+            fit.log10_p = _log10_chance(det, ref, fit, n_hyp, 2)
+            return fit
+    # few lines: keep the earlier shape, fit shift and stretch with their covariance
+    n = det.n_pixels
+    c = (n - 1) / 2.0
+    p_old = guess.pixel(ref.wavelength[ri])
+    a = np.stack([np.ones(di.size), p_old - c], 1)
+    w = 1.0 / det.pixel_err[di]
+    use = ok.copy()
+    for _ in range(4):
+        sol, *_ = np.linalg.lstsq(a[use] * w[use, None], (det.pixel[di] - p_old)[use] * w[use],
+                                  rcond=None)
+        z = ((det.pixel[di] - p_old) - a @ sol) * w
+        scale = max(1.0, 1.4826 * float(np.median(np.abs(z[use]))))
+        new = ok & (np.abs(z) < _CLIP_NSIGMA * scale)
+        if new.sum() < 3 or np.array_equal(new, use):
+            break
+        use = new
+    aw = a[use] * w[use, None]
+    cov_a = np.linalg.inv(aw.T @ aw)
+    dof = max(1, int(use.sum()) - 2)
+    chi2r = float(np.sum(z[use] ** 2) / dof)
+    cov_a = cov_a * max(1.0, chi2r)
+    coef, cov, spread = _compose_guess(guess, float(sol[0]), float(sol[1]), cov_a)
+    reason = np.where(ok, "", det.reason[di]).astype(object)
+    out = ok & ~use
+    reason[out] = [f"outlier {abs(v):.1f} sigma" for v in z[out]]
+    x = _xnorm(det.pixel[di], n)
+    disp = np.abs(_cheb.chebval(x, _cheb.chebder(coef))) * 2 / (n - 1)
+    fit = _Fit(di, ri, coef, cov, spread, use, reason.astype(str), chi2r,
+               _line_sigma(det, ref, di, ri, disp), n_hyp=n_hyp, method="guess, shift+stretch")
+    fit.log10_p = _log10_chance(det, ref, fit, n_hyp, 2)
+    return fit
+
+
+def _version() -> str:
+    from . import __version__
+
+    return __version__
+
+
+# ---- calibrated spectra ----------------------------------------------------------------
+
+
+def calibrated_spectrum(spectrum, solution: Solution):
+    """A table of the exposure on the solution's wavelength axis: ``pixel, wavelength,
+    wavelength_err, counts, mask`` with units and provenance in meta."""
+    import astropy.units as u
+    from astropy.table import Table
+
+    from .spectrum import spectrum_arrays
+
+    arrays = spectrum_arrays(spectrum)
+    if arrays.counts.size != solution.n_pixels:
+        raise CalibrationError(
+            f"the spectrum has {arrays.counts.size} pixels, the solution {solution.n_pixels}"
+        )
+    pix = np.arange(solution.n_pixels, dtype=float)
+    t = Table()
+    t["pixel"] = pix * u.pix
+    t["wavelength"] = solution.wavelength(pix) * u.nm
+    t["wavelength_err"] = solution.wavelength_err(pix) * u.nm
+    t["counts"] = arrays.counts * u.ct
+    t["mask"] = arrays.mask
+    t.meta.update(
+        medium=solution.medium,
+        lamps=list(solution.lamps),
+        solution_degree=solution.degree,
+        solution_rms_nm=solution.rms_nm,
+        solution_confidence=solution.confidence,
+        ritzline_version=_version(),
+        source=arrays.meta.get("source"),
+    )
+    return t
+
+
+def write_calibrated(spectrum, solution: Solution, path: str | os.PathLike) -> Path:
+    """Write :func:`calibrated_spectrum` as ECSV (atomically); returns the path."""
+    path = Path(path)
+    write_table(calibrated_spectrum(spectrum, solution), path)
+    return path
+
+
+def file_sha256(path: str | os.PathLike) -> str:
+    """Hex SHA-256 of a file (the solution records the checksum of its input)."""
+    h = hashlib.sha256()
+    with open(path, "rb") as fh:
+        for chunk in iter(lambda: fh.read(1 << 20), b""):
+            h.update(chunk)
+    return h.hexdigest()
