@@ -140,4 +140,91 @@ def info(files: tuple[str, ...], column: str | None, as_json: bool) -> None:
 
 # ---- check -----------------------------------------------------------------------------
 
+
+@main.command("check")
+@click.argument("inputs", nargs=-1, required=True, type=click.Path(exists=True))
+@click.option("--solution", "solution_path", required=True, type=click.Path(exists=True,
+              dir_okay=False), help="Reference wavelength solution (JSON from `calibrate`).")
+@click.option("--lamp", multiple=True, help="Take the expected lines from this lamp's list "
+              "(repeatable) instead of the lines the reference solution used.")
+@click.option("--dark", type=click.Path(exists=True, dir_okay=False),
+              help="Dark frame given to the line finder for every exposure.")
+@click.option("-o", "--outdir", required=True, type=click.Path(file_okay=False),
+              help="Output folder: summary.ecsv, summary.json, figures, report.html.")
+@click.option("--workers", type=click.IntRange(min=1), default=None,
+              help="Local worker processes (default: number of cores).")
+@click.option("--dask-scheduler", metavar="ADDRESS|local", default=None,
+              help="Run on a Dask cluster: a scheduler address (tcp://host:port) or 'local'.")
+@click.option("--max-shift", type=click.FloatRange(min=0, min_open=True), default=1.0,
+              show_default=True, help="Fail above this shift (px); warn above half of it.")
+@click.option("--max-fwhm-change", type=click.FloatRange(min=0, min_open=True), default=15.0,
+              show_default=True, help="Fail when the FWHM changes by more than this (percent); "
+              "warn above half of it.")
+@click.option("--min-lines", type=click.IntRange(min=1), default=5, show_default=True,
+              help="Fail when fewer expected lines are found.")
+@click.option("--resume", is_flag=True,
+              help="Skip exposures already checked into OUTDIR by an interrupted run.")
+@click.option("--pattern", default=None, metavar="GLOB", help="Files to take from folders, "
+              "e.g. '*.fits' or '**/*.txt' (default: usual spectrum suffixes).")
+@click.option("--strict", is_flag=True, help="Exit 1 on warnings too.")
+@handle_errors
+def check(inputs, solution_path, lamp, dark, outdir, workers, dask_scheduler, max_shift,
+          max_fwhm_change, min_lines, resume, pattern, strict) -> None:
+    """Check exposures against a reference solution: drift, width, saturation, missing lines.
+
+    INPUTS are exposure files or folders.  Writes summary.ecsv, summary.json, figures and a
+    self-contained report.html into OUTDIR.  Exit 0 when every exposure passes (warnings
+    too unless --strict), 1 when any fails or cannot be read, 2 on bad input.
+    """
+    from .check import CheckLimits, check_exposures
+
+    limits = CheckLimits(max_shift_px=max_shift, max_fwhm_change_pct=max_fwhm_change,
+                         min_lines=min_lines)
+    progress_cm = None
+    progress = None
+    if sys.stderr.isatty():
+        from rich.progress import BarColumn, MofNCompleteColumn, Progress, TimeRemainingColumn
+
+        progress_cm = Progress("checking", BarColumn(), MofNCompleteColumn(),
+                               TimeRemainingColumn(), transient=True)
+        bar = progress_cm.add_task("check", total=None)
+
+        def progress(done: int, total: int) -> None:
+            progress_cm.update(bar, completed=done, total=total)
+
+    try:
+        if progress_cm is not None:
+            progress_cm.start()
+        table = check_exposures(
+            inputs, solution_path, lamp=list(lamp) or None, dark=dark, limits=limits,
+            outdir=outdir, workers=workers, dask_scheduler=dask_scheduler, resume=resume,
+            pattern=pattern, progress=progress,
+        )
+    except KeyboardInterrupt:
+        if progress_cm is not None:
+            progress_cm.stop()
+        click.echo(f"interrupted; finished exposures are kept in {outdir}; run again with "
+                   "--resume to check the rest", err=True)
+        sys.exit(130)
+    finally:
+        if progress_cm is not None:
+            progress_cm.stop()
+    totals = table.meta["totals"]
+    click.echo(
+        f"{totals['exposures']} exposures: {totals['pass']} pass, {totals['warn']} warn, "
+        f"{totals['fail']} fail, {totals['error']} error"
+    )
+    shown = 0
+    for row in table:
+        if row["status"] != "pass" and shown < 20:
+            click.echo(f"  {row['status']:5s} {row['file']}: {row['reasons']}")
+            shown += 1
+    hidden = len(table) - totals["pass"] - shown
+    if hidden > 0:
+        click.echo(f"  ... and {hidden} more; see {outdir}/report.html")
+    click.echo(f"wrote {outdir}/summary.ecsv, summary.json, report.html")
+    if totals["fail"] or totals["error"] or (strict and totals["warn"]):
+        sys.exit(EXIT_FAILED)
+
+
 # ---- demo ------------------------------------------------------------------------------

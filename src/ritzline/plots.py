@@ -39,3 +39,95 @@ def save_figure(fig, path, *, dpi: int = 110) -> Path:
 # ---- identify --------------------------------------------------------------------------
 
 # ---- check -----------------------------------------------------------------------------
+
+CHECK_STATUS_COLOURS = {"pass": "#2e7d32", "warn": "#f9a825", "fail": "#c62828", "error": "#6a1b9a"}
+
+
+def _check_axis(summary):
+    """x values and label for batch figures: time stamps when every checked row has one,
+    else the exposure order."""
+    import numpy as np
+
+    n = len(summary)
+    order = np.asarray(summary["index"], float) if "index" in summary.colnames else np.arange(n)
+    stamps = [str(s) for s in summary["timestamp"]] if "timestamp" in summary.colnames else []
+    ok = [s for s, st in zip(stamps, summary["status"], strict=False) if st != "error"]
+    if ok and all(ok):
+        try:
+            times = np.array(
+                [np.datetime64(s.replace("Z", "")) if s else np.datetime64("NaT") for s in stamps],
+                dtype="datetime64[ms]",
+            )
+        except ValueError:
+            return order, "exposure (input order)", False
+        return times, "time stamp (UTC as written in the files)", True
+    return order, "exposure (input order)", False
+
+
+def _check_status_points(ax, x, y, yerr, status):
+    import numpy as np
+
+    status = np.asarray(status, str)
+    for name, colour in CHECK_STATUS_COLOURS.items():
+        sel = (status == name) & np.isfinite(y)
+        if sel.any():
+            ax.errorbar(
+                x[sel], y[sel], yerr=None if yerr is None else yerr[sel], fmt="o", ms=3,
+                color=colour, ecolor=colour, elinewidth=0.8, capsize=0, label=name,
+            )  # fmt: skip
+    if ax.get_legend_handles_labels()[0]:
+        ax.legend(loc="best", fontsize="small", frameon=False)
+
+
+def plot_check_drift(summary, path, *, max_shift_px: float | None = None) -> Path:
+    """Shift (px) with 1-sigma error bars over exposure order or time, coloured by status."""
+    import numpy as np
+
+    x, xlabel, _ = _check_axis(summary)
+    fig, ax = new_figure(figsize=(10, 3.6))
+    y = np.asarray(summary["shift_px"], float)
+    err = np.asarray(summary["shift_err_px"], float)
+    _check_status_points(ax, x, y, err, summary["status"])
+    ax.axhline(0.0, color="0.5", lw=0.8)
+    if max_shift_px:
+        for s in (-max_shift_px, max_shift_px):
+            ax.axhline(s, color=CHECK_STATUS_COLOURS["fail"], lw=0.8, ls="--")
+    ax.set_xlabel(xlabel)
+    ax.set_ylabel("shift (px, + = toward higher pixel)")
+    ax.set_title("Drift against the reference solution")
+    return save_figure(fig, path)
+
+
+def plot_check_fwhm(summary, path, *, reference_fwhm_px: float | None = None) -> Path:
+    """Median line FWHM (px) with its uncertainty over exposure order or time."""
+    import numpy as np
+
+    x, xlabel, _ = _check_axis(summary)
+    fig, ax = new_figure(figsize=(10, 3.6))
+    y = np.asarray(summary["fwhm_px"], float)
+    err = np.asarray(summary["fwhm_err_px"], float)
+    _check_status_points(ax, x, y, np.nan_to_num(err, nan=0.0), summary["status"])
+    if reference_fwhm_px and np.isfinite(reference_fwhm_px):
+        ax.axhline(reference_fwhm_px, color="0.4", lw=0.8, ls=":", label="reference")
+    ax.set_xlabel(xlabel)
+    ax.set_ylabel("FWHM (px)")
+    ax.set_title("Line width")
+    return save_figure(fig, path)
+
+
+def plot_check_status(summary, path) -> Path:
+    """Bar chart of how many exposures passed, warned, failed or could not be read."""
+    import numpy as np
+
+    status = np.asarray(summary["status"], str)
+    names = list(CHECK_STATUS_COLOURS)
+    counts = [int(np.count_nonzero(status == s)) for s in names]
+    fig, ax = new_figure(figsize=(5, 3.2))
+    bars = ax.bar(names, counts, color=[CHECK_STATUS_COLOURS[s] for s in names])
+    for bar, c in zip(bars, counts, strict=True):
+        ax.annotate(str(c), (bar.get_x() + bar.get_width() / 2, bar.get_height()),
+                    ha="center", va="bottom", fontsize="small")  # fmt: skip
+    ax.set_ylabel("exposures")
+    ax.set_title("Status")
+    ax.margins(y=0.15)
+    return save_figure(fig, path)

@@ -1,0 +1,243 @@
+"""The HTML batch report: one self-contained page (figures embedded as PNG data, a little
+inline script to sort and filter the table, no external assets) that a person can open in
+any browser and pass on.
+"""
+
+from __future__ import annotations
+
+import base64
+import html
+import math
+import os
+from collections.abc import Mapping
+from pathlib import Path
+
+from ._io import atomic_write
+
+__all__ = ["FIGURE_FILES", "report_html", "write_report"]
+
+# figure name -> (file in OUTDIR, caption)
+FIGURE_FILES = {
+    "drift": ("drift.png", "Shift against the reference, with 1-sigma error bars"),
+    "fwhm": ("fwhm.png", "Median line FWHM"),
+    "status": ("status.png", "Exposures by status"),
+}
+
+# columns shown in the table, with their headings
+_TABLE_COLUMNS = (
+    ("index", "#"),
+    ("file", "file"),
+    ("status", "status"),
+    ("timestamp", "time stamp"),
+    ("shift_px", "shift (px)"),
+    ("shift_err_px", "± (px)"),
+    ("shift_nm", "shift (nm)"),
+    ("stretch", "stretch"),
+    ("fwhm_px", "FWHM (px)"),
+    ("fwhm_change_pct", "ΔFWHM (%)"),
+    ("resolving_power", "λ/Δλ"),
+    ("n_lines", "lines"),
+    ("n_expected", "expected"),
+    ("saturated_pixels", "saturated px"),
+    ("snr_median", "median SNR"),
+    ("reasons", "reasons"),
+)
+
+_FORMATS = {
+    "shift_px": "{:+.3f}",
+    "shift_err_px": "{:.3f}",
+    "shift_nm": "{:+.5f}",
+    "stretch": "{:+.2e}",
+    "fwhm_px": "{:.3f}",
+    "fwhm_change_pct": "{:+.1f}",
+    "resolving_power": "{:.0f}",
+    "snr_median": "{:.1f}",
+}
+
+_CSS = """
+body{font-family:system-ui,-apple-system,"Segoe UI",sans-serif;margin:1.5em;color:#222}
+h1{font-size:1.4em;margin-bottom:.2em} h2{font-size:1.1em;margin-top:1.6em}
+.totals span{display:inline-block;margin-right:1.2em;padding:.2em .6em;border-radius:4px;
+ color:#fff;font-weight:600}
+.pass{background:#2e7d32}.warn{background:#f9a825;color:#222!important}.fail{background:#c62828}
+.error{background:#6a1b9a}.all{background:#455a64}
+table.meta td{padding:.1em .8em .1em 0;vertical-align:top}
+figure{display:inline-block;margin:.5em 1em .5em 0} figure img{max-width:100%;height:auto}
+figcaption{font-size:.85em;color:#555}
+#rows{border-collapse:collapse;font-size:.82em;width:100%}
+#rows th,#rows td{border-bottom:1px solid #ddd;padding:.25em .5em;text-align:right;
+ white-space:nowrap}
+#rows td.t,#rows th.t{text-align:left} #rows td.r{white-space:normal;text-align:left}
+#rows th{cursor:pointer;position:sticky;top:0;background:#eceff1;user-select:none}
+#rows th[aria-sort=ascending]::after{content:" ▲"}
+#rows th[aria-sort=descending]::after{content:" ▼"}
+#rows tr.s-warn td{background:#fff8e1} #rows tr.s-fail td{background:#ffebee}
+#rows tr.s-error td{background:#f3e5f5}
+#filter{margin:.5em 0;padding:.3em;width:24em}
+"""
+
+# Sorting: numbers by value (blank last), text by locale order; filter by any text.
+_JS = """
+(function(){
+  var table=document.getElementById('rows'), body=table.tBodies[0];
+  var heads=table.tHead.rows[0].cells;
+  function key(cell,num){var v=cell.getAttribute('data-v');
+    if(v===null){v=cell.textContent;}
+    if(num){var x=parseFloat(v);return isNaN(x)?Infinity:x;} return v.toLowerCase();}
+  Array.prototype.forEach.call(heads,function(th,col){
+    th.addEventListener('click',function(){
+      var num=th.getAttribute('data-num')==='1';
+      var dir=th.getAttribute('aria-sort')==='ascending'?-1:1;
+      Array.prototype.forEach.call(heads,function(h){h.removeAttribute('aria-sort');});
+      th.setAttribute('aria-sort',dir===1?'ascending':'descending');
+      var rows=Array.prototype.slice.call(body.rows);
+      rows.sort(function(a,b){var x=key(a.cells[col],num),y=key(b.cells[col],num);
+        if(x<y)return -dir; if(x>y)return dir; return 0;});
+      var frag=document.createDocumentFragment();
+      rows.forEach(function(r){frag.appendChild(r);}); body.appendChild(frag);
+    });
+  });
+  var filter=document.getElementById('filter');
+  filter.addEventListener('input',function(){var q=filter.value.toLowerCase();
+    Array.prototype.forEach.call(body.rows,function(r){
+      r.style.display=(!q||r.textContent.toLowerCase().indexOf(q)>=0)?'':'none';});
+  });
+  document.body.setAttribute('data-ritzline-ready', String(body.rows.length));
+})();
+"""
+
+
+def _cell(name: str, value) -> str:
+    if value is None or (hasattr(value, "mask") and bool(getattr(value, "mask", False))):
+        return '<td data-v=""></td>'
+    if name in _FORMATS:
+        v = float(value)
+        if not math.isfinite(v):
+            return '<td data-v=""></td>'
+        return f'<td data-v="{v!r}">{html.escape(_FORMATS[name].format(v))}</td>'
+    if isinstance(value, (int, float)) or (hasattr(value, "dtype") and value.dtype.kind in "iuf"):
+        return f'<td data-v="{value}">{value}</td>'
+    text = html.escape(str(value))
+    cls = "r" if name == "reasons" else "t"
+    return f'<td class="{cls}">{text}</td>'
+
+
+def _meta_rows(items: Mapping[str, object]) -> str:
+    out = []
+    for k, v in items.items():
+        out.append(f"<tr><td>{html.escape(str(k))}</td><td>{html.escape(str(v))}</td></tr>")
+    return "\n".join(out)
+
+
+def report_html(summary, info: Mapping, figures: Mapping[str, bytes] | None = None) -> str:
+    """The report page as a string.
+
+    Parameters
+    ----------
+    summary : astropy.table.Table
+        The summary table from :func:`ritzline.check.check_exposures`.
+    info : mapping
+        The content of ``summary.json`` (``totals``, ``thresholds``, ``reference``, ...).
+    figures : mapping of name -> PNG bytes, optional
+        Embedded as ``data:`` URIs, in the order of :data:`FIGURE_FILES`.
+    """
+    from . import __version__
+
+    totals = dict(info.get("totals", {}))
+    n = totals.get("exposures", len(summary))
+    parts = [
+        "<!DOCTYPE html>",
+        '<html lang="en"><head><meta charset="utf-8">',
+        '<meta name="viewport" content="width=device-width, initial-scale=1">',
+        "<title>ritzline batch check</title>",
+        f"<style>{_CSS}</style></head><body>",
+        "<h1>Batch check of exposures</h1>",
+        f"<p>{n} exposure{'s' if n != 1 else ''} checked against the reference solution "
+        f"{html.escape(str(info.get('reference', {}).get('reference_solution', '')))} "
+        f"with ritzline {html.escape(__version__)}.</p>",
+        '<p class="totals">',
+        f'<span class="all">{n} total</span>',
+    ]
+    for status in ("pass", "warn", "fail", "error"):
+        parts.append(f'<span class="{status}">{totals.get(status, 0)} {status}</span>')
+    parts.append("</p>")
+    if not info.get("complete", True):
+        parts.append(
+            "<p><strong>This run was interrupted: not every exposure has been checked."
+            "</strong> Run the same command again with <code>--resume</code>.</p>"
+        )
+    parts.append("<h2>Thresholds</h2><table class='meta'>")
+    parts.append(_meta_rows(info.get("thresholds", {})))
+    parts.append("</table><h2>Reference</h2><table class='meta'>")
+    parts.append(_meta_rows(info.get("reference", {})))
+    parts.append(
+        "<tr><td>drift model</td><td>"
+        + html.escape(str(info.get("drift_model", "")))
+        + "</td></tr></table>"
+    )
+    if figures:
+        parts.append("<h2>Figures</h2>")
+        for name, (_, caption) in FIGURE_FILES.items():
+            png = figures.get(name)
+            if png:
+                data = base64.b64encode(png).decode("ascii")
+                parts.append(
+                    f'<figure><img alt="{html.escape(caption)}" src="data:image/png;base64,{data}">'
+                    f"<figcaption>{html.escape(caption)}</figcaption></figure>"
+                )
+    parts.append("<h2>Exposures</h2>")
+    parts.append(
+        '<input id="filter" type="search" placeholder="filter rows (file, status, reason…)">'
+    )
+    parts.append('<table id="rows"><thead><tr>')
+    numeric = {"file": False, "status": False, "timestamp": False, "reasons": False}
+    for name, heading in _TABLE_COLUMNS:
+        num = "1" if numeric.get(name, True) else "0"
+        cls = ' class="t"' if not numeric.get(name, True) else ""
+        parts.append(f'<th data-num="{num}"{cls} title="sort">{html.escape(heading)}</th>')
+    parts.append("</tr></thead><tbody>")
+    cols = [name for name, _ in _TABLE_COLUMNS if name in summary.colnames]
+    data = {name: summary[name] for name in cols}
+    masks = {name: getattr(data[name], "mask", None) for name in cols}
+    for i in range(len(summary)):
+        status = html.escape(str(summary["status"][i]))
+        cells = []
+        for name, _ in _TABLE_COLUMNS:
+            if name not in data:
+                cells.append("<td></td>")
+                continue
+            m = masks[name]
+            value = None if (m is not None and bool(m[i])) else data[name][i]
+            if name == "status":
+                cells.append(f'<td class="t"><span class="{status}">&nbsp;</span> {status}</td>')
+            else:
+                cells.append(_cell(name, value))
+        parts.append(f'<tr class="s-{status}">' + "".join(cells) + "</tr>")
+    parts.append("</tbody></table>")
+    parts.append(f"<script>{_JS}</script>")
+    parts.append("</body></html>")
+    return "\n".join(parts)
+
+
+def write_report(summary, outdir: str | os.PathLike, info: Mapping) -> Path:
+    """Draw the batch figures into ``outdir`` and write ``outdir/report.html``; return its path."""
+    from .plots import plot_check_drift, plot_check_fwhm, plot_check_status
+
+    out = Path(outdir)
+    thresholds = info.get("thresholds", {})
+    reference = info.get("reference", {})
+    plot_check_drift(
+        summary, out / FIGURE_FILES["drift"][0], max_shift_px=thresholds.get("max_shift_px")
+    )
+    plot_check_fwhm(
+        summary,
+        out / FIGURE_FILES["fwhm"][0],
+        reference_fwhm_px=reference.get("reference_fwhm_px"),
+    )
+    plot_check_status(summary, out / FIGURE_FILES["status"][0])
+    figures = {name: (out / fname).read_bytes() for name, (fname, _) in FIGURE_FILES.items()}
+    page = report_html(summary, info, figures)
+    path = out / "report.html"
+    with atomic_write(path, "w", encoding="utf-8") as fh:
+        fh.write(page)
+    return path

@@ -1,0 +1,344 @@
+"""Batch checking: drift fit, status rules, journal/resume, ordering, pool and Dask runners,
+outputs and the CLI.
+
+Reference values for the drift model are synthetic truths (known shifts put into the
+data); everything else checks our own bookkeeping against what was put in.
+"""
+
+import json
+import os
+import signal
+import subprocess
+import sys
+import textwrap
+import time
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from ritzline import check
+from ritzline.check import (
+    CheckLimits,
+    collect_exposures,
+    fit_drift,
+    judge,
+    read_journal,
+    run_batch,
+    summary_table,
+)
+from ritzline.errors import RitzlineError
+
+N_PIX = 3648
+CENTRE = (N_PIX - 1) / 2
+
+
+# ---- a tiny task for runner tests: each "exposure" is a JSON file with a number ----------
+
+
+class NumberTask:
+    """Reads ``{"value": x}`` and returns a summary row; unreadable files become errors."""
+
+    def __init__(self, delay: float = 0.0):
+        self.delay = delay
+
+    def __call__(self, path):
+        row = check._blank_row(str(path))
+        if self.delay:
+            time.sleep(self.delay)
+        try:
+            value = json.loads(Path(path).read_text())["value"]
+        except (OSError, ValueError, KeyError) as exc:
+            row["status"] = "error"
+            row["reasons"] = f"{path}: {exc}"
+            return row
+        row["status"] = "pass"
+        row["shift_px"] = float(value)
+        row["n_lines"] = int(value)
+        row["timestamp"] = f"2026-01-01T00:00:{int(value) % 60:02d}"
+        return row
+
+
+def write_numbers(folder: Path, n: int, bad=()) -> list[Path]:
+    folder.mkdir(parents=True, exist_ok=True)
+    paths = []
+    for i in range(n):
+        p = folder / f"exp{i}.json"
+        p.write_text("not json" if i in bad else json.dumps({"value": i}))
+        paths.append(p)
+    return paths
+
+
+# ---- drift fit -----------------------------------------------------------------------------
+
+
+def synthetic_lines(rng, shift, stretch, n=40, err=0.01, extra=5, drop=4):
+    ref = np.sort(rng.uniform(20, N_PIX - 20, n))
+    found = ref + shift + stretch * (ref - CENTRE) + rng.normal(0, err, n)
+    keep = np.ones(n, bool)
+    keep[rng.choice(n, drop, replace=False)] = False
+    found = np.concatenate([found[keep], rng.uniform(0, N_PIX - 1, extra)])
+    errs = np.full(found.size, err)
+    return found, errs, ref
+
+
+def test_fit_drift_recovers_known_shift_and_stretch(rng):
+    found, errs, ref = synthetic_lines(rng, shift=3.7, stretch=2e-4)
+    fit = fit_drift(found, errs, ref, np.zeros_like(ref), CENTRE)
+    assert abs(fit.shift - 3.7) < 4 * fit.shift_err
+    assert abs(fit.stretch - 2e-4) < 4 * fit.stretch_err
+    assert fit.shift_err < 0.01
+
+
+def test_fit_drift_pulls_have_unit_scatter(rng):
+    # the quoted shift error must describe the real scatter of repeated measurements
+    pulls = []
+    for _ in range(200):
+        found, errs, ref = synthetic_lines(rng, shift=-1.2, stretch=0.0, err=0.05, extra=0)
+        fit = fit_drift(found, errs, ref, np.zeros_like(ref), CENTRE)
+        pulls.append((fit.shift + 1.2) / fit.shift_err)
+    assert 0.8 < np.std(pulls) < 1.25
+
+
+def test_fit_drift_matches_one_to_one_despite_large_shift(rng):
+    found, errs, ref = synthetic_lines(rng, shift=-18.0, stretch=0.0, extra=10, drop=6)
+    fit = fit_drift(found, errs, ref, np.zeros_like(ref), CENTRE, search_px=25.0)
+    assert np.unique(fit.found_index).size == fit.found_index.size
+    assert np.unique(fit.ref_index).size == fit.ref_index.size
+    assert fit.ref_index.size >= 40 - 6
+    assert abs(fit.shift + 18.0) < 0.01
+
+
+def test_fit_drift_rejects_an_outlier(rng):
+    found, errs, ref = synthetic_lines(rng, shift=0.5, stretch=0.0, extra=0, drop=0)
+    found[10] += 1.0  # a line pulled by an unseen blend
+    fit = fit_drift(found, errs, ref, np.zeros_like(ref), CENTRE)
+    assert not fit.used[list(fit.found_index).index(10)]
+    assert abs(fit.shift - 0.5) < 0.01
+
+
+def test_fit_drift_without_lines_is_nan():
+    fit = fit_drift(np.zeros(0), np.zeros(0), np.array([10.0, 20.0]), np.zeros(2), CENTRE)
+    assert np.isnan(fit.shift) and fit.n_used == 0
+
+
+def test_fit_drift_excluded_lines_count_as_matched_but_not_fitted(rng):
+    found, errs, ref = synthetic_lines(rng, shift=0.2, stretch=0.0, extra=0, drop=0)
+    mask = np.ones(found.size, bool)
+    mask[:5] = False
+    found[:5] += 0.5  # saturated lines: centroids off, must not pull the fit
+    fit = fit_drift(found, errs, ref, np.zeros_like(ref), CENTRE, fit_mask=mask)
+    assert fit.ref_index.size == found.size
+    assert fit.n_used == found.size - 5
+    assert abs(fit.shift - 0.2) < 0.01
+
+
+# ---- status rules --------------------------------------------------------------------------
+
+
+def measured_row(**kw):
+    row = check._blank_row("x")
+    row.update(shift_px=0.0, shift_err_px=0.01, stretch=0.0, fwhm_px=2.5, fwhm_change_pct=0.0,
+               n_lines=20, n_expected=20, saturated_pixels=0, snr_median=200.0, missing="")
+    row.update(kw)
+    return row
+
+
+def test_judge_passes_a_clean_exposure():
+    assert judge(measured_row(), CheckLimits(), CENTRE) == ("pass", [])
+
+
+def test_judge_fails_a_large_shift_and_says_why():
+    status, reasons = judge(measured_row(shift_px=1.3), CheckLimits(max_shift_px=1.0), CENTRE)
+    assert status == "fail"
+    assert any("shift +1.300" in r and "limit of 1 px" in r for r in reasons)
+
+
+def test_judge_warns_above_half_the_limit():
+    status, reasons = judge(measured_row(shift_px=-0.6), CheckLimits(max_shift_px=1.0), CENTRE)
+    assert status == "warn" and "shift -0.600" in reasons[0]
+
+
+def test_judge_lists_every_reason():
+    row = measured_row(shift_px=2.0, fwhm_change_pct=30.0, saturated_pixels=4, n_lines=15,
+                       missing="1.000,2.000,3.000,4.000,5.000", snr_median=5.0)
+    status, reasons = judge(row, CheckLimits(), CENTRE)
+    text = " | ".join(reasons)
+    assert status == "fail"
+    for word in ("shift", "FWHM", "saturated", "missing", "SNR"):
+        assert word in text
+
+
+def test_judge_fails_too_few_lines():
+    status, reasons = judge(measured_row(n_lines=3, n_expected=20), CheckLimits(min_lines=5),
+                            CENTRE)
+    assert status == "fail" and "only 3 of 20" in reasons[0]
+
+
+def test_judge_fails_a_stretch_that_moves_the_ends_too_far():
+    status, reasons = judge(measured_row(stretch=1e-3), CheckLimits(max_shift_px=1.0), CENTRE)
+    assert status == "fail" and "stretch" in reasons[0]
+
+
+# ---- files ---------------------------------------------------------------------------------
+
+
+def test_collect_exposures_orders_naturally_and_skips_outdir(tmp_path):
+    for name in ("exp10.txt", "exp2.txt", "exp1.fits", "notes.md"):
+        (tmp_path / name).write_text("x")
+    out = tmp_path / "out"
+    out.mkdir()
+    (out / "summary.ecsv").write_text("x")
+    files = collect_exposures([tmp_path], exclude=out)
+    assert [f.name for f in files] == ["exp1.fits", "exp2.txt", "exp10.txt"]
+
+
+def test_collect_exposures_with_pattern_and_duplicates(tmp_path):
+    for name in ("a.fits", "b.txt"):
+        (tmp_path / name).write_text("x")
+    files = collect_exposures([tmp_path / "b.txt", tmp_path], pattern="*.txt")
+    assert [f.name for f in files] == ["b.txt"]
+
+
+def test_collect_exposures_raises_when_nothing_found(tmp_path):
+    with pytest.raises(RitzlineError, match="no exposure files"):
+        collect_exposures([tmp_path])
+
+
+# ---- runner: order, errors, journal, resume -------------------------------------------------
+
+
+def test_run_batch_keeps_input_order_with_two_workers(tmp_path):
+    paths = write_numbers(tmp_path / "in", 60, bad={7})
+    result = run_batch(paths, NumberTask(), outdir=tmp_path / "out", workers=2)
+    assert [r["file"] for r in result.rows] == [str(p) for p in paths]
+    assert [r["index"] for r in result.rows] == list(range(60))
+    assert result.rows[7]["status"] == "error" and "exp7.json" in result.rows[7]["reasons"]
+    assert [r["shift_px"] for r in result.rows if r["status"] == "pass"] == [
+        float(i) for i in range(60) if i != 7
+    ]
+
+
+def test_run_batch_writes_summary_readable_by_astropy(tmp_path):
+    from astropy.table import Table
+
+    paths = write_numbers(tmp_path / "in", 10, bad={3})
+    run_batch(paths, NumberTask(), outdir=tmp_path / "out", workers=1, meta={"k": "v"})
+    table = Table.read(tmp_path / "out" / "summary.ecsv")
+    assert list(table["index"]) == list(range(10))
+    assert table["shift_px"].unit == "pix"
+    assert table.meta["k"] == "v"
+    assert table["n_lines"].mask[3] and not table["n_lines"].mask[4]
+
+
+def test_resume_skips_finished_exposures(tmp_path):
+    paths = write_numbers(tmp_path / "in", 12)
+    out = tmp_path / "out"
+    run_batch(paths[:5], NumberTask(), outdir=out, workers=1)
+    result = run_batch(paths, NumberTask(), outdir=out, workers=1, resume=True)
+    assert result.n_skipped == 5 and result.n_run == 7
+    assert [r["file"] for r in result.rows] == [str(p) for p in paths]
+
+
+def test_without_resume_a_new_run_starts_over(tmp_path):
+    paths = write_numbers(tmp_path / "in", 6)
+    out = tmp_path / "out"
+    run_batch(paths, NumberTask(), outdir=out, workers=1)
+    result = run_batch(paths[:2], NumberTask(), outdir=out, workers=1)
+    assert result.n_skipped == 0 and len(result.rows) == 2
+    assert len(read_journal(out / "journal.jsonl")[1]) == 2
+
+
+def test_resume_refuses_a_journal_made_with_other_settings(tmp_path):
+    paths = write_numbers(tmp_path / "in", 3)
+    out = tmp_path / "out"
+    run_batch(paths, NumberTask(), outdir=out, workers=1, fingerprint={"limit": 1})
+    with pytest.raises(RitzlineError, match="without --resume"):
+        run_batch(paths, NumberTask(), outdir=out, workers=1, fingerprint={"limit": 2},
+                  resume=True)
+
+
+def test_read_journal_ignores_a_torn_last_line(tmp_path):
+    path = tmp_path / "journal.jsonl"
+    path.write_text(
+        '{"ritzline_journal": 1, "config": {}}\n{"key": "a", "status": "pass"}\n{"key": "b", "st'
+    )
+    config, rows = read_journal(path)
+    assert config == {} and list(rows) == ["a"]
+
+
+def test_run_batch_reports_progress(tmp_path):
+    paths = write_numbers(tmp_path / "in", 5)
+    seen = []
+    run_batch(paths, NumberTask(), workers=1, progress=lambda d, t: seen.append((d, t)))
+    assert seen[-1] == (5, 5)
+
+
+KILL_SCRIPT = textwrap.dedent(
+    """
+    import sys, time, json
+    from pathlib import Path
+    sys.path.insert(0, {tests!r})
+    from test_check import NumberTask
+    from ritzline.check import run_batch
+    paths = sorted(Path({indir!r}).glob("*.json"), key=lambda p: int(p.stem[3:]))
+    r = run_batch(paths, NumberTask(delay={delay}), outdir={outdir!r}, workers=2,
+                  resume=True, summary_interval=0.05)
+    print(json.dumps({{"skipped": r.n_skipped, "run": r.n_run}}))
+    """
+)
+
+
+@pytest.mark.parametrize("sig", [signal.SIGKILL, signal.SIGINT])
+def test_killed_run_resumes_without_missing_or_duplicated_exposures(tmp_path, sig):
+    from astropy.table import Table
+
+    n = 80
+    paths = write_numbers(tmp_path / "in", n, bad={13})
+    out = tmp_path / "out"
+    script = KILL_SCRIPT.format(tests=str(Path(__file__).parent), indir=str(tmp_path / "in"),
+                                outdir=str(out), delay=0.02)
+    proc = subprocess.Popen([sys.executable, "-c", script], stdout=subprocess.PIPE,
+                            start_new_session=True)
+    journal = out / "journal.jsonl"
+    deadline = time.monotonic() + 30
+    while time.monotonic() < deadline:
+        if journal.exists() and len(journal.read_text().splitlines()) > 20:
+            break
+        time.sleep(0.02)
+    os.killpg(proc.pid, sig)  # the whole run: parent and its workers
+    proc.wait(timeout=30)
+    first = len(read_journal(journal)[1])
+    assert 0 < first < n, "the run was not interrupted part way"
+
+    done = subprocess.run([sys.executable, "-c", script], capture_output=True, check=True,
+                          timeout=60)
+    counts = json.loads(done.stdout.decode().strip().splitlines()[-1])
+    assert counts["skipped"] >= first - 2 and counts["skipped"] + counts["run"] == n
+    table = Table.read(out / "summary.ecsv")
+    assert list(table["file"]) == [str(p) for p in paths]
+    assert table["status"][13] == "error"
+    assert list(table["shift_px"][table["status"] == "pass"]) == [
+        float(i) for i in range(n) if i != 13
+    ]
+
+
+# ---- Dask backend --------------------------------------------------------------------------
+
+
+@pytest.mark.parametrize("scheduler", ["local-threads", "local"])
+def test_dask_local_cluster_gives_the_same_rows(tmp_path, scheduler):
+    pytest.importorskip("distributed")
+    paths = write_numbers(tmp_path / "in", 30, bad={4})
+    pool = run_batch(paths, NumberTask(), workers=2)
+    dask = run_batch(paths, NumberTask(), workers=2, dask_scheduler=scheduler,
+                     outdir=tmp_path / "out")
+    assert json.dumps(dask.rows) == json.dumps(pool.rows)
+
+
+# ---- summary -------------------------------------------------------------------------------
+
+
+def test_summary_table_of_no_rows_has_every_column():
+    table = summary_table([])
+    assert table.colnames == [c[0] for c in check.SUMMARY_COLUMNS]
