@@ -57,6 +57,11 @@ def _read_csv(path: Path) -> tuple[list[str], list[dict[str, str]]]:
     return header, list(csv.DictReader(body))
 
 
+def _about_levels(note: str) -> str:
+    """The parts of a line note that are not about the intensity (whose doubts are separate)."""
+    return "; ".join(p for p in note.split(";") if "intensit" not in p)
+
+
 def _decimals(text: str) -> int:
     return len(text.split(".")[1]) if "." in text else 0
 
@@ -148,7 +153,7 @@ def build_lines(species: str, path: Path) -> Table:
             "upper_term": [r["upper_term"] for r in rows],
             "upper_j": [r["upper_j"] for r in rows],
             "memory": memory,
-            "uncertain": [bool(_UNCERTAIN_LINE.search(r["note"])) for r in rows],
+            "uncertain": [bool(_UNCERTAIN_LINE.search(_about_levels(r["note"]))) for r in rows],
             "low_precision": [bool(_LOW_PRECISION.search(r["note"])) for r in rows],
             "confirmed": ["confirmed" in r["note"] for r in rows],
             "note": [r["note"] for r in rows],
