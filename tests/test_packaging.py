@@ -17,6 +17,7 @@ ROOT = Path(__file__).resolve().parents[1]
 def test_data_path_finds_the_line_lists_and_lamp_folders():
     assert data_path("line_lists").is_dir()
     assert data_path("calibration").is_dir()
+    assert data_path("examples", "hgar_lamp.csv").is_file()
 
 
 def test_data_path_rejects_unknown_folders():
@@ -56,4 +57,7 @@ def test_built_wheel_contains_line_lists_and_calibration(tmp_path):
         assert f"ritzline/_data/line_lists/{name}" in names
     for name in shipped_lamps:
         assert f"ritzline/_data/calibration/lamps/{name}" in names
+    for path in (ROOT / "examples" / "data").rglob("*.csv"):
+        rel = path.relative_to(ROOT / "examples" / "data").as_posix()
+        assert f"ritzline/_data/examples/{rel}" in names
     assert "ritzline/cli.py" in names

@@ -1,8 +1,9 @@
-"""Locate the data shipped with ritzline (line lists, lamp definitions).
+"""Locate the data shipped with ritzline (line lists, lamp definitions, demo data).
 
-In a built wheel the top-level ``line_lists/`` and ``calibration/`` folders are mapped to
-``ritzline/_data/``; in an editable install or a source checkout they stay at the project
-root.  Every reader goes through :func:`data_path` so both layouts work.
+In a built wheel the top-level ``line_lists/`` and ``calibration/`` folders and
+``examples/data/`` are mapped to ``ritzline/_data/`` (the last as ``examples``); in an
+editable install or a source checkout they stay where they are in the project.
+Every reader goes through :func:`data_path` so both layouts work.
 """
 
 from functools import cache
@@ -10,15 +11,15 @@ from pathlib import Path
 
 __all__ = ["data_path"]
 
-_FOLDERS = ("line_lists", "calibration")
+_FOLDERS = {"line_lists": "line_lists", "calibration": "calibration", "examples": "examples/data"}
 
 
 @cache
 def _root(folder: str) -> Path:
     if folder not in _FOLDERS:
-        raise ValueError(f"unknown data folder {folder!r}; expected one of {_FOLDERS}")
+        raise ValueError(f"unknown data folder {folder!r}; expected one of {sorted(_FOLDERS)}")
     package = Path(__file__).resolve().parent
-    for candidate in (package / "_data" / folder, package.parents[1] / folder):
+    for candidate in (package / "_data" / folder, package.parents[1] / _FOLDERS[folder]):
         if candidate.is_dir():
             return candidate
     raise FileNotFoundError(
@@ -32,7 +33,7 @@ def data_path(folder: str, *parts: str) -> Path:
 
     Parameters
     ----------
-    folder : {"line_lists", "calibration"}
+    folder : {"line_lists", "calibration", "examples"}
         Top-level data folder.
     *parts : str
         Path components inside that folder.
