@@ -342,3 +342,188 @@ def test_dask_local_cluster_gives_the_same_rows(tmp_path, scheduler):
 def test_summary_table_of_no_rows_has_every_column():
     table = summary_table([])
     assert table.colnames == [c[0] for c in check.SUMMARY_COLUMNS]
+
+
+# ---- real exposures: synthetic sequences with known drift ----------------------------------
+
+
+@pytest.fixture(scope="module")
+def bench(tmp_path_factory):
+    """A reference solution and a short time-stamped sequence with known shifts, plus bad
+    files of several kinds."""
+    import _check_synthetic as cs
+
+    rng = np.random.default_rng(20261201)
+    inst, lines = cs.bench_instrument(), cs.bench_lines()
+    solution = cs.reference_solution(inst, lines, rng)
+    folder = tmp_path_factory.mktemp("exposures")
+    shifts = np.array([0.0, 0.12, -0.35, 0.61, 1.4, -2.5, 0.05, 0.3])
+    stretches = np.array([0.0, 0.0, 1e-5, -2e-5, 0.0, 0.0, 0.0, 0.0])
+    fwhms = np.full(shifts.size, inst.fwhm_px)
+    fwhms[6] = inst.fwhm_px * 1.3  # defocused: must fail the FWHM limit
+    paths = cs.write_sequence(folder, inst, lines, rng, shifts, stretches, fwhms)
+    bad = {
+        "empty": folder / "lamp_90000.txt",
+        "garbage": folder / "lamp_90001.txt",
+        "short": folder / "lamp_90002.txt",
+    }
+    bad["empty"].write_text("")
+    bad["garbage"].write_bytes(bytes(range(256)) * 20)
+    bad["short"].write_text("counts\n1\n2\n3\n")
+    sol_path = solution.save(folder / "reference.json")
+    return {"solution": solution, "solution_path": sol_path, "folder": folder, "paths": paths,
+            "shifts": shifts, "stretches": stretches, "bad": bad, "inst": inst, "lines": lines}
+
+
+def test_check_exposures_recovers_known_shifts(bench):
+    table = check.check_exposures(bench["paths"], bench["solution"], workers=1)
+    got = np.asarray(table["shift_px"], float)
+    err = np.asarray(table["shift_err_px"], float)
+    rms = np.sqrt(np.mean((got - bench["shifts"]) ** 2))
+    assert rms < 0.02  # issue target: <= 0.02 px RMS at line SNR >= 100
+    assert np.all(np.abs(got - bench["shifts"]) < 5 * err + 0.01)
+    assert np.all(np.asarray(table["snr_median"]) > 100)
+
+
+def test_check_exposures_recovers_known_stretch(bench):
+    table = check.check_exposures(bench["paths"][2:4], bench["solution"], workers=1)
+    got = np.asarray(table["stretch"], float)
+    err = np.asarray(table["stretch_err"], float)
+    assert np.all(np.abs(got - bench["stretches"][2:4]) < 5 * err)
+
+
+def test_check_exposures_shift_nm_follows_the_dispersion(bench):
+    table = check.check_exposures(bench["paths"][3:4], bench["solution"], workers=1)
+    d = float(bench["solution"].dispersion((3648 - 1) / 2))
+    assert table["shift_nm"][0] == pytest.approx(table["shift_px"][0] * d, rel=1e-9)
+
+
+def test_check_exposures_statuses_follow_the_limits(bench):
+    table = check.check_exposures(bench["paths"], bench["solution"], workers=1,
+                                  limits=CheckLimits(max_shift_px=1.0))
+    # shifts 0.0, 0.12, -0.35, 0.61 (warn), 1.4 (fail), -2.5 (fail), defocused (fail), 0.3
+    assert list(table["status"]) == ["pass", "pass", "pass", "warn", "fail", "fail", "fail",
+                                     "pass"]
+    assert "FWHM" in table["reasons"][6] and "limit" in table["reasons"][6]
+    assert table["fwhm_change_pct"][6] == pytest.approx(30.0, abs=3.0)
+
+
+def test_resolving_power_is_wavelength_over_fwhm_in_nm(bench):
+    table = check.check_exposures(bench["paths"][:1], bench["solution"], workers=1)
+    sol = bench["solution"]
+    centre = (sol.n_pixels - 1) / 2
+    expected = sol.wavelength(centre) / (table["fwhm_px"][0] * abs(sol.dispersion(centre)))
+    assert table["resolving_power"][0] == pytest.approx(expected, rel=0.05)
+
+
+def test_bad_files_are_error_rows_with_the_readers_reason(bench):
+    paths = [bench["paths"][0], *bench["bad"].values()]
+    table = check.check_exposures(paths, bench["solution"], workers=2)
+    assert list(table["status"]) == ["pass", "error", "error", "error"]
+    assert "empty" in table["reasons"][1]
+    for i, p in enumerate(bench["bad"].values(), start=1):
+        assert str(p) in table["reasons"][i]
+
+
+def test_an_exposure_from_another_detector_fails(bench, tmp_path):
+    import _check_synthetic as cs
+
+    path = cs.write_text_exposure(tmp_path / "other.txt", np.full(2048, 100.0))
+    table = check.check_exposures([path], bench["solution"], workers=1)
+    assert table["status"][0] == "fail" and "2048 pixels" in table["reasons"][0]
+
+
+def test_missing_lines_are_listed(bench, tmp_path):
+    import _check_synthetic as cs
+
+    lines = {k: v[5:] for k, v in bench["lines"].items()}  # the five bluest lines gone
+    counts, _ = cs.clean_exposure(bench["inst"], lines, np.random.default_rng(3))
+    path = cs.write_text_exposure(tmp_path / "fewer.txt", counts)
+    table = check.check_exposures([path], bench["solution"], workers=1,
+                                  limits=CheckLimits(max_missing_fraction=0.1))
+    assert table["n_expected"][0] - table["n_lines"][0] == 5
+    listed = [float(w) for w in table["missing"][0].split(",")]
+    wl = np.sort(bench["lines"]["wavelength"])
+    assert np.allclose(np.sort(listed), np.sort(bench["lines"]["wavelength"][:5]), atol=1e-3)
+    assert wl.size == 36
+    assert table["status"][0] == "warn" and "5 of 36 expected lines missing" in table["reasons"][0]
+
+
+def test_saturated_pixels_are_counted_and_warned(bench, tmp_path):
+    import _check_synthetic as cs
+
+    counts, _ = cs.clean_exposure(bench["inst"], bench["lines"], np.random.default_rng(4),
+                                  saturate=(0.1, 0.1))
+    path = cs.write_text_exposure(tmp_path / "sat.txt", counts)
+    table = check.check_exposures([path], bench["solution"], workers=1)
+    n_sat = int(np.count_nonzero(counts >= 65535))
+    assert n_sat > 0 and table["saturated_pixels"][0] == n_sat
+    assert "saturated pixel" in table["reasons"][0]
+
+
+def test_outputs_are_written(bench, tmp_path):
+    from astropy.table import Table
+
+    out = tmp_path / "out"
+    check.check_exposures([bench["folder"]], bench["solution_path"], outdir=out, workers=2)
+    names = {p.name for p in out.iterdir()}
+    assert {"summary.ecsv", "summary.json", "report.html", "drift.png", "fwhm.png",
+            "status.png", "journal.jsonl"} <= names
+    assert not [n for n in names if n.endswith(".tmp")]
+    info = json.loads((out / "summary.json").read_text())
+    table = Table.read(out / "summary.ecsv")
+    assert info["totals"]["exposures"] == len(table) == 11
+    assert info["totals"]["error"] == 3
+    assert info["thresholds"]["max_shift_px"] == 1.0
+    assert table["timestamp"][0] == "2026-03-14T08:00:00"
+
+
+# ---- CLI -----------------------------------------------------------------------------------
+
+
+def run_cli(*args):
+    from click.testing import CliRunner
+
+    from ritzline.cli import main
+
+    return CliRunner().invoke(main, [str(a) for a in args])
+
+
+def test_cli_exit_0_when_all_pass(bench, tmp_path):
+    paths = [bench["paths"][i] for i in (0, 1, 2)]
+    r = run_cli("check", *paths, "--solution", bench["solution_path"], "-o", tmp_path / "o")
+    assert r.exit_code == 0, r.output
+    assert "3 exposures: 3 pass" in r.output
+
+
+def test_cli_warnings_exit_0_unless_strict(bench, tmp_path):
+    path = bench["paths"][3]  # shift 0.61 px: a warning at --max-shift 1
+    r = run_cli("check", path, "--solution", bench["solution_path"], "-o", tmp_path / "o")
+    assert r.exit_code == 0, r.output
+    r = run_cli("check", path, "--solution", bench["solution_path"], "-o", tmp_path / "o",
+                "--strict")
+    assert r.exit_code == 1
+
+
+def test_cli_exit_1_on_a_failed_exposure(bench, tmp_path):
+    r = run_cli("check", bench["paths"][4], "--solution", bench["solution_path"], "-o",
+                tmp_path / "o", "--max-shift", "0.5")
+    assert r.exit_code == 1 and "fail" in r.output
+
+
+def test_cli_exit_1_on_a_bad_file(bench, tmp_path):
+    r = run_cli("check", bench["bad"]["garbage"], "--solution", bench["solution_path"], "-o",
+                tmp_path / "o")
+    assert r.exit_code == 1 and "error" in r.output
+
+
+def test_cli_exit_2_on_a_bad_solution_file(bench, tmp_path):
+    bad = tmp_path / "bad.json"
+    bad.write_text("{not json")
+    r = run_cli("check", bench["paths"][0], "--solution", bad, "-o", tmp_path / "o")
+    assert r.exit_code == 2 and r.output.startswith("error:") and "bad.json" in r.output
+
+
+def test_cli_exit_2_when_no_files_are_found(bench, tmp_path):
+    r = run_cli("check", tmp_path, "--solution", bench["solution_path"], "-o", tmp_path / "o")
+    assert r.exit_code == 2 and "no exposure files" in r.output

@@ -140,6 +140,7 @@ class Reference:
     fwhm_px: float
     wavelength_grid: np.ndarray
     dispersion_grid: np.ndarray
+    centre_dispersion: float = float("nan")
     medium: str = "air"
     source: str = ""
     lamps: tuple[str, ...] = ()
@@ -245,6 +246,7 @@ def reference_from_solution(solution, *, lamp: str | Sequence[str] | None = None
         fwhm_px=fwhm,
         wavelength_grid=wl_grid,
         dispersion_grid=disp_grid,
+        centre_dispersion=float(solution.dispersion((n_pixels - 1) / 2.0)),
         medium=str(solution.medium),
         source=source,
         lamps=lamps,
@@ -578,8 +580,11 @@ class ExposureChecker:
         pixel_err = np.asarray(lines["pixel_err"], float)
         fwhm = np.asarray(lines["fwhm_pixel"], float)
         snr = np.asarray(lines["snr"], float)
-        flags = np.asarray(lines["flags"], str)
-        clean = (flags == "") & np.isfinite(pixel) & np.isfinite(pixel_err)
+        # A line wider than the reference LSF is only a *suspected* blend: a defocused
+        # exposure widens every line, and that is what the FWHM check must see.  Saturated,
+        # blended and edge lines stay out of the drift fit and the width.
+        flags = np.char.replace(np.asarray(lines["flags"], str), "blend_suspect", "")
+        clean = (np.char.strip(flags, ", ") == "") & np.isfinite(pixel) & np.isfinite(pixel_err)
         row["n_found"] = int(pixel.size)
         search = max(25.0, 3.0 * limits.max_shift_px)
         match = max(1.5, 0.8 * ref.fwhm_px)
@@ -601,7 +606,7 @@ class ExposureChecker:
         if fit.ref_index.size:
             row["snr_median"] = float(np.median(snr[fit.found_index]))
         if fit.n_used:
-            d_centre = float(ref.dispersion_at(ref.centre))
+            d_centre = ref.centre_dispersion
             row["shift_px"] = fit.shift
             row["shift_err_px"] = fit.shift_err
             row["shift_nm"] = fit.shift * d_centre
@@ -618,7 +623,8 @@ class ExposureChecker:
                 row["fwhm_px"] = med
                 # standard error of a median: 1.2533 sigma / sqrt(n) (common practice)
                 spread = 1.4826 * float(np.median(np.abs(w - med)))
-                row["fwhm_err_px"] = 1.2533 * spread / np.sqrt(w.size) if w.size > 1 else np.nan
+                n_w = w.size
+                row["fwhm_err_px"] = float(1.2533 * spread / np.sqrt(n_w)) if n_w > 1 else np.nan
                 row["fwhm_change_pct"] = 100.0 * (med / ref.fwhm_px - 1.0)
                 rp = fit.ref_index[fit.used][ok]
                 lam = ref.wavelength[rp]
