@@ -1,0 +1,1237 @@
+"""Identify the atomic transitions behind measured emission lines, and what they say about
+the excited levels: assignments with probabilities, species present, excited upper levels,
+relative populations and a Boltzmann plot.
+
+The model (see :func:`identify_lines`, Notes) treats the measured lines as a marked Poisson
+process in (wavelength, flux): every candidate transition of a present species contributes
+its expected number of detections and a narrow density at its Ritz wavelength, unknown lines
+contribute a flat density, and second-order images of present lines contribute at twice
+their wavelength.  Assignment probabilities are the posterior shares of those densities at
+each measured line; species are kept only when the lines they explain outweigh the lines they
+predict but which are not there.
+"""
+
+from __future__ import annotations
+
+import functools
+import os
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+from scipy.special import log_ndtr, ndtr
+
+from .errors import RitzlineError
+
+__all__ = [
+    "BoltzmannPlot",
+    "Identification",
+    "IdentifyOptions",
+    "boltzmann_plot",
+    "identify_lines",
+    "read_response",
+]
+
+#: Every species shipped in ``line_lists/`` that :func:`identify_lines` considers by default.
+SHIPPED_SPECIES = ("H I", "He I", "Ne I", "Ar I", "Kr I", "Xe I", "Hg I", "Na I")
+
+#: Boltzmann constant in eV/K (CODATA 2018, exact by the 2019 SI definition).
+K_B_EV = 8.617333262e-5
+
+_LOG_SQRT_2PI = 0.5 * np.log(2.0 * np.pi)
+_KIND_INTENSITY, _KIND_GA, _KIND_NONE = 0, 1, 2
+
+
+@dataclass(frozen=True)
+class IdentifyOptions:
+    """Tuning knobs of the scoring model, grouped so :func:`identify_lines` stays short.
+
+    Attributes
+    ----------
+    strength_scatter : float
+        Natural-log scatter of an observed line flux about ``scale x published strength``
+        (level populations in a discharge differ from the conditions of the published
+        intensities; 1.0 = a factor of e).
+    branch_scatter : float
+        Natural-log scatter of one line relative to another line from the same upper level
+        (branching ratios are fixed by the atom; only the tables and the response scatter).
+    window_sigma : float
+        Candidates farther than this many combined standard deviations are not considered.
+    blend_fraction : float
+        Candidate lines of one species closer than this fraction of the FWHM are one
+        candidate group (an unresolved blend).
+    species_threshold : float
+        Log-likelihood ratio a species must reach to be declared present.
+    energy_prior : float
+        Prior factor on lines whose upper level lies above ``max_electron_energy``.
+    unknown_fraction : float
+        Starting guess of the fraction of measured lines that belong to no listed species.
+    second_order : bool
+        Consider second-order images of lines at twice their wavelength.
+    min_probability : float
+        Assignments below this posterior probability are reported as unidentified.
+    systematic_nm : float
+        Extra wavelength uncertainty (nm) added in quadrature to every line.
+    observed_only : bool
+        Use only transitions published as observed lines (not every allowed Ritz line).
+    n_iter : int
+        Iterations of the scale/assignment updates for each species set.
+    """
+
+    strength_scatter: float = 1.0
+    branch_scatter: float = 0.5
+    window_sigma: float = 5.0
+    blend_fraction: float = 0.5
+    species_threshold: float = 8.0
+    energy_prior: float = 0.02
+    unknown_fraction: float = 0.2
+    second_order: bool = True
+    min_probability: float = 0.5
+    systematic_nm: float = 0.0
+    observed_only: bool = True
+    n_iter: int = 6
+
+
+@dataclass(frozen=True)
+class BoltzmannPlot:
+    """Points and fit of a Boltzmann plot, ln(I λ / (g A)) against upper-level energy.
+
+    ``corrected`` says whether the intensities were divided by a relative spectral response;
+    only then are ``temperature_k`` and ``temperature_err_k`` given (NaN otherwise), and
+    ``message`` says why when they are not.
+    """
+
+    species: str
+    energy_ev: np.ndarray
+    y: np.ndarray
+    y_err: np.ndarray
+    wavelength: np.ndarray
+    upper: tuple[str, ...]
+    corrected: bool
+    slope: float
+    slope_err: float
+    intercept: float
+    temperature_k: float
+    temperature_err_k: float
+    message: str
+
+
+@dataclass(frozen=True)
+class Identification:
+    """The result of :func:`identify_lines`.
+
+    Attributes
+    ----------
+    lines : astropy.table.Table
+        One row per measured line, in input order: measured ``wavelength``,
+        ``wavelength_err`` (total: centroid, calibration, systematic), ``flux``, ``snr``; the
+        assignment ``species``, ``ref_wavelength`` (listed wavelength of the transition; for a
+        second-order image the first-order wavelength), ``order`` (1 or 2), ``lower``,
+        ``upper``, ``upper_energy_ev``, ``residual_sigma``, ``blend_members``; the posterior
+        ``probability`` of the best candidate transition (filled even when it is too low to
+        claim), ``p_unidentified``, ``alternatives`` (other hypotheses with probabilities) and
+        ``flags`` (``unidentified``, ``blend``, ``second_order``, ``above_energy_limit``,
+        ``ambiguous``).  Rows flagged ``unidentified`` have an empty ``species``.
+    levels : astropy.table.Table
+        One row per excited upper level seen, in order of energy.
+    species : astropy.table.Table
+        Every species considered, with its evidence and a present/absent verdict.
+    boltzmann : tuple of BoltzmannPlot
+        One Boltzmann plot per present species with at least two upper levels that have
+        transition probabilities (empty otherwise).
+    meta : dict
+        How the identification was made (inputs, thresholds, fitted scales).
+    """
+
+    lines: Any
+    levels: Any
+    species: Any
+    boltzmann: tuple[BoltzmannPlot, ...] = ()
+    meta: dict = field(default_factory=dict)
+
+    @property
+    def present(self) -> tuple[str, ...]:
+        """Names of the species judged present."""
+        t = self.species
+        return tuple(str(s) for s, p in zip(t["species"], t["present"], strict=True) if p)
+
+
+# ---- inputs ------------------------------------------------------------------------------
+
+
+def read_response(path: str | os.PathLike) -> tuple[np.ndarray, np.ndarray]:
+    """Read a relative spectral-response file: wavelength (nm) and response columns.
+
+    Any table astropy reads (ECSV, CSV, whitespace text) with two numeric columns, or
+    columns named ``wavelength`` and ``response``.  Returns arrays sorted by wavelength.
+    """
+    from astropy.table import Table
+
+    try:
+        if str(path).lower().endswith(".ecsv"):
+            t = Table.read(path, format="ascii.ecsv")
+        else:
+            t = Table.read(path, format="ascii")
+    except FileNotFoundError:
+        raise
+    except Exception as exc:  # astropy raises many kinds for unreadable text
+        raise RitzlineError(
+            f"{path}: cannot read the response file ({exc}); give two columns, "
+            "wavelength in nm and relative response"
+        ) from exc
+    return _response_arrays(t, str(path))
+
+
+def _response_arrays(table, source: str) -> tuple[np.ndarray, np.ndarray]:
+    names = list(table.colnames)
+    wl_name = "wavelength" if "wavelength" in names else names[0] if names else None
+    r_name = "response" if "response" in names else names[1] if len(names) > 1 else None
+    if wl_name is None or r_name is None:
+        raise RitzlineError(f"{source}: a response needs a wavelength and a response column")
+    wl = table[wl_name]
+    unit = getattr(wl, "unit", None)
+    if unit is not None and str(unit) not in ("", "nm"):
+        import astropy.units as u
+
+        wl = np.asarray((np.asarray(wl) * unit).to_value(u.nm, equivalencies=u.spectral()))
+    wl = np.asarray(wl, float)
+    resp = np.asarray(table[r_name], float)
+    good = np.isfinite(wl) & np.isfinite(resp) & (resp > 0)
+    if good.sum() < 2:
+        raise RitzlineError(
+            f"{source}: the response needs at least two rows with a positive response"
+        )
+    order = np.argsort(wl[good])
+    return wl[good][order], resp[good][order]
+
+
+def _response_function(response):
+    """(wavelength, response) arrays from a path, a table, a pair of arrays, or None."""
+    if response is None:
+        return None
+    if isinstance(response, (str, os.PathLike)):
+        return read_response(response)
+    if hasattr(response, "colnames"):
+        return _response_arrays(response, "response table")
+    try:
+        wl, resp = response
+    except (TypeError, ValueError) as exc:
+        raise RitzlineError(
+            "response must be a file, a table, or a (wavelength_nm, response) pair"
+        ) from exc
+    from astropy.table import Table
+
+    return _response_arrays(Table({"wavelength": np.asarray(wl, float),
+                                   "response": np.asarray(resp, float)}), "response arrays")
+
+
+def _species_list(species) -> list[str]:
+    if species is None:
+        return list(SHIPPED_SPECIES)
+    if isinstance(species, str):
+        species = [s for s in species.replace(";", ",").split(",") if s.strip()]
+    out = []
+    for s in species:
+        name = " ".join(str(s).replace("_", " ").split())
+        if " " not in name:
+            name = f"{name} I"
+        out.append(name)
+    if not out:
+        raise RitzlineError("no species given; name at least one, e.g. 'Ne I', or pass None")
+    return list(dict.fromkeys(out))
+
+
+def _measured_lines(spectrum, lines, solution, find_kw):
+    """The measured line table and (range_nm, fwhm_nm, calibration_err function or None)."""
+    axis_range = None
+    if lines is None:
+        if spectrum is None:
+            raise RitzlineError("identify_lines needs a spectrum or a line table (lines=)")
+        from . import peaks
+        from .spectrum import spectrum_arrays
+
+        arrays = spectrum_arrays(spectrum)
+        lines = peaks.find_lines(spectrum, **(find_kw or {}))
+        if arrays.unit == "nm":
+            axis_range = (float(np.nanmin(arrays.axis)), float(np.nanmax(arrays.axis)))
+        elif solution is not None:
+            wl_ends = solution.wavelength(np.array([-0.5, arrays.axis.size - 0.5]))
+            axis_range = (float(np.min(wl_ends)), float(np.max(wl_ends)))
+    if "wavelength" not in lines.colnames:
+        if solution is None:
+            raise RitzlineError(
+                "the lines have no wavelengths: the spectrum has a pixel axis; pass "
+                "solution= (a wavelength solution from `ritzline calibrate`)"
+            )
+        from . import peaks
+
+        lines = peaks.attach_wavelengths(lines, solution)
+    return lines, axis_range
+
+
+# ---- candidate groups --------------------------------------------------------------------
+
+
+def _column(table, name, default=np.nan, dtype=float):
+    if name not in table.colnames:
+        return np.full(len(table), default, dtype=dtype)
+    col = table[name]
+    if dtype is float:
+        return np.asarray(np.ma.filled(np.ma.asarray(col, dtype=float), np.nan), float)
+    if dtype is bool:
+        return np.asarray(np.ma.filled(np.ma.asarray(col), False), bool)
+    return np.asarray(np.ma.filled(np.ma.asarray(col).astype(str), ""), str)
+
+
+@dataclass(frozen=True)
+class _Groups:
+    """Candidate hypotheses: first-order groups of listed lines, then second-order images."""
+
+    species: np.ndarray  # species index
+    wavelength: np.ndarray  # where the hypothesis puts the measured line (nm)
+    sigma: np.ndarray  # reference uncertainty incl. blend spread (nm)
+    strength: np.ndarray  # published strength (intensity or g*A), NaN if none
+    kind: np.ndarray  # _KIND_*
+    order: np.ndarray  # 1 or 2
+    parent: np.ndarray  # for order 2: index of the first-order group, else -1
+    in_range: np.ndarray  # bool: the hypothesis falls on the spectrum
+    above_limit: np.ndarray  # bool: upper level above the electron-energy limit
+    level: np.ndarray  # upper-level id (per species), -1 unknown
+    primary: np.ndarray  # row in the candidate table of the strongest member
+    members: tuple  # rows in the candidate table of every member
+
+
+def _candidate_groups(cand, species_names, fwhm_nm, wl_range, max_energy, opts) -> _Groups:
+    """Group candidate transitions into unresolved blends and add second-order images."""
+    sp_of = {s: k for k, s in enumerate(species_names)}
+    sp = np.array([sp_of.get(str(s), -1) for s in cand["species"]], int)
+    wl = _column(cand, "wavelength")
+    wl_err = np.nan_to_num(_column(cand, "wavelength_err"), nan=0.001)
+    inten = _column(cand, "intensity")
+    ga = _column(cand, "g_upper") * _column(cand, "aki")
+    upper_cm1 = _column(cand, "upper_cm1")
+    upper_ev = _column(cand, "upper_ev")
+    keep = (sp >= 0) & np.isfinite(wl)
+    rows = np.flatnonzero(keep)
+    order = rows[np.lexsort((wl[rows], sp[rows]))]
+    s_sorted, w_sorted = sp[order], wl[order]
+    new = np.ones(order.size, bool)
+    if order.size > 1:
+        new[1:] = (s_sorted[1:] != s_sorted[:-1]) | (
+            np.diff(w_sorted) >= opts.blend_fraction * fwhm_nm
+        )
+    gid = np.cumsum(new) - 1
+    n_g = int(gid[-1]) + 1 if order.size else 0
+    starts = np.flatnonzero(new)
+
+    i_ok = np.isfinite(inten[order]) & (inten[order] > 0)
+    a_ok = np.isfinite(ga[order]) & (ga[order] > 0)
+    has_i = np.bincount(gid, i_ok, n_g) > 0
+    has_a = np.bincount(gid, a_ok, n_g) > 0
+    kind = np.where(has_i, _KIND_INTENSITY, np.where(has_a, _KIND_GA, _KIND_NONE))
+    kind_m = kind[gid]
+    weight = np.where(
+        kind_m == _KIND_INTENSITY,
+        np.where(i_ok, inten[order], 0.0),
+        np.where(kind_m == _KIND_GA, np.where(a_ok, ga[order], 0.0), 1.0),
+    )
+    strength = np.bincount(gid, weight, n_g)
+    strength = np.where(kind == _KIND_NONE, np.nan, strength)
+    wsum = np.bincount(gid, weight, n_g)
+    wsafe = np.where(wsum > 0, wsum, 1.0)
+    centre = np.bincount(gid, weight * w_sorted, n_g) / wsafe
+    lo_w = np.minimum.reduceat(w_sorted, starts) if n_g else np.zeros(0)
+    hi_w = np.maximum.reduceat(w_sorted, starts) if n_g else np.zeros(0)
+    centre = np.where(wsum > 0, centre, 0.5 * (lo_w + hi_w))
+    # published relative strengths inside a blend are uncertain: spread of a uniform mix
+    spread = (hi_w - lo_w) / np.sqrt(12.0)
+    max_err = np.maximum.reduceat(wl_err[order], starts) if n_g else spread
+    ref_err = np.sqrt(max_err**2 + spread**2)
+    # strongest member = primary (first of the group on ties)
+    key = np.lexsort((-weight, gid))
+    first_of_group = np.r_[True, gid[key][1:] != gid[key][:-1]] if n_g else np.zeros(0, bool)
+    primary = order[key[first_of_group]]
+    members = tuple(np.split(order, starts[1:])) if n_g else ()
+
+    sp_g = s_sorted[starts] if n_g else np.zeros(0, int)
+    g_upper_ev = upper_ev[primary] if n_g else np.zeros(0)
+    if n_g:
+        member_ev = np.maximum.reduceat(np.nan_to_num(upper_ev[order], nan=-np.inf), starts)
+    else:
+        member_ev = np.zeros(0)
+    if max_energy is None:
+        above = np.zeros(n_g, bool)
+    else:
+        above = np.isfinite(g_upper_ev) & (member_ev > max_energy + 1e-9)
+    # level ids for coherence: species + upper energy (rounded to 0.01 cm-1)
+    up_key = np.round(upper_cm1[primary], 2) if n_g else np.zeros(0)
+    level = np.full(n_g, -1, int)
+    ok = np.isfinite(up_key)
+    if ok.any():
+        pairs = np.stack([sp_g[ok].astype(float), up_key[ok]], axis=1)
+        _, inv = np.unique(pairs, axis=0, return_inverse=True)
+        level[ok] = inv.ravel()
+    lo, hi = wl_range
+    in_range = (centre >= lo) & (centre <= hi)
+
+    # second-order images: first-order groups whose doubled wavelength lands on the spectrum
+    if opts.second_order and n_g:
+        par = np.flatnonzero((2 * centre >= lo) & (2 * centre <= hi))
+    else:
+        par = np.zeros(0, int)
+    cat = np.concatenate
+    return _Groups(
+        species=cat([sp_g, sp_g[par]]),
+        wavelength=cat([centre, 2 * centre[par]]),
+        sigma=cat([ref_err, 2 * ref_err[par]]),
+        strength=cat([strength, strength[par]]),
+        kind=cat([kind, kind[par]]),
+        order=cat([np.ones(n_g, int), np.full(par.size, 2)]),
+        parent=cat([np.full(n_g, -1), par]),
+        in_range=cat([in_range, np.ones(par.size, bool)]),
+        above_limit=cat([above, above[par]]),
+        level=cat([level, np.full(par.size, -1)]),
+        primary=cat([primary, primary[par]]),
+        members=members + tuple(members[p] for p in par),
+    )
+
+
+def _pairs(lam, sig, glam, gsig, nsig):
+    """Index pairs (line, group) closer than ``nsig`` combined sigma, and their z and sigma."""
+    if glam.size == 0 or lam.size == 0:
+        e = np.zeros(0, int)
+        return e, e, np.zeros(0), np.zeros(0)
+    order = np.argsort(glam)
+    gl = glam[order]
+    wmax = nsig * np.sqrt(sig**2 + gsig.max() ** 2)
+    lo = np.searchsorted(gl, lam - wmax, "left")
+    hi = np.searchsorted(gl, lam + wmax, "right")
+    counts = hi - lo
+    total = int(counts.sum())
+    li = np.repeat(np.arange(lam.size), counts)
+    offs = np.arange(total) - np.repeat(np.cumsum(counts) - counts, counts)
+    gi = order[np.repeat(lo, counts) + offs]
+    s = np.sqrt(sig[li] ** 2 + gsig[gi] ** 2)
+    z = (lam[li] - glam[gi]) / s
+    keep = np.abs(z) < nsig
+    return li[keep], gi[keep], z[keep], s[keep]
+
+
+# ---- the scoring model -------------------------------------------------------------------
+
+
+def _lognorm(x, mu, sigma):
+    return -0.5 * ((x - mu) / sigma) ** 2 - np.log(sigma) - _LOG_SQRT_2PI
+
+
+@dataclass
+class _Model:
+    """Working state of the marked-Poisson model for one spectrum (private, mutable)."""
+
+    groups: _Groups
+    n_species: int
+    lnf: np.ndarray  # ln flux of the measured lines
+    lnf_err: np.ndarray
+    ln_lim: float  # ln of the detection-limit flux
+    width: float  # spectral span (nm)
+    li: np.ndarray
+    gi: np.ndarray
+    z: np.ndarray
+    s: np.ndarray
+    generic: np.ndarray  # log density of each line's flux under "unknown line"
+    opts: IdentifyOptions
+    siblings: tuple  # CSR (ptr, idx) of same-level first-order groups
+    active: np.ndarray = None  # bool per species
+    second_active: bool = True
+    lnk: np.ndarray = None  # (n_species, 2) ln scale for intensity / gA strengths
+    lnq: np.ndarray = None  # (n_species,) ln detection probability of strength-less lines
+    ln_eta: float = np.log(0.05)  # second-order efficiency relative to first order
+    lnq2: float = np.log(0.1)  # detection probability of images of unrated, unseen parents
+    ln_rho: float = 0.0  # ln density of unknown lines per nm
+    observed: np.ndarray = None  # per group: expected number of measured lines assigned
+    resp: np.ndarray = None  # responsibilities per pair
+    resp_u: np.ndarray = None  # per line: P(unknown)
+
+    @property
+    def n_lines(self) -> int:
+        return self.lnf.size
+
+    def log_prior_group(self) -> np.ndarray:
+        g = self.groups
+        return np.where(g.above_limit, np.log(self.opts.energy_prior), 0.0)
+
+    def parent_lnmu(self) -> np.ndarray:
+        """ln of the expected first-order flux of every group (observed flux where seen)."""
+        g = self.groups
+        base = np.full(g.species.size, np.nan)
+        known = g.kind != _KIND_NONE
+        k = np.where(g.kind == _KIND_GA, 1, 0)
+        base[known] = self.lnk[g.species[known], k[known]] + np.log(g.strength[known])
+        if self.resp is not None:
+            w = np.bincount(self.gi, self.resp, g.species.size)
+            m = np.bincount(self.gi, self.resp * self.lnf[self.li], g.species.size)
+            seen = w > 0.5
+            base = np.where(seen, m / np.where(seen, w, 1.0), base)
+        return base
+
+    def group_terms(self):
+        """Per group: ln mean flux (NaN if none), flux scatter, expected detections."""
+        g, o = self.groups, self.opts
+        n_g = g.species.size
+        lnmu = np.full(n_g, np.nan)
+        sig = np.full(n_g, o.strength_scatter)
+        first = g.order == 1
+        known = first & (g.kind != _KIND_NONE)
+        k = np.where(g.kind == _KIND_GA, 1, 0)
+        lnmu[known] = self.lnk[g.species[known], k[known]] + np.log(g.strength[known])
+        sec = g.order == 2
+        if sec.any():
+            par_mu = self.parent_lnmu()[g.parent[sec]]
+            lnmu[sec] = self.ln_eta + par_mu
+            seen = self.observed is not None
+            if seen:
+                sig[sec] = np.where(self.observed[g.parent[sec]] > 0.5, o.branch_scatter,
+                                    o.strength_scatter)
+        prior = self.log_prior_group()
+        expected = np.where(
+            np.isfinite(lnmu), ndtr((lnmu - self.ln_lim) / sig), 0.0
+        )
+        none = first & (g.kind == _KIND_NONE)
+        expected[none] = np.exp(self.lnq[g.species[none]])
+        expected[sec & ~np.isfinite(lnmu)] = np.exp(self.lnq2)
+        expected *= np.exp(prior) * g.in_range
+        act = self.active[g.species] & ((g.order == 1) | self.second_active)
+        expected = np.where(act, expected, 0.0)
+        return lnmu, sig, expected, act
+
+    def coherence(self, lnmu):
+        """Per pair: log likelihood ratio of the sibling lines' seen/unseen status."""
+        ptr, idx = self.siblings
+        g = self.groups
+        out = np.zeros(self.li.size)
+        if self.observed is None or idx.size == 0 or self.li.size == 0:
+            return out
+        first = (g.order[self.gi] == 1) & (g.kind[self.gi] != _KIND_NONE)
+        pp = np.flatnonzero(first)
+        if pp.size == 0:
+            return out
+        gg = self.gi[pp]
+        counts = ptr[gg + 1] - ptr[gg]
+        rep = np.repeat(pp, counts)
+        offs = np.arange(int(counts.sum())) - np.repeat(np.cumsum(counts) - counts, counts)
+        sib = idx[np.repeat(ptr[gg], counts) + offs]
+        ok = g.in_range[sib] & (g.kind[sib] == g.kind[self.gi[rep]])
+        rep, sib = rep[ok], sib[ok]
+        if rep.size == 0:
+            return out
+        sb = self.opts.branch_scatter
+        # flux the sibling should have if this pair is right
+        mu1 = self.lnf[self.li[rep]] + np.log(g.strength[sib] / g.strength[self.gi[rep]])
+        p1 = ndtr((mu1 - self.ln_lim) / (sb * np.sqrt(2.0)))
+        p0 = ndtr((lnmu[sib] - self.ln_lim) / self.opts.strength_scatter)
+        seen = np.clip(self.observed[sib], 0.0, 1.0)
+        eps = 1e-3
+        p1 = np.clip(p1, eps, 1 - eps)
+        p0 = np.clip(p0, eps, 1 - eps)
+        llr = np.log(seen * p1 + (1 - seen) * (1 - p1)) - np.log(seen * p0 + (1 - seen) * (1 - p0))
+        np.add.at(out, rep, llr)
+        return np.clip(out, -12.0, 12.0)
+
+    def pair_logw(self, lnmu, sig):
+        """Log weight of every (line, group) pair under the current parameters."""
+        g = self.groups
+        gi, li = self.gi, self.li
+        lw = _lognorm(self.z, 0.0, 1.0) - np.log(self.s)
+        has_mu = np.isfinite(lnmu[gi])
+        tot = np.sqrt(sig[gi] ** 2 + self.lnf_err[li] ** 2)
+        lnq = np.where(g.order[gi] == 1, self.lnq[g.species[gi]], self.lnq2)
+        flux_term = np.where(
+            has_mu, _lognorm(self.lnf[li], np.nan_to_num(lnmu[gi]), tot), self.generic[li] + lnq
+        )
+        lw = lw + flux_term + self.log_prior_group()[gi] + self.coherence(lnmu)
+        act = self.active[g.species[gi]] & ((g.order[gi] == 1) | self.second_active)
+        return np.where(act, lw, -np.inf)
+
+    def e_step(self):
+        lnmu, sig, expected, _ = self.group_terms()
+        lw = self.pair_logw(lnmu, sig)
+        lu = self.ln_rho + self.generic
+        m = lu.copy()
+        np.maximum.at(m, self.li, lw)
+        w = np.exp(lw - m[self.li])
+        wu = np.exp(lu - m)
+        total = wu + np.bincount(self.li, w, self.n_lines)
+        self.resp = w / total[self.li]
+        self.resp_u = wu / total
+        self.observed = np.bincount(self.gi, self.resp, self.groups.species.size)
+        return lw, lu, m, w, wu, total, expected
+
+    def m_step(self):
+        g, o = self.groups, self.opts
+        first = g.order[self.gi] == 1
+        prior = np.exp(self.log_prior_group())
+        grid = np.linspace(-4.0, 4.0, 81)
+        for s in np.flatnonzero(self.active):
+            for kind in (_KIND_INTENSITY, _KIND_GA):
+                sel_g = (g.species == s) & (g.kind == kind) & (g.order == 1) & g.in_range
+                if not sel_g.any():
+                    continue
+                sel_p = first & (g.species[self.gi] == s) & (g.kind[self.gi] == kind)
+                r = self.resp[sel_p]
+                x = self.lnf[self.li[sel_p]] - np.log(g.strength[self.gi[sel_p]])
+                tot = np.sqrt(o.strength_scatter**2 + self.lnf_err[self.li[sel_p]] ** 2)
+                centre = self.lnk[s, kind]
+                if r.sum() > 0.5:
+                    centre = float(np.sum(r * x) / r.sum())
+                cand = centre + grid
+                ll = np.sum(r * _lognorm(x[None, :], cand[:, None], tot[None, :]), axis=1)
+                lns = np.log(g.strength[sel_g])
+                pen = np.sum(
+                    prior[sel_g] * ndtr((cand[:, None] + lns[None, :] - self.ln_lim)
+                                        / o.strength_scatter),
+                    axis=1,
+                )
+                # weak prior keeps an unconstrained scale from running away
+                obj = ll - pen - 0.5 * ((cand - centre) / 6.0) ** 2
+                self.lnk[s, kind] = float(cand[np.argmax(obj)])
+            sel_g = (g.species == s) & (g.kind == _KIND_NONE) & (g.order == 1) & g.in_range
+            if sel_g.any():
+                sel_p = first & (g.species[self.gi] == s) & (g.kind[self.gi] == _KIND_NONE)
+                q = (self.resp[sel_p].sum() + 0.1) / (prior[sel_g].sum() + 0.2)
+                self.lnq[s] = float(np.log(np.clip(q, 1e-3, 0.95)))
+        sec_p = ~first
+        sec_g = g.order == 2
+        if self.second_active and sec_g.any():
+            par_mu = self.parent_lnmu()[g.parent]
+            unrated_g = sec_g & self.active[g.species] & ~np.isfinite(par_mu)
+            if unrated_g.any():
+                sel_p = sec_p & unrated_g[self.gi]
+                q = (self.resp[sel_p].sum() + 0.1) / (prior[unrated_g].sum() + 0.2)
+                self.lnq2 = float(np.log(np.clip(q, 1e-3, 0.95)))
+            seen = self.observed[g.parent] > 0.5
+            sig = np.where(seen, o.branch_scatter, o.strength_scatter)
+            act_g = sec_g & self.active[g.species] & np.isfinite(par_mu)
+            if act_g.any():
+                r = self.resp[sec_p]
+                x = self.lnf[self.li[sec_p]] - par_mu[self.gi[sec_p]]
+                okx = np.isfinite(x)
+                r, x = r[okx], x[okx]
+                sp_ = sig[self.gi[sec_p]][okx]
+                centre = float(np.sum(r * x) / r.sum()) if r.sum() > 0.5 else self.ln_eta
+                cand = np.clip(centre + np.linspace(-3, 3, 61), np.log(1e-4), np.log(0.5))
+                ll = np.sum(r * _lognorm(x[None, :], cand[:, None], sp_[None, :]), axis=1)
+                pen = np.sum(
+                    prior[act_g] * ndtr((cand[:, None] + par_mu[act_g][None, :] - self.ln_lim)
+                                        / sig[act_g][None, :]),
+                    axis=1,
+                )
+                self.ln_eta = float(cand[np.argmax(ll - pen)])
+        n_u = self.resp_u.sum()
+        self.ln_rho = float(np.log((n_u + 0.5) / self.width))
+
+    def fit(self, n_iter):
+        for _ in range(n_iter):
+            self.e_step()
+            self.m_step()
+        return self.e_step()
+
+    def evidence(self):
+        """Log-likelihood ratio of every active species, and of the second-order images.
+
+        Each is the drop in the Poisson log-likelihood when that component's hypotheses are
+        removed with the other parameters held: the lines it explains (better than the rest
+        can) minus the detections it predicts.
+        """
+        g = self.groups
+        _, _, _, w, wu, total, expected = self.e_step()
+        llr = np.full(self.n_species, np.nan)
+        pair_sp = g.species[self.gi]
+        pair_first = g.order[self.gi] == 1
+        for s in np.flatnonzero(self.active):
+            own = pair_sp == s
+            part = np.bincount(self.li[own], w[own], self.n_lines)
+            rest = np.maximum(total - part, wu)
+            llr[s] = np.sum(np.log(total) - np.log(rest)) - expected[g.species == s].sum()
+        own = ~pair_first
+        part = np.bincount(self.li[own], w[own], self.n_lines)
+        rest = np.maximum(total - part, wu)
+        llr2 = float(np.sum(np.log(total) - np.log(rest)) - expected[g.order == 2].sum())
+        return llr, llr2, expected
+
+
+def _siblings(groups: _Groups):
+    """CSR lists of the other first-order groups from the same upper level, same species."""
+    n_g = groups.species.size
+    first = np.flatnonzero((groups.order == 1) & (groups.level >= 0))
+    if first.size == 0:
+        return np.zeros(n_g + 1, int), np.zeros(0, int)
+    key = groups.level[first]
+    order = first[np.argsort(key, kind="stable")]
+    k_sorted = groups.level[order]
+    starts = np.flatnonzero(np.r_[True, k_sorted[1:] != k_sorted[:-1]])
+    sizes = np.diff(np.r_[starts, order.size])
+    src, dst = [], []
+    for st, n in zip(starts, sizes, strict=True):
+        if n < 2:
+            continue
+        block = order[st:st + n]
+        a, b = np.meshgrid(block, block, indexing="ij")
+        off = a != b
+        src.append(a[off])
+        dst.append(b[off])
+    if not src:
+        return np.zeros(n_g + 1, int), np.zeros(0, int)
+    src, dst = np.concatenate(src), np.concatenate(dst)
+    o = np.argsort(src, kind="stable")
+    src, dst = src[o], dst[o]
+    ptr = np.zeros(n_g + 1, int)
+    np.add.at(ptr, src + 1, 1)
+    return np.cumsum(ptr), dst
+
+
+# ---- public entry point ------------------------------------------------------------------
+
+
+def identify_lines(
+    spectrum=None,
+    species=None,
+    *,
+    solution=None,
+    medium: str = "air",
+    max_electron_energy: float | None = None,
+    response=None,
+    lines=None,
+    candidates=None,
+    wavelength_range: tuple[float, float] | None = None,
+    fwhm_nm: float | None = None,
+    calibration_err=None,
+    options: IdentifyOptions | None = None,
+    find_kw: dict | None = None,
+) -> Identification:
+    """Identify the transitions behind the emission lines of a spectrum.
+
+    Parameters
+    ----------
+    spectrum : specutils.Spectrum or None
+        A spectrum with a wavelength axis, or a pixel axis together with ``solution``.  Its
+        lines are found with :func:`ritzline.peaks.find_lines`.  May be None when ``lines``
+        is given.
+    species : str, sequence of str, or None
+        Species to consider ("Ne I", "Ar", "Ne,Ar"); None = detect among every shipped one.
+    solution : ritzline.calibrate.Solution, optional
+        Wavelength solution: gives wavelengths to pixel-axis lines and the calibration
+        uncertainty band ``solution.wavelength_err(pixel)``.
+    medium : {"air", "vacuum"}
+        Medium of the measured wavelengths; the candidate Ritz wavelengths are computed in it.
+    max_electron_energy : float, optional
+        Electron energy limit in eV (e.g. the accelerating voltage of an electron-impact
+        cell).  Lines from upper levels above it get a small prior and are flagged.
+    response : path, table, (wavelength_nm, response) pair, or None
+        Relative spectral response of the instrument.  With it, fluxes are corrected before
+        populations and the Boltzmann temperature are computed; without it no temperature
+        is given.
+    lines : astropy.table.Table, optional
+        A measured line table (``wavelength``, ``wavelength_err``, ``flux``, ``flux_err``,
+        ``snr``; optional ``fwhm``, ``flags``, ``pixel``) to identify instead of finding
+        lines in ``spectrum``.
+    candidates : astropy.table.Table, optional
+        A precomputed :func:`ritzline.levels.transitions` table (for repeated calls).
+    wavelength_range : (float, float), optional
+        Spectral range covered (nm); default: the spectrum axis, else the lines' extent.
+    fwhm_nm : float, optional
+        Instrument resolution (FWHM, nm); default: the median measured FWHM.
+    calibration_err : float or callable, optional
+        Calibration uncertainty (nm) for a ``lines`` table without a solution: a number, or
+        a function of wavelength.
+    options : IdentifyOptions, optional
+        Scoring-model knobs.
+    find_kw : dict, optional
+        Keyword arguments passed to ``find_lines``.
+
+    Returns
+    -------
+    Identification
+
+    Notes
+    -----
+    Measured lines are treated as a marked Poisson process in wavelength and flux.  A
+    candidate group *c* (one listed line, or several closer than ``blend_fraction`` x FWHM)
+    of a present species contributes ``N(λ; λ_c, σ) · LogNormal(F; k_s S_c, σ_S)``, where
+    ``σ`` combines the centroid, calibration and reference uncertainties and ``S_c`` is the
+    published intensity (or g·A, with its own scale); lines without any published strength
+    contribute ``q_s · N(λ; λ_c, σ) · g(F)`` with a fitted detection fraction ``q_s``.
+    Unknown lines contribute ``ρ · g(F)`` (flat in wavelength); second-order images of
+    present lines contribute at ``2 λ_c`` with a fitted efficiency.  The expected number of
+    detections of each candidate, ``Φ((ln k_s S_c − ln F_lim)/σ_S)``, is subtracted in the
+    likelihood, so a species is charged for every strong line it predicts but which is
+    absent.  Coherence: a candidate's weight is multiplied by the likelihood ratio of the
+    seen/unseen status of the other lines from the same upper level, predicted from this
+    line's flux and the published branching.  Scales are fitted by alternating updates;
+    species are removed one at a time while the weakest has a log-likelihood ratio below
+    ``species_threshold``.  Posterior shares give the probabilities.
+    """
+
+    opts = options or IdentifyOptions()
+    if medium not in ("air", "vacuum"):
+        raise RitzlineError(f"medium must be 'air' or 'vacuum', not {medium!r}")
+    sol_medium = getattr(solution, "medium", None)
+    if sol_medium is not None and sol_medium != medium:
+        raise RitzlineError(
+            f"the wavelength solution is in {sol_medium}, but medium={medium!r} was asked; "
+            f"pass medium={sol_medium!r}"
+        )
+    names = _species_list(species)
+    table, axis_range = _measured_lines(spectrum, lines, solution, find_kw)
+    n = len(table)
+    lam = _column(table, "wavelength")
+    if n and not np.all(np.isfinite(lam)):
+        raise RitzlineError("some measured lines have no finite wavelength")
+    lam_err = np.nan_to_num(_column(table, "wavelength_err"), nan=0.0)
+    flux = _column(table, "flux")
+    flux_err = _column(table, "flux_err")
+    snr = _column(table, "snr")
+    if not np.any(np.isfinite(flux_err)):
+        flux_err = np.where(np.isfinite(snr) & (snr > 0), np.abs(flux) / snr, np.nan)
+    flags_in = _column(table, "flags", "", str) if "flags" in table.colnames else np.full(n, "")
+
+    resp = _response_function(response)
+    if wavelength_range is None:
+        wavelength_range = axis_range
+    if wavelength_range is None:
+        if n == 0:
+            raise RitzlineError("no lines to identify and no wavelength range given")
+        pad = 0.02 * max(np.ptp(lam), 1.0)
+        wavelength_range = (float(lam.min() - pad), float(lam.max() + pad))
+    lo, hi = (float(min(wavelength_range)), float(max(wavelength_range)))
+    if fwhm_nm is None:
+        fw = _column(table, "fwhm")
+        clean = np.isfinite(fw) & (fw > 0) & (np.char.find(flags_in.astype(str), "blend") < 0)
+        if clean.any():
+            fwhm_nm = float(np.median(fw[clean]))
+        elif solution is not None and getattr(solution, "fwhm_pixel", None):
+            mid = np.nanmedian(_column(table, "pixel")) if "pixel" in table.colnames else 0.0
+            fwhm_nm = float(solution.fwhm_pixel * abs(solution.dispersion(mid)))
+        else:
+            fwhm_nm = 0.1 * max(float(np.median(np.diff(np.sort(lam)))) if n > 1 else 1.0, 0.01)
+    cal = np.zeros(n)
+    if solution is not None and "pixel" in table.colnames and hasattr(solution, "wavelength_err"):
+        cal = np.asarray(solution.wavelength_err(_column(table, "pixel")), float)
+    elif callable(calibration_err):
+        cal = np.asarray(calibration_err(lam), float) * np.ones(n)
+    elif calibration_err is not None:
+        cal = np.full(n, float(calibration_err))
+    blended = np.char.find(flags_in.astype(str), "blend") >= 0
+    sig = np.sqrt(lam_err**2 + cal**2 + opts.systematic_nm**2 + (blended * 0.15 * fwhm_nm) ** 2)
+    sig = np.maximum(sig, 1e-4 * fwhm_nm + 1e-6)
+
+    if candidates is None:
+        candidates = _shipped_transitions(tuple(names), medium, opts.observed_only)
+    cw = _column(candidates, "wavelength")
+    cand = candidates[(cw >= lo / 2 - 2 * fwhm_nm) & (cw <= hi + 2 * fwhm_nm)]
+    groups = _candidate_groups(cand, names, fwhm_nm, (lo, hi), max_electron_energy, opts)
+
+    corr = np.ones(n)
+    if resp is not None:
+        corr = np.interp(lam, resp[0], resp[1], left=np.nan, right=np.nan)
+        if np.any(~np.isfinite(corr)):
+            raise RitzlineError(
+                "the response does not cover every measured line "
+                f"({lo:.1f}–{hi:.1f} nm); extend it over the whole spectrum"
+            )
+    fl = np.where(np.isfinite(flux) & (flux > 0), flux, np.nan) / corr
+    fe = np.where(np.isfinite(flux_err) & (flux_err > 0), flux_err, np.nan) / corr
+    good_f = np.isfinite(fl)
+    floor = np.nanmin(fl) if good_f.any() else 1.0
+    lnf = np.log(np.where(good_f, fl, floor))
+    lnf_err = np.where(good_f & np.isfinite(fe), fe / np.where(good_f, fl, 1.0), 2.0)
+    saturated = np.char.find(flags_in.astype(str), "saturated") >= 0
+    lnf_err = np.where(saturated, 2.0, np.minimum(lnf_err, 2.0))
+    if good_f.any() and np.isfinite(fe).any():
+        noise = np.nanpercentile(fe, 10)
+        snr_min = np.nanpercentile(snr, 2) if np.isfinite(snr).any() else 5.0
+        ln_lim = float(np.log(max(noise * max(snr_min, 3.0), 1e-300)))
+    else:
+        ln_lim = float(np.min(lnf)) if n else 0.0
+    mean_f = float(np.mean(lnf)) if n else 0.0
+    sd_f = max(float(np.std(lnf)) if n > 1 else 1.0, 0.7)
+    # flux density of a line that belongs to nothing listed: a broad fit to all lines, cut
+    # at the detection limit (so it is a density over detected fluxes)
+    generic = _lognorm(lnf, mean_f, sd_f) - log_ndtr((mean_f - ln_lim) / sd_f)
+
+    li, gi, z, s = _pairs(lam, sig, groups.wavelength, groups.sigma, opts.window_sigma)
+    n_sp = len(names)
+    model = _Model(
+        groups=groups, n_species=n_sp, lnf=lnf, lnf_err=lnf_err, ln_lim=ln_lim,
+        width=max(hi - lo, 1e-3), li=li, gi=gi, z=z, s=s, generic=generic, opts=opts,
+        siblings=_siblings(groups),
+    )
+    model.active = np.array([bool(np.any(groups.species == k)) for k in range(n_sp)])
+    model.second_active = bool(np.any(groups.order == 2))
+    model.lnk = _initial_scales(model)
+    model.lnq = np.full(n_sp, np.log(0.3))
+    model.ln_rho = float(np.log(max(opts.unknown_fraction * n, 0.5) / model.width))
+
+    llr_final = np.full(n_sp, np.nan)
+    llr_second = np.nan
+    if n:
+        while True:
+            model.fit(opts.n_iter)
+            llr, llr2, _ = model.evidence()
+            comps = [(llr[k], k) for k in np.flatnonzero(model.active)]
+            if model.second_active:
+                comps.append((llr2, -1))
+            if not comps:
+                break
+            worst, k = min(comps)
+            if worst >= opts.species_threshold:
+                llr_final[model.active] = llr[model.active]
+                llr_second = llr2 if model.second_active else llr_second
+                break
+            if k == -1:
+                model.second_active = False
+                llr_second = llr2
+            else:
+                model.active[k] = False
+                llr_final[k] = llr[k]
+        model.fit(2)
+    else:
+        model.active[:] = False
+
+    lines_out = _line_table(table, model, cand, names, lam, sig, flux, snr, flags_in, opts)
+    if resp is not None:
+        lines_out["flux_corrected"] = flux / corr
+    present = model.active.copy()
+    lnmu = model.group_terms()[0] if n else None
+    species_out = _species_table(model, names, present, llr_final, lnmu, lines_out)
+    levels_out = _levels_table(lines_out, cand, max_electron_energy, corr, resp is not None)
+    plots = tuple(
+        bp for sp_name in (names[k] for k in np.flatnonzero(present))
+        if (bp := boltzmann_plot(lines_out, cand, sp_name, corrected=resp is not None))
+        is not None
+    )
+    from . import __version__
+
+    meta = {
+        "ritzline_version": __version__,
+        "medium": medium,
+        "species_considered": names,
+        "species_present": [names[k] for k in np.flatnonzero(present)],
+        "wavelength_range_nm": [lo, hi],
+        "fwhm_nm": float(fwhm_nm),
+        "max_electron_energy_ev": max_electron_energy,
+        "response_corrected": resp is not None,
+        "second_order_llr": None if not np.isfinite(llr_second) else float(llr_second),
+        "second_order_efficiency": float(np.exp(model.ln_eta)) if model.second_active else None,
+        "unknown_line_density_per_nm": float(np.exp(model.ln_rho)),
+        "options": {k: getattr(opts, k) for k in opts.__dataclass_fields__},
+    }
+    for t in (lines_out, levels_out, species_out):
+        t.meta.update(meta)
+    return Identification(
+        lines=lines_out, levels=levels_out, species=species_out, boltzmann=plots, meta=meta
+    )
+
+
+@functools.lru_cache(maxsize=16)
+def _shipped_transitions(names: tuple[str, ...], medium: str, observed_only: bool):
+    """The transition table of the shipped line lists (computed once per species set)."""
+    from . import levels
+
+    table = levels.transitions(list(names), medium=medium, observed_only=observed_only)
+    table.meta["read_only"] = True
+    return table
+
+
+def _initial_scales(model: _Model) -> np.ndarray:
+    """Starting ln scales: median of ln F - ln S over the close pairs of each species/kind."""
+    g = model.groups
+    lnk = np.zeros((model.n_species, 2))
+    close = np.abs(model.z) < 2.0
+    for s in range(model.n_species):
+        for kind in (_KIND_INTENSITY, _KIND_GA):
+            sel = close & (g.species[model.gi] == s) & (g.kind[model.gi] == kind) & (
+                g.order[model.gi] == 1
+            )
+            if sel.any():
+                x = model.lnf[model.li[sel]] - np.log(g.strength[model.gi[sel]])
+                lnk[s, kind] = float(np.median(x))
+            else:
+                sg = (g.species == s) & (g.kind == kind)
+                if sg.any():
+                    lnk[s, kind] = model.ln_lim - float(np.median(np.log(g.strength[sg])))
+    return lnk
+
+
+# ---- result tables -----------------------------------------------------------------------
+
+
+def _fmt_wl(x: float) -> str:
+    return f"{x:.3f}"
+
+
+def _line_table(table, model, cand, names, lam, sig, flux, snr, flags_in, opts):
+    import astropy.units as u
+    from astropy.table import Table
+
+    n = lam.size
+    g = model.groups
+    c_wl = _column(cand, "wavelength")
+    c_lower = _column(cand, "lower", "", str)
+    c_upper = _column(cand, "upper", "", str)
+    c_ev = _column(cand, "upper_ev")
+    out_sp = np.full(n, "", dtype=object)
+    out_ref = np.full(n, np.nan)
+    out_order = np.zeros(n, int)
+    out_lower = np.full(n, "", dtype=object)
+    out_upper = np.full(n, "", dtype=object)
+    out_ev = np.full(n, np.nan)
+    out_p = np.zeros(n)
+    out_res = np.full(n, np.nan)
+    out_members = np.full(n, "", dtype=object)
+    out_parent = np.full(n, np.nan)
+    out_alt = np.full(n, "", dtype=object)
+    out_flags = [[f for f in str(x).split(",") if f] for x in flags_in]
+    p_unid = model.resp_u if model.resp_u is not None else np.ones(n)
+    resp = model.resp if model.resp is not None else np.zeros(0)
+
+    # best hypothesis per line (vectorised), then formatting per line
+    order = np.lexsort((-resp, model.li)) if resp.size else np.zeros(0, int)
+    li_s = model.li[order]
+    starts = np.searchsorted(li_s, np.arange(n))
+    ends = np.searchsorted(li_s, np.arange(n), "right")
+
+    def label(k):
+        row = g.primary[k]
+        name = names[g.species[k]]
+        if g.order[k] == 2:
+            return f"{name} {_fmt_wl(c_wl[row])} 2nd order"
+        return f"{name} {_fmt_wl(c_wl[row])}"
+
+    for i in range(n):  # formatting only: the scoring above is vectorised
+        idx = order[starts[i]:ends[i]]
+        hyps = [(float(resp[j]), label(model.gi[j])) for j in idx]
+        hyps.append((float(p_unid[i]), "unidentified"))
+        hyps.sort(key=lambda t: -t[0])
+        if idx.size:
+            j = idx[0]
+            k = model.gi[j]
+            out_p[i] = resp[j]
+            row = g.primary[k]
+            if resp[j] >= opts.min_probability:
+                out_sp[i] = names[g.species[k]]
+                out_ref[i] = c_wl[row]
+                out_order[i] = g.order[k]
+                out_lower[i] = c_lower[row]
+                out_upper[i] = c_upper[row]
+                out_ev[i] = c_ev[row]
+                out_res[i] = model.z[j]
+                if len(g.members[k]) > 1:
+                    out_members[i] = ",".join(_fmt_wl(c_wl[m]) for m in g.members[k])
+                    out_flags[i].append("blend")
+                if g.order[k] == 2:
+                    out_parent[i] = c_wl[row]
+                    out_flags[i].append("second_order")
+                if g.above_limit[k]:
+                    out_flags[i].append("above_energy_limit")
+        if out_sp[i] == "":
+            out_flags[i].append("unidentified")
+        second = [h for h in hyps if h[1] != "unidentified"][1:2]
+        if second and second[0][0] >= 0.2:
+            out_flags[i].append("ambiguous")
+        # alternatives: every hypothesis other than the reported one, most probable first
+        reported = label(model.gi[idx[0]]) if (idx.size and out_sp[i]) else "unidentified"
+        out_alt[i] = "; ".join(f"{lab} ({p:.2f})" for p, lab in hyps
+                               if lab != reported and p >= 0.01)
+
+    t = Table()
+    t["wavelength"] = u.Quantity(lam, u.nm)
+    t["wavelength_err"] = u.Quantity(sig, u.nm)
+    t["flux"] = u.Quantity(flux, u.ct)
+    t["snr"] = snr
+    if "pixel" in table.colnames:
+        t["pixel"] = u.Quantity(_column(table, "pixel"), u.pix)
+    t["species"] = np.array(out_sp, dtype=str) if n else np.zeros(0, str)
+    t["ref_wavelength"] = u.Quantity(out_ref, u.nm)
+    t["order"] = out_order
+    t["lower"] = np.array(out_lower, dtype=str) if n else np.zeros(0, str)
+    t["upper"] = np.array(out_upper, dtype=str) if n else np.zeros(0, str)
+    t["upper_energy_ev"] = u.Quantity(out_ev, u.eV)
+    t["residual_sigma"] = out_res
+    t["probability"] = out_p
+    t["p_unidentified"] = np.asarray(p_unid, float)
+    t["parent_wavelength"] = u.Quantity(out_parent, u.nm)
+    t["blend_members"] = np.array(out_members, dtype=str) if n else np.zeros(0, str)
+    t["alternatives"] = np.array(out_alt, dtype=str) if n else np.zeros(0, str)
+    t["flags"] = (np.array([",".join(dict.fromkeys(f)) for f in out_flags], dtype=str)
+                  if n else np.zeros(0, str))
+    return t
+
+
+def _species_table(model, names, present, llr, lnmu, lines_out):
+    from astropy.table import Table
+
+    g = model.groups
+    n_sp = len(names)
+    first_in = (g.order == 1) & g.in_range
+    strong_exp = np.zeros(n_sp, int)
+    strong_found = np.zeros(n_sp, int)
+    expected_lines = np.zeros(n_sp)
+    n_cand = np.zeros(n_sp, int)
+    if lnmu is not None:
+        z_det = (lnmu - model.ln_lim) / model.opts.strength_scatter
+        pdet = np.where(np.isfinite(lnmu), ndtr(z_det), 0.0)
+        seen = model.observed if model.observed is not None else np.zeros(g.species.size)
+        for k in range(n_sp):
+            sel = first_in & (g.species == k)
+            n_cand[k] = int(sel.sum())
+            strong = sel & (pdet >= 0.9)
+            strong_exp[k] = int(strong.sum())
+            strong_found[k] = int(np.sum(seen[strong] > 0.5))
+            expected_lines[k] = float(np.sum(pdet[sel]))
+    n_assigned = np.array([int(np.sum(lines_out["species"] == s)) for s in names])
+    t = Table()
+    t["species"] = np.array(names, dtype=str)
+    t["present"] = present
+    t["n_candidates"] = n_cand
+    t["n_assigned"] = n_assigned
+    t["strong_expected"] = strong_exp
+    t["strong_found"] = strong_found
+    t["strong_missed"] = strong_exp - strong_found
+    t["expected_lines"] = expected_lines
+    t["log_likelihood_ratio"] = llr
+    t["scale_intensity"] = np.exp(model.lnk[:, 0]) if model.lnk is not None else np.nan
+    t["scale_ga"] = np.exp(model.lnk[:, 1]) if model.lnk is not None else np.nan
+    t["detected_fraction_unrated"] = np.exp(model.lnq) if model.lnq is not None else np.nan
+    t.meta["threshold"] = model.opts.species_threshold
+    return t
+
+
+def _levels_table(lines_out, cand, max_energy, corr, corrected):
+    import astropy.units as u
+    from astropy.table import Table
+
+    ok = (lines_out["species"] != "") & (lines_out["order"] == 1)
+    ok &= np.isfinite(np.asarray(lines_out["upper_energy_ev"], float))
+    sp = np.asarray(lines_out["species"])[ok]
+    up = np.asarray(lines_out["upper"])[ok]
+    ev = np.asarray(lines_out["upper_energy_ev"], float)[ok]
+    wl = np.asarray(lines_out["wavelength"], float)[ok]
+    fl = np.asarray(lines_out["flux"], float)[ok]
+    fc = fl / corr[ok]
+    keys = [f"{a}|{b}|{round(e, 5)}" for a, b, e in zip(sp, up, ev, strict=True)]
+    uniq, inv = np.unique(np.array(keys, dtype=str), return_inverse=True) if keys else ([], [])
+    m = len(uniq)
+    inv = np.asarray(inv).ravel()
+    t = Table()
+    first = np.array([np.flatnonzero(inv == k)[0] for k in range(m)], int)
+    t["species"] = sp[first] if m else np.zeros(0, str)
+    t["upper"] = up[first] if m else np.zeros(0, str)
+    e_ev = ev[first] if m else np.zeros(0)
+    # cm-1 from eV with hc = 1.239841984e-4 eV cm (CODATA 2018)
+    t["energy_cm1"] = u.Quantity(e_ev / 1.239841984e-4, u.Unit("cm-1"))
+    t["energy_ev"] = u.Quantity(e_ev, u.eV)
+    # from the ground state an electron must bring at least the level energy
+    t["min_electron_energy_ev"] = u.Quantity(e_ev, u.eV)
+    t["n_lines"] = np.bincount(inv, minlength=m) if m else np.zeros(0, int)
+    t["wavelengths"] = np.array(
+        [",".join(_fmt_wl(x) for x in np.sort(wl[inv == k])) for k in range(m)], dtype=str
+    ) if m else np.zeros(0, str)
+    t["flux"] = u.Quantity(np.bincount(inv, fl, m) if m else np.zeros(0), u.ct)
+    t["flux_corrected"] = np.bincount(inv, fc, m) if (m and corrected) else np.full(m, np.nan)
+    if max_energy is None:
+        above = np.zeros(m, bool)
+    else:
+        above = e_ev > max_energy + 1e-9
+    t["above_limit"] = above
+    t["note"] = np.array(
+        ["needs stepwise excitation via a metastable level, or the identification is wrong"
+         if a else "" for a in above], dtype=str) if m else np.zeros(0, str)
+    if m:
+        t.sort(["energy_ev", "species"])
+    t.meta["max_electron_energy_ev"] = max_energy
+    t.meta["intensities"] = "response-corrected" if corrected else "uncorrected"
+    return t
+
+
+# ---- Boltzmann plot ----------------------------------------------------------------------
+
+
+def boltzmann_plot(lines, candidates, species: str, *, corrected: bool) -> BoltzmannPlot | None:
+    """Boltzmann-plot points ln(F λ / (g A)) of one species' identified lines, and a fit.
+
+    Uses first-order, unblended assignments whose transition has a published A value.
+    ``F`` is the measured flux (photon counts; λ converts to energy units with the usual
+    convention of the plot); when ``corrected`` is False no temperature is fitted, because
+    uncorrected intensities carry the instrument's spectral response.  Returns None when
+    fewer than two lines with A values are identified.
+    """
+    lam = np.asarray(lines["wavelength"], float)
+    ref = np.asarray(lines["ref_wavelength"], float)
+    sel = (np.asarray(lines["species"]) == species) & (np.asarray(lines["order"]) == 1)
+    sel &= np.char.find(np.asarray(lines["flags"], str), "blend") < 0
+    c_sp = np.asarray(candidates["species"]).astype(str)
+    c_wl = _column(candidates, "wavelength")
+    c_a = _column(candidates, "aki")
+    c_g = _column(candidates, "g_upper")
+    rows = np.flatnonzero(sel & np.isfinite(ref))
+    if rows.size == 0:
+        return None
+    pick = np.flatnonzero(c_sp == species)
+    if pick.size == 0:
+        return None
+    nearest = pick[np.argmin(np.abs(c_wl[pick][None, :] - ref[rows][:, None]), axis=1)]
+    ga = c_a[nearest] * c_g[nearest]
+    flux = np.asarray(lines["flux"], float)[rows]
+    ok = np.isfinite(ga) & (ga > 0) & np.isfinite(flux) & (flux > 0)
+    if "flux_corrected" in lines.colnames:
+        flux = np.asarray(lines["flux_corrected"], float)[rows]
+    rows, nearest, ga, flux = rows[ok], nearest[ok], ga[ok], flux[ok]
+    if rows.size < 2:
+        return None
+    e = np.asarray(lines["upper_energy_ev"], float)[rows]
+    snr = np.asarray(lines["snr"], float)[rows]
+    y = np.log(flux * lam[rows] / ga)
+    y_err = 1.0 / np.where(np.isfinite(snr) & (snr > 0), snr, 1.0)
+    upper = tuple(str(x) for x in np.asarray(lines["upper"])[rows])
+    nan = float("nan")
+    if not corrected:
+        return BoltzmannPlot(
+            species=species, energy_ev=e, y=y, y_err=y_err, wavelength=lam[rows], upper=upper,
+            corrected=False, slope=nan, slope_err=nan, intercept=nan, temperature_k=nan,
+            temperature_err_k=nan,
+            message="intensities are uncorrected for the spectral response: no temperature",
+        )
+    if np.unique(np.round(e, 4)).size < 2:
+        return BoltzmannPlot(
+            species=species, energy_ev=e, y=y, y_err=y_err, wavelength=lam[rows], upper=upper,
+            corrected=True, slope=nan, slope_err=nan, intercept=nan, temperature_k=nan,
+            temperature_err_k=nan, message="all lines share one upper level: no temperature",
+        )
+    slope, slope_err, intercept = _line_fit(e, y, y_err)
+    if slope < 0:
+        temp = -1.0 / (K_B_EV * slope)
+        temp_err = abs(temp * slope_err / slope)
+        msg = f"excitation temperature from {rows.size} lines"
+    else:
+        temp, temp_err = nan, nan
+        msg = "non-negative slope: the levels are not in a Boltzmann distribution"
+    return BoltzmannPlot(
+        species=species, energy_ev=e, y=y, y_err=y_err, wavelength=lam[rows], upper=upper,
+        corrected=True, slope=float(slope), slope_err=float(slope_err),
+        intercept=float(intercept), temperature_k=float(temp), temperature_err_k=float(temp_err),
+        message=msg,
+    )
+
+
+def _line_fit(x, y, y_err):
+    """Weighted straight line; slope error scaled by the scatter when there are >2 points."""
+    w = 1.0 / np.maximum(y_err, 1e-6) ** 2
+    a = np.vstack([x, np.ones_like(x)]).T
+    aw = a * np.sqrt(w)[:, None]
+    coef, *_ = np.linalg.lstsq(aw, y * np.sqrt(w), rcond=None)
+    cov = np.linalg.inv(aw.T @ aw)
+    dof = x.size - 2
+    if dof > 0:
+        chi2 = float(np.sum(w * (y - a @ coef) ** 2))
+        cov = cov * max(chi2 / dof, 1.0)
+    return float(coef[0]), float(np.sqrt(cov[0, 0])), float(coef[1])
