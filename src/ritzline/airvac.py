@@ -3,7 +3,8 @@
 Published air wavelengths from 200 to 2000 nm refer to dry standard air (15 °C, 101 325 Pa,
 0.03 % CO₂); the dispersion formula used for them is that of Peck & Reeder (1972).  Below
 200 nm wavelengths are quoted in vacuum by the usual convention, so both conversions leave
-values below :data:`AIR_MIN_NM` unchanged.
+lines whose *vacuum* wavelength is below :data:`AIR_MIN_NM` unchanged (air wavelengths
+from 199.935 nm up are converted, which keeps the two functions exact inverses).
 """
 
 import numpy as np
@@ -48,9 +49,14 @@ def refractive_index(vacuum_nm) -> np.ndarray:
         n(λ); exactly 1 below :data:`AIR_MIN_NM` (vacuum convention).
     """
     lam = _as_nm(vacuum_nm)
-    sigma2 = (1e3 / np.where(lam >= AIR_MIN_NM, lam, AIR_MIN_NM)) ** 2  # µm⁻²
-    n_minus_1 = 1e-8 * (_PR_A + _PR_B / (_PR_C - sigma2) + _PR_D / (_PR_E - sigma2))
-    return np.where(lam >= AIR_MIN_NM, 1.0 + n_minus_1, 1.0)
+    return np.where(lam >= AIR_MIN_NM, _peck_reeder(lam), 1.0)
+
+
+def _peck_reeder(vacuum_nm: np.ndarray) -> np.ndarray:
+    """The dispersion formula itself (used unclamped near the 200 nm boundary)."""
+    lam = np.maximum(vacuum_nm, 185.0)  # below its range, hold the formula's value
+    sigma2 = (1e3 / lam) ** 2  # µm⁻²
+    return 1.0 + 1e-8 * (_PR_A + _PR_B / (_PR_C - sigma2) + _PR_D / (_PR_E - sigma2))
 
 
 def vacuum_to_air(vacuum_nm) -> np.ndarray | float:
@@ -64,7 +70,7 @@ def vacuum_to_air(vacuum_nm) -> np.ndarray | float:
     Returns
     -------
     numpy.ndarray or float
-        λ_air = λ_vac / n(λ_vac); values below 200 nm are returned unchanged.
+        λ_air = λ_vac / n(λ_vac); vacuum values below 200 nm are returned unchanged.
 
     Examples
     --------
@@ -81,7 +87,8 @@ def air_to_vacuum(air_nm) -> np.ndarray | float:
 
     Solves λ_vac = λ_air · n(λ_vac) by fixed-point iteration until every element changes
     by less than 1e-9 nm (the round trip through :func:`vacuum_to_air` then agrees to
-    better than 1e-6 nm).  Values below 200 nm are returned unchanged.
+    better than 1e-6 nm).  Values whose vacuum wavelength would be below 200 nm are
+    returned unchanged.
 
     Parameters
     ----------
@@ -94,12 +101,14 @@ def air_to_vacuum(air_nm) -> np.ndarray | float:
         Vacuum wavelength(s), nm.
     """
     air = _as_nm(air_nm)
-    vac = air * refractive_index(air)
+    vac = air * _peck_reeder(air)
     for _ in range(_MAX_ITERATIONS):
-        new = air * refractive_index(vac)
+        new = air * _peck_reeder(vac)
         done = not np.any(np.abs(new - vac) >= _TOLERANCE_NM)  # NaN counts as done
         vac = new
         if done:
             break
-    vac = np.where(air >= AIR_MIN_NM, vac, air)
+    # the 200 nm convention refers to the vacuum wavelength, as in vacuum_to_air, so the
+    # two conversions are exact inverses on both sides of the boundary
+    vac = np.where(vac >= AIR_MIN_NM, vac, air)
     return vac if vac.ndim else float(vac)

@@ -132,9 +132,241 @@ def info(files: tuple[str, ...], column: str | None, as_json: bool) -> None:
 
 # ---- transitions -----------------------------------------------------------------------
 
+
+def _transitions_range(_ctx, _param, value: str | None):
+    """Parse "400:700" into (400.0, 700.0) nm."""
+    if value is None:
+        return None
+    try:
+        lo, hi = (float(x) for x in value.split(":"))
+    except ValueError:
+        raise click.BadParameter(f"expected MIN:MAX in nm, e.g. 400:700, not {value!r}") from None
+    if not lo < hi:
+        raise click.BadParameter(f"MIN must be below MAX, got {value!r}")
+    return lo, hi
+
+
+def _transitions_flags(row, blend_label: str) -> str:
+    flags = []
+    if row["observed"]:
+        flags.append("obs" if row["ritz"] else "obs(no levels)")
+    if row["intercombination"]:
+        flags.append("intercomb")
+    if row["lower_kind"]:
+        flags.append(str(row["lower_kind"]))
+    if row["memory"]:
+        flags.append("memory")
+    if blend_label:
+        flags.append(blend_label)
+    return " ".join(flags)
+
+
+def _transitions_print(table, medium: str, blend_of: dict[int, str]) -> None:
+    import math
+
+    from rich.console import Console
+    from rich.table import Table as RichTable
+
+    def num(value, fmt: str) -> str:
+        return "" if value is None or not math.isfinite(float(value)) else format(value, fmt)
+
+    from rich import box
+
+    rt = RichTable(
+        title=f"{len(table)} transitions, wavelengths in {medium}",
+        title_justify="left",
+        box=box.SIMPLE_HEAD,
+    )
+    for name, justify in (
+        ("species", "left"),
+        ("λ (nm)", "right"),
+        ("±", "right"),
+        ("published", "right"),
+        ("lower", "left"),
+        ("upper", "left"),
+        ("E_up (eV)", "right"),
+        ("rel. int.", "right"),
+        ("A_ki (s⁻¹)", "right"),
+        ("flags", "left"),
+    ):
+        rt.add_column(name, justify=justify, no_wrap=True)
+    for i, row in enumerate(table):
+        rt.add_row(
+            str(row["species"]),
+            num(row["wavelength"], ".4f"),
+            num(row["wavelength_err"], ".4f"),
+            num(row["wavelength_obs"], ".5f"),
+            str(row["lower"]),
+            str(row["upper"]),
+            num(row["upper_ev"], ".3f"),
+            num(row["intensity"], "g"),
+            num(row["aki"], ".3g"),
+            _transitions_flags(row, blend_of.get(i, "")),
+        )
+    console = Console()
+    if not console.is_terminal:
+        console = Console(width=220)  # files and pipes get whole rows
+    console.print(rt)
+
+
+@main.command("transitions")
+@click.argument("species", nargs=-1, required=True)
+@click.option(
+    "--range",
+    "wavelength_range",
+    callback=_transitions_range,
+    metavar="MIN:MAX",
+    help="Wavelength range in nm (in the chosen medium), e.g. 400:700.",
+)
+@click.option(
+    "--medium",
+    type=click.Choice(["air", "vacuum"]),
+    default="air",
+    show_default=True,
+    help="Medium of the wavelengths (standard air, Peck & Reeder 1972; air = vacuum < 200 nm).",
+)
+@click.option("--observed-only", is_flag=True, help="Only level pairs in the published lists.")
+@click.option(
+    "--no-intercombination",
+    is_flag=True,
+    help="Leave out spin-changing lines between LS terms (e.g. Hg I 253.65 nm).",
+)
+@click.option(
+    "--min-intensity",
+    type=float,
+    default=None,
+    help="Only lines with a published relative intensity of at least this value.",
+)
+@click.option(
+    "--fwhm",
+    type=click.FloatRange(min=0, min_open=True),
+    default=None,
+    help="Instrument FWHM in nm: mark lines closer than half of it as blends (B1, B2, ...).",
+)
+@click.option(
+    "-o",
+    "--output",
+    type=click.Path(dir_okay=False),
+    default=None,
+    help="Also write the table to this file (ECSV).",
+)
+@handle_errors
+def transitions_command(
+    species: tuple[str, ...],
+    wavelength_range,
+    medium: str,
+    observed_only: bool,
+    no_intercombination: bool,
+    min_intensity: float | None,
+    fwhm: float | None,
+    output: str | None,
+) -> None:
+    """List the electric-dipole transitions of SPECIES (e.g. Ne, "Hg I", NeI) with Ritz
+    wavelengths computed from published energy levels, joined to the published lines.
+
+    Flags: obs = in the published line list; intercomb = spin-changing; ground/metastable =
+    kind of lower level; memory = values recalled without a readable published table.
+    """
+    from ._io import write_table
+    from .levels import blends, transitions
+
+    table = transitions(
+        species,
+        wavelength_range=wavelength_range,
+        medium=medium,
+        observed_only=observed_only,
+        intercombination=not no_intercombination,
+        min_intensity=min_intensity,
+    )
+    blend_of: dict[int, str] = {}
+    if fwhm is not None and len(table):
+        groups = blends(table, fwhm)
+        multi = groups[groups["n_members"] > 1]
+        for number, rows in enumerate(multi["member_rows"], start=1):
+            for i in str(rows).split(","):
+                blend_of[int(i)] = f"B{number}"
+        table["blend"] = [blend_of.get(i, "") for i in range(len(table))]
+        table.meta["blend_fwhm_nm"] = fwhm
+        table.meta["blend_fraction"] = 0.5
+    _transitions_print(table, medium, blend_of)
+    if output:
+        write_table(table, output)
+        click.echo(f"wrote {output}")
+
 # ---- peaks -----------------------------------------------------------------------------
 
 # ---- calibrate -------------------------------------------------------------------------
+
+
+def _parse_range(text: str | None):
+    if text is None:
+        return None
+    try:
+        lo, hi = (float(v) for v in text.split(":"))
+    except ValueError:
+        raise click.BadParameter(f"expected LOW:HIGH in nm, got {text!r}") from None
+    return lo, hi
+
+
+@main.command("calibrate")
+@click.argument("lamp_file", type=click.Path(exists=True, dir_okay=False))
+@click.option("--lamp", "lamps", multiple=True, required=True,
+              help="Lamp species (repeat for mixed lamps: --lamp Hg --lamp Ar).")
+@click.option("--range", "wrange", default=None, metavar="LOW:HIGH",
+              help="Coarse wavelength range of the detector in nm (default 200:1100).")
+@click.option("--degree", type=click.IntRange(1, 7), default=None,
+              help="Chebyshev degree (default: chosen from the data).")
+@click.option("--guess", "guess_path", type=click.Path(exists=True, dir_okay=False),
+              default=None, help="Earlier solution of this detector: search only a drift.")
+@click.option("--medium", type=click.Choice(["air", "vacuum"]), default="air",
+              show_default=True, help="Medium of the reference and solution wavelengths.")
+@click.option("--column", default=None, help="Counts column of a table file.")
+@click.option("-o", "--output", required=True, type=click.Path(dir_okay=False),
+              help="Where to write the solution (JSON).")
+@click.option("--plot", "plot_path", type=click.Path(dir_okay=False), default=None,
+              help="Write a residual plot (PNG).")
+@click.option("--write-calibrated", "calibrated_path", type=click.Path(dir_okay=False),
+              default=None, help="Write the exposure with its wavelength axis (ECSV).")
+@click.option("--json", "as_json", is_flag=True, help="Print the summary as JSON.")
+@handle_errors
+def calibrate_cmd(lamp_file, lamps, wrange, degree, guess_path, medium, column, output,
+                  plot_path, calibrated_path, as_json):
+    """Solve the pixel -> wavelength map of a reference-lamp exposure LAMP_FILE.
+
+    No line positions are needed: lines are found and matched to the lamp's published
+    wavelengths automatically.  Safety: lamps run at high voltage and some emit UV-C or
+    contain mercury; follow the lamp maker's instructions and your local safety rules.
+    """
+    from .calibrate import Solution, calibrate, with_input, write_calibrated
+    from .spectrum import read_spectrum
+
+    spectrum = read_spectrum(lamp_file, column=column)
+    guess = Solution.load(guess_path) if guess_path else None
+    solution = calibrate(spectrum, tuple(lamps), wavelength_range=_parse_range(wrange),
+                         degree=degree, guess=guess, medium=medium)
+    solution = with_input(solution, lamp_file)
+    solution.save(output)
+    if plot_path:
+        from .plots import calibration_residuals
+
+        calibration_residuals(solution, plot_path)
+    if calibrated_path:
+        write_calibrated(spectrum, solution, calibrated_path)
+    info = solution.summary()
+    if as_json:
+        echo_json(info)
+        return
+    lo, hi = info["dispersion_nm_per_px"]
+    wl_lo, wl_hi = info["wavelength_limits_nm"]
+    click.echo(f"lamp          {'+'.join(info['lamps'])} ({info['medium']})")
+    click.echo(f"lines used    {info['lines_used']} (rejected {info['lines_rejected']})")
+    click.echo(f"RMS           {info['rms_nm'] * 1e3:.3f} pm = {info['rms_pixel']:.3f} px")
+    click.echo(f"degree        {info['degree']}")
+    click.echo(f"dispersion    {lo:.5f} - {hi:.5f} nm/px ({info['direction']})")
+    click.echo(f"coverage      {wl_lo:.3f} - {wl_hi:.3f} nm")
+    click.echo(f"confidence    {info['confidence']:.6f} ({info['verdict']})")
+    click.echo(f"solution      {output}")
+
 
 # ---- match -----------------------------------------------------------------------------
 

@@ -80,7 +80,7 @@ COMPILED = "2026-12-01"
 
 _L_LETTERS = "SPDFGHIKLMNOQ"
 _LS_TERM = re.compile(r"^(\d+)([SPDFGHIKLMNOQ])°?$")
-_SPECIES_RE = re.compile(r"^\s*([A-Za-z]{1,2})\s*(I*)\s*$")
+_SPECIES_RE = re.compile(r"^\s*([A-Za-z]{1,2})\s*([Ii]*)\s*$")
 _LEVEL_MATCH_CM1 = 1e-3
 _UNRELIABLE_MATCH_NM = 1e-4
 
@@ -97,7 +97,7 @@ def species_label(name: str) -> str:
         If the name is not a neutral species with shipped data.
     """
     match = _SPECIES_RE.match(str(name))
-    if match and match.group(2) in ("", "I"):
+    if match and match.group(2) in ("", "I", "i"):
         label = f"{match.group(1).capitalize()} I"
         if label in SPECIES:
             return label
