@@ -365,3 +365,101 @@ def lamp_exposure(
         spike_pixel=spike_pix,
     )
     return counts, truth
+
+
+@dataclass(frozen=True)
+class BusyTruth:
+    """What :func:`busy_spectrum` put in: lines, detector and artefacts."""
+
+    centre: np.ndarray
+    flux: np.ndarray
+    fwhm: float
+    gain: float
+    read_noise: float
+    saturation: float
+    saturated: np.ndarray  # per line: its expected peak exceeded the saturation level
+    background: np.ndarray  # smooth continuum (ADU per pixel), without the dark
+    dark: np.ndarray  # expected dark signal per pixel (pattern + hot pixels)
+    hot_pixel: np.ndarray
+    spike_pixel: np.ndarray
+
+
+def _bloom(expected: np.ndarray, level: float) -> np.ndarray:
+    """Spill charge above ``level`` evenly into the neighbouring pixels until none is left."""
+    out = expected.copy()
+    for _ in range(10 * out.size):
+        over = np.clip(out - level, 0, None)
+        if not over.any():
+            break
+        out -= over
+        out[:-1] += 0.5 * over[1:]
+        out[1:] += 0.5 * over[:-1]
+    return out
+
+
+def busy_spectrum(
+    rng: np.random.Generator,
+    *,
+    n_pixels: int = 3648,
+    n_lines: int = 120,
+    n_close_pairs: int = 12,
+    n_saturated: int = 3,
+    n_hot: int = 8,
+    n_spikes: int = 6,
+    fwhm: tuple[float, float] = (2.2, 3.5),
+) -> tuple[np.ndarray, np.ndarray, BusyTruth]:
+    """A dense emission spectrum with the artefacts of a real exposure, plus a master dark.
+
+    Lines have log-uniform fluxes (from below the detection limit to far above saturation),
+    some close pairs (0.8-2.5 FWHM apart), a few lines bright enough to saturate and bloom
+    (charge above full well spills into the neighbours), a smooth continuum, a fixed dark
+    pattern with hot pixels, and single-pixel cosmic-ray spikes that are not in the dark.
+
+    Returns
+    -------
+    counts : ndarray
+        The exposure (ADU), clipped at the saturation level.
+    dark : ndarray
+        A master dark of the same detector (mean of 16 dark frames, so its own noise is small).
+    truth : BusyTruth
+    """
+    n = n_pixels
+    fw = float(rng.uniform(*fwhm))
+    gain = float(rng.uniform(0.8, 2.5))
+    rn = float(rng.uniform(3.0, 8.0))
+    sat = 65535.0
+    x = np.arange(n) / (n - 1)
+    continuum = rng.uniform(50, 300) * (1 + 0.5 * np.sin(2 * np.pi * (x * rng.uniform(0.5, 2)
+                                                                         + rng.uniform())))
+    continuum += rng.uniform(100, 2000) * np.exp(-0.5 * ((x - rng.uniform(0.2, 0.8)) / 0.15) ** 2)
+    dark = rng.uniform(200, 400) + 30 * x + 5 * np.sin(2 * np.pi * np.arange(n) / 16.0)
+    hot = rng.choice(np.arange(5, n - 5), size=n_hot, replace=False)
+    dark[hot] += rng.uniform(300, 5000, n_hot)
+    centre = rng.uniform(3, n - 4, n_lines)
+    flux = 10 ** rng.uniform(1.5, 4.8, n_lines)
+    first = rng.choice(n_lines, size=n_close_pairs, replace=False)
+    pair_c = centre[first] + rng.choice([-1, 1], n_close_pairs) * rng.uniform(0.8, 2.5,
+                                                                             n_close_pairs) * fw
+    pair_f = flux[first] * 10 ** rng.uniform(-1, 1, n_close_pairs)
+    sigma = fw / FWHM_PER_SIGMA
+    peak_frac = 1.0 / (sigma * np.sqrt(2 * np.pi))
+    bright_c = rng.uniform(20, n - 20, n_saturated)
+    bright_f = sat / peak_frac * rng.uniform(1.5, 8.0, n_saturated)
+    centre = np.r_[centre, pair_c, bright_c]
+    flux = np.r_[flux, pair_f, bright_f]
+    inside = (centre > 0) & (centre < n - 1)
+    centre, flux = centre[inside], flux[inside]
+    lines = integrated_gaussians(n, centre, flux, fw)
+    expected = _bloom(lines + continuum + dark, sat)
+    saturated = flux * peak_frac + np.interp(centre, np.arange(n), continuum + dark) > sat
+    counts = observe(expected, rng, gain=gain, read_noise=rn, saturation=sat)
+    spikes = rng.choice(np.arange(n), size=n_spikes, replace=False)
+    counts[spikes] = np.minimum(counts[spikes] + rng.uniform(300, 20000, n_spikes), sat)
+    master = np.mean([observe(dark, rng, gain=gain, read_noise=rn) for _ in range(16)], axis=0)
+    order = np.argsort(centre)
+    truth = BusyTruth(
+        centre=centre[order], flux=flux[order], fwhm=fw, gain=gain, read_noise=rn,
+        saturation=sat, saturated=saturated[order], background=continuum, dark=dark,
+        hot_pixel=np.sort(hot), spike_pixel=np.sort(spikes),
+    )
+    return counts, master, truth
