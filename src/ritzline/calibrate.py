@@ -51,6 +51,8 @@ __all__ = [
     "Solution",
     "calibrate",
     "calibrated_spectrum",
+    "file_sha256",
+    "with_input",
     "write_calibrated",
 ]
 
@@ -60,9 +62,10 @@ DEFAULT_RANGE_NM = (200.0, 1100.0)
 # Plausible dispersions of a grating spectrometer, nm per pixel (common practice: from
 # ~0.005 nm/px echelle-like to ~2 nm/px survey instruments).
 DISPERSION_LIMITS = (0.003, 3.0)
-CONFIDENT_P = 1e-6  # largest chance-match probability that still gives a solution
+CONFIDENT_P = 1e-3  # largest look-elsewhere-corrected chance probability accepted
 MAX_DEGREE = 5
 _MATCH_NSIGMA = 4.0  # a detection belongs to a reference line within this many sigma
+_WINDOW_FRACTION = 0.1  # a match window must be smaller than this x the line spacing
 _CLIP_NSIGMA = 4.0  # rejection threshold of the final fit
 
 
@@ -408,9 +411,9 @@ def _lines_table(lines: list, bad):
             if key not in item:
                 raise bad(f"missing field 'lines[{i}].{key}'")
             value = item[key]
-            if not isinstance(value, kind) or (kind != bool and isinstance(value, bool)):
+            if not isinstance(value, kind) or (kind is not bool and isinstance(value, bool)):
                 raise bad(f"field 'lines[{i}].{key}' has type {type(value).__name__}")
-            if kind != str and kind != bool and not math.isfinite(value):
+            if kind is not str and kind is not bool and not math.isfinite(value):
                 raise bad(f"field 'lines[{i}].{key}' is not finite")
             cols[key].append(value)
         for key in ("flux", "snr"):
@@ -546,7 +549,7 @@ def _detections(spectrum, n_pixels: int | None) -> tuple[_Lines, dict]:
         np.asarray(table["flags"], dtype=str) if "flags" in table.colnames else np.full(m, "")
     )
     reason = np.full(m, "", dtype=object)
-    for word in ("saturated", "blended", "edge"):
+    for word in ("saturated", "blended", "blend_suspect", "edge"):
         has = np.char.find(flags.astype(str), word) >= 0
         reason[has & (reason == "")] = word
     order = np.argsort(p)
@@ -614,12 +617,24 @@ def _wls(x, y, sig, deg):
     return coef, rinv @ rinv.T
 
 
+def _deleted_z(x, y, sig, coef, cov, use):
+    """Residuals in units of their leave-one-out sigma: a fitted line's residual is divided
+    by sqrt(1 - leverage), a line left out by sqrt(1 + leverage), so a wrong line at the
+    end of the range (high leverage, small plain residual) still stands out."""
+    v = _cheb.chebvander(x, len(coef) - 1)
+    lev = np.einsum("ij,jk,ik->i", v, cov, v) / sig**2
+    r = (y - _cheb.chebval(x, coef)) / sig
+    factor = np.where(use, np.clip(1.0 - lev, 1e-3, None), 1.0 + lev)
+    return r / np.sqrt(factor)
+
+
 def _fit_clip(x, y, sig, deg, *, nsigma=_CLIP_NSIGMA, keep=None, max_iter=8):
-    """Fit with iterative rejection (robust scale); returns coef, cov, used mask, scale."""
+    """Fit with iterative rejection on leave-one-out residuals (robust scale); returns
+    coef, covariance (scaled by the reduced chi-square when above 1), used mask, chi2r."""
     use = np.ones(x.size, bool) if keep is None else keep.copy()
     for _ in range(max_iter):
         coef, cov = _wls(x[use], y[use], sig[use], deg)
-        z = (y - _cheb.chebval(x, coef)) / sig
+        z = _deleted_z(x, y, sig, coef, cov, use)
         scale = max(1.0, 1.4826 * float(np.median(np.abs(z[use]))))
         new = np.abs(z) < nsigma * scale
         if keep is not None:
@@ -644,10 +659,23 @@ def _band(x, coef, cov, spread=None):
     return np.sqrt(np.clip(var, 0, None))
 
 
+def _loo_band(xall, coef, cov, spread, fitted, var_fitted):
+    """Prediction band at every detection; for the fitted ones, the leave-one-out band (a
+    line that alone pins the fit somewhere gets the wide band it would have without it, so
+    its association there stays in doubt)."""
+    band = _band(xall, coef, cov, spread)
+    if fitted.size:
+        var_cov = _band(xall[fitted], coef, cov) ** 2
+        lev = np.clip(var_cov / var_fitted, 0.0, 1.0 - 1e-9)
+        band = band.copy()
+        band[fitted] = np.sqrt(band[fitted] ** 2 + var_cov * lev / (1.0 - lev))
+    return band
+
+
 def _degree_cap(n_lines: int, spread: float) -> int:
     """Highest degree allowed by the number of lines (the next degree must still leave two
     degrees of freedom, for the model-spread band) and by their spread over the detector."""
-    return int(max(1, min(MAX_DEGREE, n_lines - 4, 1 + math.floor(4 * spread))))
+    return int(max(1, min(MAX_DEGREE, n_lines - 4, 2 + math.floor(6 * spread))))
 
 
 def _line_sigma(det: _Lines, ref: _Refs, di, ri, disp):
@@ -675,7 +703,8 @@ def _quads(pos: np.ndarray, ahead: int, min_gap: float):
     idx = idx[idx[:, 3] < n]
     pq = pos[idx]
     gaps = np.diff(pq, axis=1)
-    ok = gaps.min(axis=1) >= min_gap
+    # near-coincident members (unresolved multiplets) make the ratios meaningless
+    ok = (gaps.min(axis=1) >= min_gap) & (gaps.min(axis=1) >= 0.005 * (pq[:, 3] - pq[:, 0]))
     idx, pq = idx[ok], pq[ok]
     span = pq[:, 3] - pq[:, 0]
     inv = np.stack([(pq[:, 1] - pq[:, 0]) / span, (pq[:, 2] - pq[:, 0]) / span], axis=1)
@@ -785,7 +814,12 @@ def _associate(det: _Lines, ref: _Refs, pred, tol):
     left, right = w[j - 1], w[j]
     near = np.where(np.abs(pred - left) < np.abs(pred - right), j - 1, j)
     dist = np.abs(pred - w[near])
-    ok = dist < tol
+    # ambiguous when the other neighbour is inside the window too: leave such lines out
+    other = np.where(near == j - 1, j, j - 1)
+    # and when the window is not small against the local spacing: an unlisted line would
+    # fall into it too often
+    gap = (w[np.clip(near + 1, 0, w.size - 1)] - w[np.clip(near - 1, 0, w.size - 1)]) / 2
+    ok = (dist < tol) & (np.abs(pred - w[other]) >= tol) & (tol < _WINDOW_FRACTION * gap)
     di = np.flatnonzero(ok)
     ri = near[ok]
     score = dist[ok] / tol[ok]
@@ -819,25 +853,15 @@ def _grow(det: _Lines, ref: _Refs, di, ri, *, max_iter=25, max_degree=3):
             spread_c = c_hi - np.pad(coef, (0, 1))
         pred = _cheb.chebval(xall, coef)
         dall = np.abs(_cheb.chebval(xall, _cheb.chebder(coef))) * 2 / (n - 1)
-        band = _band(xall, coef, cov, spread_c)
+        band = _loo_band(xall, coef, cov, spread_c, di[use], sig[use] ** 2 * max(1.0, chi2r))
         meas = np.sqrt((det.pixel_err * dall) ** 2 + (np.sqrt(chi2r) * 0.05 * dall) ** 2)
         tol = _MATCH_NSIGMA * np.sqrt(band**2 + meas**2 + np.median(ref.wavelength_err) ** 2)
-        tol = np.minimum(tol, 0.45 * _min_spacing_px(ref, pred, dall))
         new_di, new_ri = _associate(det, ref, pred, tol)
         if state is not None and np.array_equal(new_di, di) and np.array_equal(new_ri, ri):
             break
         state = (coef, cov)
         di, ri = new_di, new_ri
     return di, ri
-
-
-def _min_spacing_px(ref: _Refs, pred, dall):
-    """Half the local reference-line spacing in nm, per prediction (caps the window)."""
-    w = ref.wavelength
-    gaps = np.diff(w)
-    j = np.clip(np.searchsorted(w, pred), 1, w.size - 1)
-    g = np.minimum(gaps[np.clip(j - 1, 0, gaps.size - 1)], gaps[np.clip(j - 2, 0, gaps.size - 1)])
-    return np.maximum(g, 2 * dall)
 
 
 # ---- final fit and trust ---------------------------------------------------------------
@@ -904,21 +928,22 @@ def _final_fit(det: _Lines, ref: _Refs, di, ri, degree: int | None) -> _Fit | No
     return _Fit(di, ri, coef, cov, spread_c, use, reason.astype(str), chi2r, sig)
 
 
-def _refine(det: _Lines, ref: _Refs, fit: _Fit, degree) -> _Fit | None:
-    """Re-associate every detection with the fitted model and refit, until stable."""
+def _refine(det: _Lines, ref: _Refs, fit: _Fit, degree, *, force=False) -> _Fit | None:
+    """Re-associate every detection with the fitted model and refit, until stable
+    (``force``: the reference list changed, so always refit at least once)."""
     n = det.n_pixels
     xall = _xnorm(det.pixel, n)
-    for _ in range(4):
+    for it in range(4):
         pred = _cheb.chebval(xall, fit.coef)
         dall = np.abs(_cheb.chebval(xall, _cheb.chebder(fit.coef))) * 2 / (n - 1)
-        band = _band(xall, fit.coef, fit.cov, fit.spread)
+        band = _loo_band(xall, fit.coef, fit.cov, fit.spread, fit.di[fit.used],
+                         fit.sig[fit.used] ** 2 * max(1.0, fit.chi2r))
         tol = _MATCH_NSIGMA * np.sqrt(
             band**2 + max(1.0, fit.chi2r) * ((det.pixel_err * dall) ** 2
                                              + np.median(ref.wavelength_err) ** 2)
         )
-        tol = np.minimum(tol, 0.45 * _min_spacing_px(ref, pred, dall))
         di, ri = _associate(det, ref, pred, tol)
-        if np.array_equal(di, fit.di) and np.array_equal(ri, fit.ri):
+        if np.array_equal(di, fit.di) and np.array_equal(ri, fit.ri) and not (force and it == 0):
             break
         new = _final_fit(det, ref, di, ri, degree)
         if new is None:
@@ -928,29 +953,41 @@ def _refine(det: _Lines, ref: _Refs, fit: _Fit, degree) -> _Fit | None:
 
 
 def _log10_chance(det: _Lines, ref: _Refs, fit: _Fit, n_hyp: int, n_free: int) -> float:
-    """log10 of the look-elsewhere-corrected chance that a line list of the same local
-    density matches at least as many detections inside the same windows."""
-    from scipy.stats import poisson
+    """log10 of the chance that a line list of the same local density fits the detections
+    this well by accident, corrected for the number of hypotheses searched.
+
+    Under that null hypothesis the distance from each predicted wavelength to the nearest
+    listed line is exponential with rate 2 x density, so ``u = 1 - exp(-2 rho d)`` is uniform
+    and ``sum(-ln u)`` over the clean detections is Gamma(n, 1) distributed.  Distances are
+    floored at each line's own uncertainty (a match cannot be better than its error bar), the
+    ``n_free`` most significant terms are dropped (the fit's parameters can place that many
+    lines exactly), and the result is multiplied by ``n_hyp``.
+    """
+    from scipy.stats import gamma
 
     n = det.n_pixels
-    xall = _xnorm(det.pixel, n)
+    clean = ~det.bad
+    if clean.sum() <= n_free:
+        return 0.0
+    xall = _xnorm(det.pixel[clean], n)
     pred = _cheb.chebval(xall, fit.coef)
     dall = np.abs(_cheb.chebval(xall, _cheb.chebder(fit.coef))) * 2 / (n - 1)
     scale = math.sqrt(max(1.0, fit.chi2r))
-    window = _MATCH_NSIGMA * scale * np.sqrt(
-        (det.pixel_err * dall) ** 2 + np.median(ref.wavelength_err) ** 2
+    floor = scale * np.sqrt(
+        (det.pixel_err[clean] * dall) ** 2 + np.median(ref.wavelength_err) ** 2
     ) + _band(xall, fit.coef, fit.cov, fit.spread)
-    span = abs(pred.max() - pred.min()) + 1e-9
-    half = 0.05 * span
     w = ref.wavelength
+    j = np.clip(np.searchsorted(w, pred), 1, w.size - 1)
+    dist = np.minimum(np.abs(pred - w[j - 1]), np.abs(pred - w[j]))
+    span = abs(pred.max() - pred.min()) + abs(float(np.median(dall))) * n * 0.1
+    half = 0.05 * span
     local = np.searchsorted(w, pred + half) - np.searchsorted(w, pred - half)
     density = np.maximum(local, 1) / (2 * half)
-    q = 1.0 - np.exp(-2.0 * window * density)
-    mu = float(q.sum())
-    k = int(fit.used.sum()) - n_free
-    if k <= 0:
+    u = -np.expm1(-2.0 * density * np.maximum(dist, floor))
+    terms = np.sort(-np.log(np.clip(u, 1e-300, 1.0)))[::-1][n_free:]
+    if terms.size == 0:
         return 0.0
-    log10_single = float(poisson.logsf(k - 1, mu)) / math.log(10)
+    log10_single = float(gamma.logsf(terms.sum(), terms.size)) / math.log(10)
     return min(0.0, math.log10(max(n_hyp, 1)) + log10_single)
 
 
@@ -1170,7 +1207,11 @@ def calibrate(
         lo, hi = guess.wavelength_limits
         margin = (hi - lo) * 0.1
         wrange = (max(wrange[0], lo - margin), min(wrange[1], hi + margin))
-    ref = _references(lamps, wrange, medium)
+    fwhm_guess = None
+    if guess is not None and math.isfinite(guess.fwhm_pixel):
+        fwhm_guess = guess.fwhm_pixel * float(np.median(np.abs(guess.dispersion(
+            np.linspace(0, guess.n_pixels - 1, 16)))))
+    ref = _references(lamps, wrange, medium, fwhm_guess)
     lamp_txt = "+".join(lamps)
     tried = (
         f"{det.pixel.size} lines detected, {ref.wavelength.size} usable {lamp_txt} reference "
@@ -1199,7 +1240,9 @@ def calibrate(
         verdict = "confident (from guess)"
         what = f"a shift of up to {max_shift:g} px and a small stretch of the guess"
     else:
-        fit = _calibrate_blind(det, ref, wrange, degree)
+        fit, ref = _calibrate_blind(
+            det, ref, wrange, degree, lambda f: _references(lamps, wrange, medium, f)
+        )
         verdict = "confident"
         what = "spacing-ratio matching of line quadruplets in both directions"
     if fit is None:
@@ -1218,7 +1261,9 @@ def calibrate(
     return _solution_from_fit(det, ref, fit, lamps, medium, meta, verdict)
 
 
-def _calibrate_blind(det: _Lines, ref: _Refs, wrange, degree) -> _Fit | None:
+def _calibrate_blind(det: _Lines, ref: _Refs, wrange, degree, blended_refs):
+    """Search, grow and fit from each vote cell; keep the least likely to be chance.  Then,
+    with the resolution now known, drop reference lines blended at it and refit."""
     seeds, n_hyp = _seed_candidates(det, ref, wrange)
     best = None
     for _count, _direction, pairs in seeds:
@@ -1236,7 +1281,30 @@ def _calibrate_blind(det: _Lines, ref: _Refs, wrange, degree) -> _Fit | None:
         fit.log10_p = _log10_chance(det, ref, fit, fit.n_hyp, len(fit.coef))
         if best is None or fit.log10_p < best.log10_p:
             best = fit
-    return best
+    if best is None:
+        return None, ref
+    fwhm_nm = _fwhm_nm(det, best)
+    if math.isfinite(fwhm_nm):
+        ref2 = blended_refs(fwhm_nm)
+        if ref2.wavelength.size >= 4:
+            fit2 = _refine(det, ref2, best, degree, force=True)
+            if fit2 is not None and fit2.used.sum() >= 4:
+                fit2.n_hyp = best.n_hyp
+                fit2.log10_p = _log10_chance(det, ref2, fit2, fit2.n_hyp, len(fit2.coef))
+                return fit2, ref2
+    return best, ref
+
+
+def _fwhm_nm(det: _Lines, fit: _Fit) -> float:
+    """Median LSF FWHM of the used lines converted to nm with the fitted dispersion."""
+    n = det.n_pixels
+    fw = det.fwhm[fit.di][fit.used]
+    ok = np.isfinite(fw)
+    if not ok.any():
+        return float("nan")
+    x = _xnorm(det.pixel[fit.di][fit.used][ok], n)
+    disp = np.abs(_cheb.chebval(x, _cheb.chebder(fit.coef))) * 2 / (n - 1)
+    return float(np.median(fw[ok] * disp))
 
 
 def _calibrate_from_guess(det, ref, guess: Solution, degree, max_shift) -> _Fit | None:
@@ -1341,3 +1409,11 @@ def file_sha256(path: str | os.PathLike) -> str:
         for chunk in iter(lambda: fh.read(1 << 20), b""):
             h.update(chunk)
     return h.hexdigest()
+
+
+def with_input(solution: Solution, path: str | os.PathLike) -> Solution:
+    """The solution with its input file's name and SHA-256 recorded in ``meta``."""
+    from dataclasses import replace
+
+    meta = dict(solution.meta, input=str(path), input_sha256=file_sha256(path))
+    return replace(solution, meta=meta)

@@ -36,6 +36,50 @@ def save_figure(fig, path, *, dpi: int = 110) -> Path:
 
 # ---- calibrate -------------------------------------------------------------------------
 
+
+def calibration_residuals(solution, path, *, title: str | None = None):
+    """Residual plot of a wavelength solution: residuals (nm) of the matched lamp lines with
+    their 1-sigma error bars against pixel, the solution's 1-sigma band about zero, and the
+    rejected lines marked with their reasons.  Returns the path."""
+    import numpy as np
+
+    m = solution.matches
+    fig, ax = new_figure(figsize=(10, 4.5))
+    grid = np.linspace(0, solution.n_pixels - 1, 400)
+    band = solution.wavelength_err(grid) * 1e3
+    ax.fill_between(grid, -band, band, color="tab:blue", alpha=0.2, lw=0,
+                    label="solution 1σ band")
+    ax.axhline(0.0, color="0.3", lw=0.8)
+    if len(m):
+        used = np.asarray(m["used"], bool)
+        pix = np.asarray(m["pixel"], float)
+        res = np.asarray(m["residual_nm"], float) * 1e3
+        disp = np.abs(solution.dispersion(pix))
+        err = np.hypot(np.asarray(m["pixel_err"], float) * disp,
+                       np.asarray(m["wavelength_ref_err"], float)) * 1e3
+        ax.errorbar(pix[used], res[used], yerr=err[used], fmt="o", ms=4, color="tab:blue",
+                    capsize=2, label=f"used ({int(used.sum())})")
+        if (~used).any():
+            ax.errorbar(pix[~used], res[~used], yerr=err[~used], fmt="x", ms=6,
+                        color="tab:red", capsize=2, label=f"rejected ({int((~used).sum())})")
+            for x, y, why in zip(pix[~used], res[~used], np.asarray(m["reason"])[~used],
+                                 strict=True):
+                ax.annotate(str(why), (x, y), textcoords="offset points", xytext=(4, 4),
+                            fontsize=7, color="tab:red")
+        lim = np.nanmax(np.abs(np.r_[res[used], band.max()])) if used.any() else band.max()
+        ax.set_ylim(-2.5 * lim, 2.5 * lim)
+    ax.set_xlim(-0.5, solution.n_pixels - 0.5)
+    ax.set_xlabel("pixel")
+    ax.set_ylabel(f"fit − reference ({solution.medium}), pm")
+    lamps = "+".join(solution.lamps)
+    ax.set_title(title or (
+        f"{lamps}: degree {solution.degree}, RMS {solution.rms_nm * 1e3:.2f} pm "
+        f"({solution.rms_pixel:.3f} px), {solution.verdict}"
+    ))
+    ax.legend(loc="upper right", fontsize=8)
+    return save_figure(fig, path)
+
+
 # ---- identify --------------------------------------------------------------------------
 
 # ---- check -----------------------------------------------------------------------------
