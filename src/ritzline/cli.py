@@ -370,6 +370,130 @@ def calibrate_cmd(lamp_file, lamps, wrange, degree, guess_path, medium, column, 
 
 # ---- match -----------------------------------------------------------------------------
 
+
+def _match_print(result, max_rows: int) -> None:
+    import numpy as np
+
+    t = result.lines
+    click.echo(f"{'measured':>10s} {'±':>7s} {'SNR':>6s}  {'species':7s} {'listed':>9s} "
+               f"{'upper level':28s} {'E_up/eV':>7s} {'p':>5s}  flags")
+    for k, row in enumerate(t):
+        if k >= max_rows:
+            click.echo(f"  ... {len(t) - max_rows} more lines; write them with -o")
+            break
+        ref = f"{row['ref_wavelength']:9.3f}" if np.isfinite(row["ref_wavelength"]) else " " * 9
+        ev = f"{row['upper_energy_ev']:7.3f}" if np.isfinite(row["upper_energy_ev"]) else " " * 7
+        sp = row["species"] or "?"
+        up = str(row["upper"])[:28]
+        click.echo(f"{row['wavelength']:10.3f} {row['wavelength_err']:7.3f} {row['snr']:6.0f}  "
+                   f"{sp:7s} {ref} {up:28s} {ev} {row['probability']:5.2f}  {row['flags']}")
+    n_id = int(np.sum(np.asarray(t["species"]) != ""))
+    click.echo(f"{n_id} of {len(t)} lines identified (p >= "
+               f"{result.meta['options']['min_probability']:g})")
+    click.echo("")
+    click.echo("species:")
+    for row in result.species:
+        verdict = "present" if row["present"] else "absent"
+        llr = row["log_likelihood_ratio"]
+        click.echo(f"  {row['species']:6s} {verdict:8s} lines {row['n_assigned']:3d}  strong "
+                   f"lines found {row['strong_found']}/{row['strong_expected']}  "
+                   f"log-likelihood ratio {llr:8.1f}")
+    click.echo("")
+    lv = result.levels
+    click.echo(f"excited upper levels ({len(lv)}), by energy; the minimum electron energy "
+               "from the ground state is the level energy:")
+    for row in lv:
+        mark = "  ABOVE LIMIT: " + row["note"] if row["above_limit"] else ""
+        click.echo(f"  {row['species']:6s} {row['upper']:30s} {row['energy_cm1']:11.3f} cm-1 "
+                   f"{row['energy_ev']:7.3f} eV  {row['n_lines']} line(s){mark}")
+    if not result.meta["response_corrected"]:
+        click.echo("intensities are uncorrected for the spectral response (no --response): "
+                   "no excitation temperature")
+    for bp in result.boltzmann:
+        if bp.corrected and np.isfinite(bp.temperature_k):
+            click.echo(f"{bp.species}: excitation temperature {bp.temperature_k:.0f} ± "
+                       f"{bp.temperature_err_k:.0f} K ({bp.message})")
+        elif bp.corrected:
+            click.echo(f"{bp.species}: {bp.message}")
+
+
+@main.command("match")
+@click.argument("file", type=click.Path(exists=True, dir_okay=False))
+@click.option("--species", default=None, metavar="LIST",
+              help="Species to consider, comma-separated (e.g. Ne,Ar or 'Ne I,Hg I'); "
+              "default: detect among every shipped species.")
+@click.option("--solution", "solution_path", type=click.Path(exists=True, dir_okay=False),
+              help="Wavelength solution (JSON from `calibrate`); needed for a pixel-axis file.")
+@click.option("--medium", type=click.Choice(["air", "vacuum"]), default=None,
+              help="Medium of the wavelengths (default: the solution's, else air).")
+@click.option("--max-energy", type=click.FloatRange(min=0, min_open=True), default=None,
+              help="Electron energy limit (eV): flag lines from upper levels above it.")
+@click.option("--response", type=click.Path(exists=True, dir_okay=False), default=None,
+              help="Relative spectral response file (wavelength nm, response) for level "
+              "populations and the excitation temperature.")
+@click.option("--column", default=None, help="Counts column of the spectrum file.")
+@click.option("-o", "--output", type=click.Path(dir_okay=False), default=None,
+              help="Write the line assignments (ECSV).")
+@click.option("--levels", "levels_path", type=click.Path(dir_okay=False), default=None,
+              help="Write the excited-level table (ECSV).")
+@click.option("--species-table", type=click.Path(dir_okay=False), default=None,
+              help="Write the species evidence table (ECSV).")
+@click.option("--plot", type=click.Path(dir_okay=False), default=None,
+              help="Write the labelled spectrum figure (PNG).")
+@click.option("--diagram", type=click.Path(dir_okay=False), default=None,
+              help="Write the energy-level diagram of the observed transitions (PNG).")
+@click.option("--boltzmann", type=click.Path(dir_okay=False), default=None,
+              help="Write the Boltzmann plot (PNG).")
+@click.option("--max-rows", type=click.IntRange(min=1), default=200, show_default=True,
+              help="Print at most this many lines.")
+@handle_errors
+def match(file, species, solution_path, medium, max_energy, response, column, output,
+          levels_path, species_table, plot, diagram, boltzmann, max_rows) -> None:
+    """Identify the atomic transitions behind the emission lines of FILE.
+
+    Prints each line's assignment with its probability, the species judged present, and the
+    excited upper levels in order of energy.  Exit 0 on success, 2 on bad input.
+    """
+    import numpy as np
+
+    from ._io import write_table
+    from .identify import identify_lines, read_response
+    from .spectrum import read_spectrum, spectrum_arrays
+
+    spectrum = read_spectrum(file, column=column)
+    solution = None
+    if solution_path:
+        from .calibrate import Solution
+
+        solution = Solution.load(solution_path)
+    medium = medium or getattr(solution, "medium", None) or "air"
+    resp = read_response(response) if response else None
+    result = identify_lines(spectrum, species, solution=solution, medium=medium,
+                            max_electron_energy=max_energy, response=resp)
+    _match_print(result, max_rows)
+    for table, path in ((result.lines, output), (result.levels, levels_path),
+                        (result.species, species_table)):
+        if path:
+            write_table(table, path)
+            click.echo(f"wrote {path}")
+    if plot or diagram or boltzmann:
+        from . import plots
+
+        if plot:
+            arrays = spectrum_arrays(spectrum)
+            wl = arrays.axis if arrays.unit == "nm" else solution.wavelength(arrays.axis)
+            counts = np.where(arrays.mask, np.nan, arrays.counts)
+            written = plots.plot_identify_spectrum(result, plot, wavelength=wl, counts=counts)
+            click.echo(f"wrote {written}")
+        if diagram:
+            click.echo(f"wrote {plots.plot_identify_levels(result, diagram)}")
+        if boltzmann:
+            if result.boltzmann:
+                click.echo(f"wrote {plots.plot_identify_boltzmann(result.boltzmann, boltzmann)}")
+            else:
+                click.echo("no Boltzmann plot: fewer than two identified lines with "
+                           "transition probabilities")
+
 # ---- check -----------------------------------------------------------------------------
 
 

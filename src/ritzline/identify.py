@@ -38,6 +38,9 @@ SHIPPED_SPECIES = ("H I", "He I", "Ne I", "Ar I", "Kr I", "Xe I", "Hg I", "Na I"
 #: Boltzmann constant in eV/K (CODATA 2018, exact by the 2019 SI definition).
 K_B_EV = 8.617333262e-5
 
+#: h c in eV cm (CODATA 2018, exact): converts cm-1 to eV.
+HC_EV_CM = 1.239841984e-4
+
 _LOG_SQRT_2PI = 0.5 * np.log(2.0 * np.pi)
 _KIND_INTENSITY, _KIND_GA, _KIND_NONE = 0, 1, 2
 
@@ -979,12 +982,14 @@ def _line_table(table, model, cand, names, lam, sig, flux, snr, flags_in, opts):
     c_lower = _column(cand, "lower", "", str)
     c_upper = _column(cand, "upper", "", str)
     c_ev = _column(cand, "upper_ev")
+    c_low_ev = _column(cand, "lower_cm1") * HC_EV_CM
     out_sp = np.full(n, "", dtype=object)
     out_ref = np.full(n, np.nan)
     out_order = np.zeros(n, int)
     out_lower = np.full(n, "", dtype=object)
     out_upper = np.full(n, "", dtype=object)
     out_ev = np.full(n, np.nan)
+    out_low_ev = np.full(n, np.nan)
     out_p = np.zeros(n)
     out_res = np.full(n, np.nan)
     out_members = np.full(n, "", dtype=object)
@@ -1024,6 +1029,7 @@ def _line_table(table, model, cand, names, lam, sig, flux, snr, flags_in, opts):
                 out_lower[i] = c_lower[row]
                 out_upper[i] = c_upper[row]
                 out_ev[i] = c_ev[row]
+                out_low_ev[i] = c_low_ev[row]
                 out_res[i] = model.z[j]
                 if len(g.members[k]) > 1:
                     out_members[i] = ",".join(_fmt_wl(c_wl[m]) for m in g.members[k])
@@ -1056,6 +1062,7 @@ def _line_table(table, model, cand, names, lam, sig, flux, snr, flags_in, opts):
     t["lower"] = np.array(out_lower, dtype=str) if n else np.zeros(0, str)
     t["upper"] = np.array(out_upper, dtype=str) if n else np.zeros(0, str)
     t["upper_energy_ev"] = u.Quantity(out_ev, u.eV)
+    t["lower_energy_ev"] = u.Quantity(out_low_ev, u.eV)
     t["residual_sigma"] = out_res
     t["probability"] = out_p
     t["p_unidentified"] = np.asarray(p_unid, float)
@@ -1127,8 +1134,7 @@ def _levels_table(lines_out, cand, max_energy, corr, corrected):
     t["species"] = sp[first] if m else np.zeros(0, str)
     t["upper"] = up[first] if m else np.zeros(0, str)
     e_ev = ev[first] if m else np.zeros(0)
-    # cm-1 from eV with hc = 1.239841984e-4 eV cm (CODATA 2018)
-    t["energy_cm1"] = u.Quantity(e_ev / 1.239841984e-4, u.Unit("cm-1"))
+    t["energy_cm1"] = u.Quantity(e_ev / HC_EV_CM, u.Unit("cm-1"))
     t["energy_ev"] = u.Quantity(e_ev, u.eV)
     # from the ground state an electron must bring at least the level energy
     t["min_electron_energy_ev"] = u.Quantity(e_ev, u.eV)

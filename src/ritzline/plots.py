@@ -82,6 +82,178 @@ def calibration_residuals(solution, path, *, title: str | None = None):
 
 # ---- identify --------------------------------------------------------------------------
 
+
+def _identify_wavelength_colours(wavelengths, lo, hi):
+    """A colour per wavelength: a spectral colour map over the range shown."""
+    import numpy as np
+    from matplotlib import colormaps
+
+    cmap = colormaps["turbo"]
+    span = max(hi - lo, 1e-9)
+    return cmap(np.clip((np.asarray(wavelengths, float) - lo) / span, 0, 1))
+
+
+def plot_identify_levels(identification, path, *, max_species: int = 3) -> Path:
+    """Energy-level diagram of the observed transitions, one panel per species.
+
+    Levels are horizontal bars at their energies (eV above the ground state); each
+    identified first-order line is an arrow from its upper to its lower level, coloured by
+    wavelength, its width growing with the logarithm of the flux.  A dashed line marks the
+    electron-energy limit when one was given.
+    """
+    import numpy as np
+
+    t = identification.lines
+    limit = identification.meta.get("max_electron_energy_ev")
+    ok = (np.asarray(t["species"]) != "") & (np.asarray(t["order"]) == 1)
+    ok &= np.isfinite(np.asarray(t["upper_energy_ev"], float))
+    ok &= np.isfinite(np.asarray(t["lower_energy_ev"], float))
+    species = [s for s in dict.fromkeys(np.asarray(t["species"])[ok])][:max_species]
+    n = max(len(species), 1)
+    fig, axes = new_figure(1, n, figsize=(4.2 * n + 1.0, 5.2), squeeze=False)
+    axes = axes[0]
+    wl_all = np.asarray(t["wavelength"], float)[ok]
+    lo, hi = (wl_all.min(), wl_all.max()) if wl_all.size else (0.0, 1.0)
+    flux_all = np.asarray(t["flux"], float)[ok]
+    fmin = np.nanmin(flux_all) if flux_all.size else 1.0
+    fmax = np.nanmax(flux_all) if flux_all.size else 1.0
+    for ax, sp in zip(axes, species or [""], strict=False):
+        sel = ok & (np.asarray(t["species"]) == sp)
+        up_e = np.asarray(t["upper_energy_ev"], float)[sel]
+        lo_e = np.asarray(t["lower_energy_ev"], float)[sel]
+        up_n = np.asarray(t["upper"], str)[sel]
+        lo_n = np.asarray(t["lower"], str)[sel]
+        wl = np.asarray(t["wavelength"], float)[sel]
+        fl = np.asarray(t["flux"], float)[sel]
+        levels = dict(zip(lo_n, lo_e, strict=True)) | dict(zip(up_n, up_e, strict=True))
+        names = sorted(levels, key=levels.get)
+        # Grotrian layout: one column per term (the designation without J)
+        term = {name: name.rsplit(" J=", 1)[0].split()[-1] for name in names}
+        columns = list(dict.fromkeys(term[name] for name in names))
+        xpos = {name: 1.4 * columns.index(term[name]) for name in names}
+        e_span = max(np.ptp(np.array(list(levels.values()))), 0.5) if levels else 1.0
+        for col in columns:
+            members = [name for name in names if term[name] == col]
+            for name in members:
+                ax.hlines(levels[name], xpos[name], xpos[name] + 1.0, color="0.2", lw=1.5)
+            # one label per cluster of nearly degenerate levels (fine structure)
+            cluster = [members[0]]
+            for name in [*members[1:], None]:
+                if name is not None and levels[name] - levels[cluster[-1]] < 0.025 * e_span:
+                    cluster.append(name)
+                    continue
+                js = ",".join(c.rsplit(" J=", 1)[1] for c in cluster if " J=" in c)
+                words = cluster[0].rsplit(" J=", 1)[0].split()
+                text = " ".join(words[-2:]) + (f" J={js}" if js else "")
+                e_mid = np.mean([levels[c] for c in cluster])
+                ax.annotate(text, (xpos[cluster[0]] + 0.5, e_mid), xytext=(0, 2),
+                            textcoords="offset points", fontsize=6, ha="center", va="bottom")
+                if name is not None:
+                    cluster = [name]
+        colours = _identify_wavelength_colours(wl, lo, hi)
+        order = np.argsort(fl)
+        for k in order:
+            x1 = xpos[up_n[k]] + 0.5
+            x2 = xpos[lo_n[k]] + 0.5
+            frac = np.log(fl[k] / fmin) / max(np.log(fmax / fmin), 1e-9) if fl[k] > 0 else 0
+            ax.annotate(
+                "", xy=(x2, lo_e[k]), xytext=(x1, up_e[k]),
+                arrowprops={"arrowstyle": "-|>", "color": colours[k], "lw": 0.6 + 3.0 * frac,
+                            "shrinkA": 0, "shrinkB": 0},
+            )  # fmt: skip
+        if limit is not None:
+            ax.axhline(limit, color="#c62828", ls="--", lw=0.8)
+            ax.annotate(f"electron energy {limit:g} eV", (0, limit), fontsize=7,
+                        color="#c62828", va="bottom")  # fmt: skip
+        n_col = max(len({x for x in xpos.values()}), 1)
+        ax.set_xlim(-0.2, 1.4 * n_col)
+        ax.set_xticks([])
+        ax.set_ylabel("energy above ground (eV)")
+        ax.set_title(sp or "no identified transitions")
+        if levels:
+            e_all = np.array(list(levels.values()))
+            pad = 0.05 * max(np.ptp(e_all), 0.5)
+            ax.set_ylim(e_all.min() - pad, max(e_all.max(), limit or -np.inf) + pad)
+    if species:
+        import matplotlib as mpl
+
+        sm = mpl.cm.ScalarMappable(norm=mpl.colors.Normalize(lo, hi), cmap="turbo")
+        fig.colorbar(sm, ax=list(axes), label="wavelength (nm)", shrink=0.8)
+    return save_figure(fig, path)
+
+
+def plot_identify_spectrum(identification, path, *, wavelength=None, counts=None,
+                           max_labels: int = 60) -> Path:
+    """Spectrum with every identified line labelled by species and listed wavelength.
+
+    ``wavelength``/``counts`` are the spectrum's arrays; without them the measured lines are
+    drawn as sticks at their fluxes.  Unidentified lines are marked with a grey "?".
+    """
+    import numpy as np
+
+    t = identification.lines
+    fig, ax = new_figure(figsize=(12, 4.5))
+    wl = np.asarray(t["wavelength"], float)
+    fl = np.asarray(t["flux"], float)
+    if wavelength is not None and counts is not None:
+        x = np.asarray(wavelength, float)
+        y = np.asarray(counts, float)
+        ax.plot(x, y, color="0.25", lw=0.7)
+        height = np.interp(wl, x[np.argsort(x)], y[np.argsort(x)])
+        ax.set_ylabel("counts (ADU)")
+    else:
+        ax.vlines(wl, 0, fl, color="0.25", lw=1.0)
+        height = fl
+        ax.set_ylabel("line flux (counts)")
+    sp = np.asarray(t["species"], str)
+    ref = np.asarray(t["ref_wavelength"], float)
+    order = np.asarray(t["order"], int)
+    idx = np.flatnonzero(sp != "")
+    idx = idx[np.argsort(-fl[idx])][:max_labels]
+    top = np.nanmax(height) if height.size else 1.0
+    for k in idx:
+        label = f"{sp[k]} {ref[k]:.2f}" + (" (2nd)" if order[k] == 2 else "")
+        ax.annotate(label, (wl[k], height[k]), xytext=(0, 4), textcoords="offset points",
+                    rotation=90, fontsize=6, ha="center", va="bottom", color="#1f4e9c")
+    for k in np.flatnonzero(sp == ""):
+        ax.annotate("?", (wl[k], height[k]), xytext=(0, 3), textcoords="offset points",
+                    fontsize=7, ha="center", va="bottom", color="0.5")
+    ax.set_ylim(top=top * 1.35 if np.isfinite(top) and top > 0 else None)
+    ax.set_xlabel(f"wavelength ({identification.meta.get('medium', 'air')}, nm)")
+    present = ", ".join(identification.present) or "none"
+    ax.set_title(f"Identified lines (species present: {present})")
+    return save_figure(fig, path)
+
+
+def plot_identify_boltzmann(plots, path) -> Path:
+    """Boltzmann plot: ln(I λ / g A) against upper-level energy, with the fitted line.
+
+    ``plots`` is a BoltzmannPlot or a sequence of them (one per species).  Uncorrected
+    intensities are drawn as open symbols and no temperature is written.
+    """
+    import numpy as np
+
+    plots = [plots] if hasattr(plots, "energy_ev") else list(plots)
+    fig, ax = new_figure(figsize=(7, 4.5))
+    for k, bp in enumerate(plots):
+        colour = f"C{k}"
+        ax.errorbar(bp.energy_ev, bp.y, yerr=bp.y_err, fmt="o", ms=4, color=colour,
+                    mfc=colour if bp.corrected else "none", label=bp.species)
+        if bp.corrected and np.isfinite(bp.slope):
+            x = np.linspace(np.min(bp.energy_ev), np.max(bp.energy_ev), 10)
+            label = (f"T = {bp.temperature_k:.0f} ± {bp.temperature_err_k:.0f} K"
+                     if np.isfinite(bp.temperature_k) else bp.message)
+            ax.plot(x, bp.intercept + bp.slope * x, color=colour, lw=1, label=label)
+    if plots and not all(bp.corrected for bp in plots):
+        ax.annotate("intensities uncorrected for the spectral response: no temperature",
+                    (0.02, 0.02), xycoords="axes fraction", fontsize=8, color="#c62828")
+    ax.set_xlabel("upper-level energy (eV)")
+    ax.set_ylabel("ln(I λ / g A)  (arbitrary zero)")
+    ax.set_title("Boltzmann plot")
+    ax.legend(fontsize="small", frameon=False)
+    return save_figure(fig, path)
+
+
 # ---- check -----------------------------------------------------------------------------
 
 CHECK_STATUS_COLOURS = {"pass": "#2e7d32", "warn": "#f9a825", "fail": "#c62828", "error": "#6a1b9a"}
