@@ -393,3 +393,18 @@ def test_lamp_lines_carry_published_values_and_meta():
     assert t.meta["lamp"] == "Ne+Ar" and t.meta["medium"] == "vacuum"
     assert set(t["species"]) == {"Ne I", "Ar I"}
     assert np.all(np.diff(np.asarray(t["wavelength"])) >= 0)
+
+
+@pytest.mark.parametrize("name", sorted(p.name for p in data_path("line_lists").glob("*.ecsv")))
+def test_fast_ecsv_reader_agrees_with_astropy(name):
+    from ritzline.levels import _read_ecsv, _read_ecsv_astropy
+
+    fast, ref = _read_ecsv(name), _read_ecsv_astropy(data_path("line_lists", name))
+    assert fast.colnames == ref.colnames and dict(fast.meta) == dict(ref.meta)
+    for col in fast.colnames:
+        assert fast[col].unit == ref[col].unit
+        a, b = np.asarray(fast[col]), np.asarray(ref[col])
+        if a.dtype.kind == "f":
+            np.testing.assert_array_equal(a, b)
+        else:
+            assert list(a) == list(b)
