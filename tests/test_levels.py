@@ -408,3 +408,16 @@ def test_fast_ecsv_reader_agrees_with_astropy(name):
             np.testing.assert_array_equal(a, b)
         else:
             assert list(a) == list(b)
+
+
+def test_line_list_readme_counts_match_the_shipped_files():
+    text = data_path("line_lists", "README.md").read_text(encoding="utf-8")
+    for label in SPECIES:
+        row = next(line for line in text.splitlines() if line.startswith(f"| {label} "))
+        cells = [c.strip() for c in row.strip("|").split("|")]
+        stem = label.replace(" ", "_")
+        lines = Table.read(data_path("line_lists", f"{stem}.lines.ecsv"))
+        assert int(cells[2]) == len(lines), label
+        if label != "H I":
+            assert int(cells[1]) == len(Table.read(data_path("line_lists", f"{stem}.levels.ecsv")))
+        assert int(cells[6]) == len(transitions(label)), label
