@@ -817,7 +817,10 @@ def identify_lines(
         else:
             fwhm_nm = 0.1 * max(float(np.median(np.diff(np.sort(lam)))) if n > 1 else 1.0, 0.01)
     cal = np.zeros(n)
-    if solution is not None and "pixel" in table.colnames and hasattr(solution, "wavelength_err"):
+    # peaks.attach_wavelengths already folds the solution's band into wavelength_err
+    err_doc = table["wavelength_err"].description if "wavelength_err" in table.colnames else ""
+    band_included = "solution band" in str(err_doc or "")
+    if solution is not None and not band_included and "pixel" in table.colnames:
         cal = np.asarray(solution.wavelength_err(_column(table, "pixel")), float)
     elif callable(calibration_err):
         cal = np.asarray(calibration_err(lam), float) * np.ones(n)
