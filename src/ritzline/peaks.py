@@ -99,6 +99,9 @@ def line_crlb(
     if fit_background:
         cols.append(np.ones_like(x))
     jac = np.stack(cols, axis=1)
+    # Pixels expecting no counts at all carry no information (their Poisson term vanishes).
+    use = var > 1e-300
+    jac, var = jac[use], var[use]
     fisher = jac.T @ (jac / var[:, None])
     cov = np.linalg.inv(fisher)
     return {
@@ -1041,7 +1044,7 @@ def _table_from_state(state, ctx, fwhm, clipped, meta, n):
     }
     sat_line = np.r_[np.zeros(n_fit, bool), np.ones(n_sat, bool)]
     blended = np.r_[st.group_size > 1, np.zeros(n_sat, bool)]
-    suspect = np.r_[(fw > 1.2 * fwhm) & ((fw - fwhm) > 3.0 * fw_err), np.zeros(n_sat, bool)]
+    suspect = np.r_[(fw > 1.1 * fwhm) & ((fw - fwhm) > 3.0 * fw_err), np.zeros(n_sat, bool)]
     edge = (c < 1.5 * fwhm - 0.5) | (c > n - 0.5 - 1.5 * fwhm)
     words = np.array(["saturated", "blended", "blend_suspect", "edge"])
     bits = np.stack([sat_line, blended, suspect, edge], axis=1)
