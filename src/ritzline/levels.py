@@ -562,6 +562,7 @@ def _finish(label: str, cols: dict, obs: Table, medium: str, ritz: np.ndarray) -
             "upper": cols["upper"].astype(str),
             "lower_cm1": cols["lower_cm1"] * u.cm**-1,
             "upper_cm1": cols["upper_cm1"] * u.cm**-1,
+            "lower_ev": cols["lower_cm1"] * ev * u.eV,
             "upper_ev": cols["upper_cm1"] * ev * u.eV,
             "lower_j": cols["lower_j"],
             "upper_j": cols["upper_j"],
@@ -744,7 +745,9 @@ def transitions(
     astropy.table.Table
         Sorted by wavelength.  Columns: ``species, wavelength, wavelength_err,
         wavelength_obs, wavelength_obs_err`` (nm), ``wavenumber`` (vacuum, cm⁻¹),
-        ``lower, upper`` (designations), ``lower_cm1, upper_cm1``, ``upper_ev``,
+        ``lower, upper`` (designations), ``lower_cm1, upper_cm1``, ``lower_ev``, ``upper_ev``
+        (level energies above the ground level; ``upper_ev`` is the least electron energy
+        that excites the upper level directly from the ground),
         ``lower_j, upper_j, g_upper, intensity, aki`` (s⁻¹), flags ``observed,
         intercombination, lower_kind, memory``, and ``ritz`` (wavelength computed from
         levels; False for observed lines whose levels are not tabulated, where
