@@ -1062,7 +1062,8 @@ def _guess_fit(det: _Lines, ref: _Refs, guess: Solution, max_shift: float):
     hist, _ = np.histogram(delta[near], bins=bins)
     hist = hist + np.r_[0, hist[:-1]] + np.r_[hist[1:], 0]
     shift0 = float(bins[np.argmax(hist)] + 0.25)
-    n_hyp = bins.size
+    # each (detection, reference) pair inside the search range defines one shift hypothesis
+    n_hyp = int(near.sum())
     shift, stretch = shift0, 0.0
     tol_px = 2.0
     for _ in range(6):
@@ -1350,7 +1351,9 @@ def _calibrate_from_guess(det, ref, guess: Solution, degree, max_shift) -> _Fit 
     disp = np.abs(_cheb.chebval(x, _cheb.chebder(coef))) * 2 / (n - 1)
     fit = _Fit(di, ri, coef, cov, spread, use, reason.astype(str), chi2r,
                _line_sigma(det, ref, di, ri, disp), n_hyp=n_hyp, method="guess, shift+stretch")
-    fit.log10_p = _log10_chance(det, ref, fit, n_hyp, 2)
+    # the stretch of a day-to-day drift is tiny: the shift is the one free parameter that
+    # can place a line exactly
+    fit.log10_p = _log10_chance(det, ref, fit, n_hyp, 1)
     return fit
 
 
