@@ -421,3 +421,17 @@ def test_line_list_readme_counts_match_the_shipped_files():
         if label != "H I":
             assert int(cells[1]) == len(Table.read(data_path("line_lists", f"{stem}.levels.ecsv")))
         assert int(cells[6]) == len(transitions(label)), label
+
+
+def test_wavelength_range_accepts_quantities_in_any_spectral_unit():
+    import astropy.units as u
+
+    in_nm = transitions("Ne", wavelength_range=(600, 700))
+    in_angstrom = transitions("Ne", wavelength_range=(6000 * u.AA, 7000 * u.AA))
+    assert len(in_nm) == len(in_angstrom) > 0
+
+
+def test_lamp_lines_calls_return_independent_copies():
+    first = lamp_lines("Ne", fwhm_nm=0.5)
+    first["usable"][:] = False
+    assert np.any(lamp_lines("Ne", fwhm_nm=0.5)["usable"])

@@ -12,6 +12,9 @@ Selection rules (electric dipole): parity changes, ΔJ = 0, ±1, J = 0 ↔ 0 exc
 whose J is not resolved in the table (a multiplet, e.g. He I 1s4p ³P°) is treated as the set
 of its J values |L − S| … L + S, and a pair is kept when any component pair is allowed.
 
+Intercombination (spin-changing) lines are defined between LS terms only (He, Hg, Na); the
+jK-coupled levels of the noble gases are never flagged.
+
 Uncertainties: a Ritz wavelength's error comes from the level energy errors in the tables
 (documented defaults, see ``line_lists/README.md``: one unit in the last quoted digit, at
 least 0.01 cm⁻¹, 0.05 cm⁻¹ for derived or doubtful levels, 0 for the ground level), added in
@@ -672,6 +675,7 @@ def _clear_caches() -> None:
         _hydrogen_centroids,
         _species_transitions,
         _lamp_files,
+        _lamp_lines,
     ):
         loader.cache_clear()
 
@@ -1068,9 +1072,25 @@ def lamp_lines(
         upper, upper_ev, aki, ritz_wavelength`` (NaN without levels), ``memory``,
         ``usable`` and ``reason`` ("; "-separated, "" when usable), ``note``.
     """
-    lamp = load_lamp(name)
-    medium = _check_medium(medium)
-    limits = _range_nm(wavelength_range)
+    if fwhm_nm is not None and hasattr(fwhm_nm, "unit"):
+        fwhm_nm = fwhm_nm.to_value(u.nm)
+    return _lamp_lines(
+        load_lamp(name),
+        _range_nm(wavelength_range),
+        _check_medium(medium),
+        None if fwhm_nm is None else float(fwhm_nm),
+        float(fraction),
+    ).copy()
+
+
+@functools.cache
+def _lamp_lines(
+    lamp: Lamp,
+    limits: tuple[float, float] | None,
+    medium: str,
+    fwhm_nm: float | None,
+    fraction: float,
+) -> Table:
     t = transitions(lamp.species, medium=medium, observed_only=True)
     t = t[np.isfinite(np.asarray(t["wavelength_obs"], dtype=float))]
     wl = np.asarray(t["wavelength_obs"], dtype=float)
@@ -1108,9 +1128,6 @@ def lamp_lines(
             reasons[i].append(f"Ritz and published wavelengths differ by {ritz_off[i]:.4f} nm")
 
     if fwhm_nm is not None:
-        if hasattr(fwhm_nm, "unit"):
-            fwhm_nm = fwhm_nm.to_value(u.nm)
-        fwhm_nm = float(fwhm_nm)
         probe = Table(
             {"wavelength": wl, "intensity": np.asarray(t["intensity"]), "species": species}
         )
