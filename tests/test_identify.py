@@ -294,3 +294,119 @@ def test_options_change_the_species_threshold():
                          wavelength_range=(240.0, 600.0), options=strict)
     assert res.present == ()
     assert np.all(np.asarray(res.lines["species"]) == "")
+
+
+# ---- constants, inputs, the whole pipeline and the command line ---------------------------
+
+
+def test_physical_constants_match_astropy_codata():
+    import astropy.constants as const
+    import astropy.units as u
+
+    from ritzline.identify import HC_EV_CM
+
+    # reference: astropy.constants (CODATA 2018)
+    assert K_B_EV == pytest.approx(const.k_B.to_value(u.eV / u.K), rel=1e-9)
+    assert HC_EV_CM == pytest.approx((const.h * const.c).to_value(u.eV * u.cm), rel=1e-9)
+
+
+def test_a_pixel_axis_spectrum_without_a_solution_is_refused():
+    from ritzline.errors import RitzlineError
+
+    rng = np.random.default_rng(0)
+    counts = 100 + rng.normal(0, 3, 512)
+    counts[200:205] += [50, 400, 900, 400, 50]
+    with pytest.raises(RitzlineError, match="solution"):
+        identify_lines(counts)
+
+
+def test_a_response_that_does_not_cover_the_lines_is_refused():
+    from ritzline.errors import RitzlineError
+
+    with pytest.raises(RitzlineError, match="response"):
+        identify_lines(lines=measured(HG_LINES, HG_FLUX), species=["Hg I"],
+                       response=(np.array([400.0, 500.0]), np.array([1.0, 1.0])))
+
+
+def test_response_file_is_read_from_csv(tmp_path):
+    from ritzline.identify import read_response
+
+    path = tmp_path / "resp.csv"
+    path.write_text("wavelength,response\n300,0.5\n700,1.0\n900,0.2\n", encoding="utf-8")
+    wl, resp = read_response(path)
+    assert wl.tolist() == [300.0, 700.0, 900.0] and resp.tolist() == [0.5, 1.0, 0.2]
+
+
+def test_a_wavelength_axis_spectrum_is_measured_and_identified():
+    import astropy.units as u
+    from specutils import Spectrum
+
+    from ritzline.synthetic import Instrument
+
+    inst = Instrument(n_pixels=3000, coeffs=(560.0, 60.0, 0.0, 0.0), fwhm_px=3.0)
+    rng = np.random.default_rng(11)
+    counts = inst.render(NE_LINES, np.full(len(NE_LINES), 2e5), rng)
+    spec = Spectrum(flux=counts * u.ct, spectral_axis=inst.wavelength(np.arange(3000)) * u.nm)
+    res = identify_lines(spec, None)
+    assert res.present == ("Ne I",)
+    assert row_at(res, 640.2248)["species"] == "Ne I"
+
+
+@pytest.fixture(scope="module")
+def demo_solution(tmp_path_factory):
+    from ritzline import calibrate, read_spectrum
+    from ritzline._resources import data_path
+
+    lamp_path = data_path("examples", "hgar_lamp.csv")
+    sol = calibrate(read_spectrum(lamp_path), lamps=("Hg", "Ar"))
+    path = tmp_path_factory.mktemp("sol") / "lr1.json"
+    sol.save(path)
+    return sol, path, lamp_path.parent
+
+
+def test_demo_helium_glow_tube_gives_its_species_and_excitation_temperature(demo_solution):
+    from ritzline import read_spectrum
+
+    sol, _, data = demo_solution
+    res = identify_lines(read_spectrum(data / "helium_glow.csv"), None, solution=sol,
+                         response=data / "lr1_response.csv")
+    # the invented demo tube holds He with H and Ne traces; its upper levels were given a
+    # Boltzmann distribution at 6000 K (examples/make_demo_data.py): truth recovery
+    assert set(res.present) == {"He I", "H I", "Ne I"}
+    he = next(bp for bp in res.boltzmann if bp.species == "He I")
+    assert he.temperature_k == pytest.approx(6000.0, rel=0.05)
+    # the demo has He I 388.865 nm in second order at 777.73 nm
+    row = row_at(res, 777.73)
+    assert row["order"] == 2 and row["parent_wavelength"] == pytest.approx(388.865, abs=0.01)
+
+
+def test_match_command_prints_assignments_and_writes_tables(demo_solution, tmp_path):
+    from click.testing import CliRunner
+
+    from ritzline.cli import main
+
+    _, sol_path, data = demo_solution
+    out, lv, fig, diag = (tmp_path / n for n in ("ids.ecsv", "lv.ecsv", "s.png", "d.png"))
+    res = CliRunner().invoke(main, [
+        "match", str(data / "helium_glow.csv"), "--solution", str(sol_path), "--species",
+        "He,H,Ne", "--max-energy", "23.5", "-o", str(out), "--levels", str(lv), "--plot",
+        str(fig), "--diagram", str(diag),
+    ])
+    assert res.exit_code == 0, res.output
+    assert "587.56" in res.output and "He I" in res.output
+    assert "ABOVE LIMIT" in res.output
+    assert "uncorrected" in res.output
+    assert Table.read(out, format="ascii.ecsv")["species"].tolist().count("He I") >= 10
+    assert len(Table.read(lv, format="ascii.ecsv")) >= 10
+    assert fig.stat().st_size > 10000 and diag.stat().st_size > 10000
+
+
+def test_match_command_exits_2_on_a_pixel_file_without_solution(demo_solution):
+    from click.testing import CliRunner
+
+    from ritzline.cli import main
+
+    _, _, data = demo_solution
+    res = CliRunner().invoke(main, ["match", str(data / "helium_glow.csv")])
+    assert res.exit_code == 2
+    assert "error:" in res.output
