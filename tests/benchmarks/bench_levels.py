@@ -4,6 +4,9 @@
   already read from disk, transitions computed from the levels; and warm: cached);
 * all eight species loaded from disk and cached for matching: ≤ 200 ms total.
 
+Peers, side by side: astropy's general ECSV reader for loading the shipped tables, and
+specutils' ``air_to_vac`` for the air → vacuum conversion.
+
 Run: ``python tests/benchmarks/bench_levels.py``.  Timings are the median of several
 repeats; on a shared machine they are noisy.
 """
@@ -72,6 +75,31 @@ def main() -> None:
     ):
         verdict = "ok" if value <= target else "MISSED"
         print(f"{name:58s} {value:7.1f} ms {target:7.0f} ms  {verdict}")
+    print()
+    print("side by side with general-purpose peers")
+    print(f"{'measurement':58s} {'ritzline':>10s} {'peer':>10s}  peer")
+    files = sorted(p.name for p in levels.data_path("line_lists").glob("*.ecsv"))
+    ours = _ms(lambda: [levels._read_ecsv(f) for f in files])
+    peer = _ms(
+        lambda: [levels._read_ecsv_astropy(levels.data_path("line_lists", f)) for f in files]
+    )
+    print(
+        f"{f'read the {len(files)} shipped ECSV tables':58s} {ours:7.1f} ms {peer:7.1f} ms  "
+        "astropy Table.read"
+    )
+    import astropy.units as u
+    import numpy as np
+    from specutils.utils.wcs_utils import air_to_vac
+
+    from ritzline.airvac import air_to_vacuum
+
+    grid = np.linspace(200.0, 1100.0, 100_000)
+    ours = _ms(lambda: air_to_vacuum(grid))
+    peer = _ms(lambda: air_to_vac(grid * u.nm))
+    print(
+        f"{'air -> vacuum, 100 000 wavelengths':58s} {ours:7.1f} ms {peer:7.1f} ms  "
+        "specutils air_to_vac (Morton 2000)"
+    )
     print(f"(median of {REPEATS} runs; shared machine, timings noisy)")
 
 
