@@ -263,6 +263,20 @@ def test_boltzmann_temperature_is_recovered_with_a_response():
     assert np.isfinite(bp.temperature_err_k) and bp.temperature_err_k < 500
 
 
+def test_level_populations_per_g_follow_the_boltzmann_factor_with_a_response():
+    response = (np.array([650.0, 950.0]), np.array([1.0, 0.3]))
+    t = _ar_boltzmann_lines(5000.0, response)
+    res = identify_lines(lines=t, species=["Ar I"], response=response,
+                         wavelength_range=(690.0, 930.0))
+    lv = res.levels[np.isfinite(np.asarray(res.levels["population_per_g"], float))]
+    assert len(lv) >= 4
+    e = np.asarray(lv["energy_ev"], float)
+    npg = np.asarray(lv["population_per_g"], float)
+    # textbook Boltzmann relation: N_u / g_u ∝ exp(-E_u / kT)
+    expected = np.exp(-(e - e[0]) / (K_B_EV * 5000.0))
+    assert npg / npg[0] == pytest.approx(expected, rel=0.02)
+
+
 def test_without_a_response_no_temperature_is_given():
     t = _ar_boltzmann_lines(5000.0)
     res = identify_lines(lines=t, species=["Ar I"], wavelength_range=(690.0, 930.0))
@@ -271,6 +285,7 @@ def test_without_a_response_no_temperature_is_given():
     assert np.isnan(bp.temperature_k)
     assert "uncorrected" in bp.message
     assert res.levels.meta["intensities"] == "uncorrected"
+    assert np.all(np.isnan(np.asarray(res.levels["population"], float)))
 
 
 def test_probabilities_are_between_zero_and_one_and_tables_carry_units(hg_lamp):

@@ -909,10 +909,10 @@ def identify_lines(
     present = model.active.copy()
     lnmu = model.group_terms()[0] if n else None
     species_out = _species_table(model, names, present, llr_final, lnmu, lines_out)
-    levels_out = _levels_table(lines_out, cand, max_electron_energy, corr, resp is not None)
+    levels_out = _levels_table(lines_out, max_electron_energy, corr, resp is not None)
     plots = tuple(
         bp for sp_name in (names[k] for k in np.flatnonzero(present))
-        if (bp := boltzmann_plot(lines_out, cand, sp_name, corrected=resp is not None))
+        if (bp := boltzmann_plot(lines_out, sp_name, corrected=resp is not None))
         is not None
     )
     from . import __version__
@@ -986,6 +986,8 @@ def _line_table(table, model, cand, names, lam, sig, flux, snr, flags_in, opts):
     c_upper = _column(cand, "upper", "", str)
     c_ev = _column(cand, "upper_ev")
     c_low_ev = _column(cand, "lower_cm1") * HC_EV_CM
+    c_aki = _column(cand, "aki")
+    c_g = _column(cand, "g_upper")
     out_sp = np.full(n, "", dtype=object)
     out_ref = np.full(n, np.nan)
     out_order = np.zeros(n, int)
@@ -993,6 +995,8 @@ def _line_table(table, model, cand, names, lam, sig, flux, snr, flags_in, opts):
     out_upper = np.full(n, "", dtype=object)
     out_ev = np.full(n, np.nan)
     out_low_ev = np.full(n, np.nan)
+    out_aki = np.full(n, np.nan)
+    out_g = np.full(n, np.nan)
     out_p = np.zeros(n)
     out_res = np.full(n, np.nan)
     out_members = np.full(n, "", dtype=object)
@@ -1033,6 +1037,8 @@ def _line_table(table, model, cand, names, lam, sig, flux, snr, flags_in, opts):
                 out_upper[i] = c_upper[row]
                 out_ev[i] = c_ev[row]
                 out_low_ev[i] = c_low_ev[row]
+                out_aki[i] = c_aki[row]
+                out_g[i] = c_g[row]
                 out_res[i] = model.z[j]
                 if len(g.members[k]) > 1:
                     out_members[i] = ",".join(_fmt_wl(c_wl[m]) for m in g.members[k])
@@ -1066,6 +1072,8 @@ def _line_table(table, model, cand, names, lam, sig, flux, snr, flags_in, opts):
     t["upper"] = np.array(out_upper, dtype=str) if n else np.zeros(0, str)
     t["upper_energy_ev"] = u.Quantity(out_ev, u.eV)
     t["lower_energy_ev"] = u.Quantity(out_low_ev, u.eV)
+    t["aki"] = u.Quantity(out_aki, 1 / u.s)
+    t["g_upper"] = out_g
     t["residual_sigma"] = out_res
     t["probability"] = out_p
     t["p_unidentified"] = np.asarray(p_unid, float)
@@ -1116,7 +1124,7 @@ def _species_table(model, names, present, llr, lnmu, lines_out):
     return t
 
 
-def _levels_table(lines_out, cand, max_energy, corr, corrected):
+def _levels_table(lines_out, max_energy, corr, corrected):
     import astropy.units as u
     from astropy.table import Table
 
@@ -1128,6 +1136,12 @@ def _levels_table(lines_out, cand, max_energy, corr, corrected):
     wl = np.asarray(lines_out["wavelength"], float)[ok]
     fl = np.asarray(lines_out["flux"], float)[ok]
     fc = fl / corr[ok]
+    # N_u ∝ I λ / A for an energy intensity I (the response turns counts into one)
+    single = np.char.find(np.asarray(lines_out["flags"], str)[ok], "blend") < 0
+    aki = np.asarray(lines_out["aki"], float)[ok]
+    snr = np.asarray(lines_out["snr"], float)[ok]
+    pop_line = np.where(single & np.isfinite(aki) & (aki > 0), fc * wl / aki, np.nan)
+    g_up = np.asarray(lines_out["g_upper"], float)[ok]
     keys = [f"{a}|{b}|{round(e, 5)}" for a, b, e in zip(sp, up, ev, strict=True)]
     uniq, inv = np.unique(np.array(keys, dtype=str), return_inverse=True) if keys else ([], [])
     m = len(uniq)
@@ -1147,6 +1161,16 @@ def _levels_table(lines_out, cand, max_energy, corr, corrected):
     ) if m else np.zeros(0, str)
     t["flux"] = u.Quantity(np.bincount(inv, fl, m) if m else np.zeros(0), u.ct)
     t["flux_corrected"] = np.bincount(inv, fc, m) if (m and corrected) else np.full(m, np.nan)
+    pop = np.full(m, np.nan)
+    if m and corrected:
+        w = np.where(np.isfinite(pop_line), np.nan_to_num(snr, nan=1.0) ** 2, 0.0)
+        wsum = np.bincount(inv, w, m)
+        num = np.bincount(inv, w * np.nan_to_num(pop_line), m)
+        pop = np.where(wsum > 0, num / np.where(wsum > 0, wsum, 1.0), np.nan)
+        if np.any(np.isfinite(pop)):
+            pop = pop / np.nanmax(pop)
+    t["population"] = pop
+    t["population_per_g"] = pop / g_up[first] if m else np.zeros(0)
     if max_energy is None:
         above = np.zeros(m, bool)
     else:
@@ -1159,61 +1183,56 @@ def _levels_table(lines_out, cand, max_energy, corr, corrected):
         t.sort(["energy_ev", "species"])
     t.meta["max_electron_energy_ev"] = max_energy
     t.meta["intensities"] = "response-corrected" if corrected else "uncorrected"
+    t.meta["population"] = (
+        "relative upper-level population N_u ∝ I λ / A (max = 1), from unblended lines with "
+        "published A" if corrected else
+        "not given: intensities are uncorrected for the spectral response (pass response=)"
+    )
     return t
 
 
 # ---- Boltzmann plot ----------------------------------------------------------------------
 
 
-def boltzmann_plot(lines, candidates, species: str, *, corrected: bool) -> BoltzmannPlot | None:
-    """Boltzmann-plot points ln(F λ / (g A)) of one species' identified lines, and a fit.
+def boltzmann_plot(lines, species: str, *, corrected: bool) -> BoltzmannPlot | None:
+    """Boltzmann-plot points ln(I λ / (g A)) of one species' identified lines, and a fit.
 
-    Uses first-order, unblended assignments whose transition has a published A value.
-    ``F`` is the measured flux (photon counts; λ converts to energy units with the usual
-    convention of the plot); when ``corrected`` is False no temperature is fitted, because
-    uncorrected intensities carry the instrument's spectral response.  Returns None when
-    fewer than two lines with A values are identified.
+    Uses the first-order, unblended assignments of ``lines`` (an ``Identification.lines``
+    table) whose transition has a published A value.  ``I`` is ``flux_corrected`` when the
+    table has it (flux divided by the relative response, i.e. an energy intensity), else the
+    raw flux.  With ``corrected`` False no temperature is fitted, because uncorrected
+    intensities carry the instrument's spectral response.  The fit is a weighted straight
+    line, slope = -1/(k T); its error is scaled by the scatter when there are more than two
+    points.  Returns None when fewer than two such lines are identified.
     """
     lam = np.asarray(lines["wavelength"], float)
-    ref = np.asarray(lines["ref_wavelength"], float)
     sel = (np.asarray(lines["species"]) == species) & (np.asarray(lines["order"]) == 1)
     sel &= np.char.find(np.asarray(lines["flags"], str), "blend") < 0
-    c_sp = np.asarray(candidates["species"]).astype(str)
-    c_wl = _column(candidates, "wavelength")
-    c_a = _column(candidates, "aki")
-    c_g = _column(candidates, "g_upper")
-    rows = np.flatnonzero(sel & np.isfinite(ref))
-    if rows.size == 0:
-        return None
-    pick = np.flatnonzero(c_sp == species)
-    if pick.size == 0:
-        return None
-    nearest = pick[np.argmin(np.abs(c_wl[pick][None, :] - ref[rows][:, None]), axis=1)]
-    ga = c_a[nearest] * c_g[nearest]
-    flux = np.asarray(lines["flux"], float)[rows]
-    ok = np.isfinite(ga) & (ga > 0) & np.isfinite(flux) & (flux > 0)
-    if "flux_corrected" in lines.colnames:
-        flux = np.asarray(lines["flux_corrected"], float)[rows]
-    rows, nearest, ga, flux = rows[ok], nearest[ok], ga[ok], flux[ok]
+    ga = np.asarray(lines["aki"], float) * np.asarray(lines["g_upper"], float)
+    name = "flux_corrected" if "flux_corrected" in lines.colnames else "flux"
+    flux = np.asarray(lines[name], float)
+    e = np.asarray(lines["upper_energy_ev"], float)
+    sel &= np.isfinite(ga) & (ga > 0) & np.isfinite(flux) & (flux > 0) & np.isfinite(e)
+    rows = np.flatnonzero(sel)
     if rows.size < 2:
         return None
-    e = np.asarray(lines["upper_energy_ev"], float)[rows]
+    e = e[rows]
     snr = np.asarray(lines["snr"], float)[rows]
-    y = np.log(flux * lam[rows] / ga)
+    y = np.log(flux[rows] * lam[rows] / ga[rows])
     y_err = 1.0 / np.where(np.isfinite(snr) & (snr > 0), snr, 1.0)
     upper = tuple(str(x) for x in np.asarray(lines["upper"])[rows])
     nan = float("nan")
+    common = {"species": species, "energy_ev": e, "y": y, "y_err": y_err,
+              "wavelength": lam[rows], "upper": upper, "corrected": corrected}
     if not corrected:
         return BoltzmannPlot(
-            species=species, energy_ev=e, y=y, y_err=y_err, wavelength=lam[rows], upper=upper,
-            corrected=False, slope=nan, slope_err=nan, intercept=nan, temperature_k=nan,
+            **common, slope=nan, slope_err=nan, intercept=nan, temperature_k=nan,
             temperature_err_k=nan,
             message="intensities are uncorrected for the spectral response: no temperature",
         )
     if np.unique(np.round(e, 4)).size < 2:
         return BoltzmannPlot(
-            species=species, energy_ev=e, y=y, y_err=y_err, wavelength=lam[rows], upper=upper,
-            corrected=True, slope=nan, slope_err=nan, intercept=nan, temperature_k=nan,
+            **common, slope=nan, slope_err=nan, intercept=nan, temperature_k=nan,
             temperature_err_k=nan, message="all lines share one upper level: no temperature",
         )
     slope, slope_err, intercept = _line_fit(e, y, y_err)
@@ -1225,10 +1244,8 @@ def boltzmann_plot(lines, candidates, species: str, *, corrected: bool) -> Boltz
         temp, temp_err = nan, nan
         msg = "non-negative slope: the levels are not in a Boltzmann distribution"
     return BoltzmannPlot(
-        species=species, energy_ev=e, y=y, y_err=y_err, wavelength=lam[rows], upper=upper,
-        corrected=True, slope=float(slope), slope_err=float(slope_err),
-        intercept=float(intercept), temperature_k=float(temp), temperature_err_k=float(temp_err),
-        message=msg,
+        **common, slope=float(slope), slope_err=float(slope_err), intercept=float(intercept),
+        temperature_k=float(temp), temperature_err_k=float(temp_err), message=msg,
     )
 
 
