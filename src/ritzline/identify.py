@@ -22,6 +22,7 @@ import numpy as np
 from scipy.special import log_ndtr, ndtr
 
 from .errors import RitzlineError
+from .levels import SPECIES as _SHIPPED
 
 __all__ = [
     "BoltzmannPlot",
@@ -32,8 +33,8 @@ __all__ = [
     "read_response",
 ]
 
-#: Every species shipped in ``line_lists/`` that :func:`identify_lines` considers by default.
-SHIPPED_SPECIES = ("H I", "He I", "Ne I", "Ar I", "Kr I", "Xe I", "Hg I", "Na I")
+#: Every species shipped in ``line_lists/``: what :func:`identify_lines` considers by default.
+SHIPPED_SPECIES = tuple(_SHIPPED)
 
 #: Boltzmann constant in eV/K (CODATA 2018, exact by the 2019 SI definition).
 K_B_EV = 8.617333262e-5
@@ -228,17 +229,24 @@ def _response_function(response):
                                    "response": np.asarray(resp, float)}), "response arrays")
 
 
-def _species_list(species) -> list[str]:
+def _species_list(species, custom: bool = False) -> list[str]:
+    """Canonical species labels ("Ne I"); names outside the shipped lists only when the
+    caller brings its own candidate table (``custom``)."""
     if species is None:
         return list(SHIPPED_SPECIES)
     if isinstance(species, str):
         species = [s for s in species.replace(";", ",").split(",") if s.strip()]
+    from .levels import species_label
+
     out = []
     for s in species:
-        name = " ".join(str(s).replace("_", " ").split())
-        if " " not in name:
-            name = f"{name} I"
-        out.append(name)
+        try:
+            out.append(species_label(str(s).strip()))
+        except RitzlineError:
+            if not custom:
+                raise
+            name = " ".join(str(s).replace("_", " ").split())
+            out.append(name if " " in name else f"{name} I")
     if not out:
         raise RitzlineError("no species given; name at least one, e.g. 'Ne I', or pass None")
     return list(dict.fromkeys(out))
@@ -783,7 +791,7 @@ def identify_lines(
             f"the wavelength solution is in {sol_medium}, but medium={medium!r} was asked; "
             f"pass medium={sol_medium!r}"
         )
-    names = _species_list(species)
+    names = _species_list(species, custom=candidates is not None)
     table, axis_range = _measured_lines(spectrum, lines, solution, find_kw)
     n = len(table)
     lam = _column(table, "wavelength")
