@@ -297,13 +297,13 @@ def test_killed_run_resumes_without_missing_or_duplicated_exposures(tmp_path, si
     paths = write_numbers(tmp_path / "in", n, bad={13})
     out = tmp_path / "out"
     script = KILL_SCRIPT.format(tests=str(Path(__file__).parent), indir=str(tmp_path / "in"),
-                                outdir=str(out), delay=0.02)
+                                outdir=str(out), delay=0.05)
     proc = subprocess.Popen([sys.executable, "-c", script], stdout=subprocess.PIPE,
                             start_new_session=True)
     journal = out / "journal.jsonl"
     deadline = time.monotonic() + 30
     while time.monotonic() < deadline:
-        if journal.exists() and len(journal.read_text().splitlines()) > 20:
+        if journal.exists() and len(journal.read_text().splitlines()) > 10:
             break
         time.sleep(0.02)
     os.killpg(proc.pid, sig)  # the whole run: parent and its workers

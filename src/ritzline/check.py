@@ -591,7 +591,7 @@ class ExposureChecker:
         fit = fit_drift(
             pixel, pixel_err, ref.pixel, ref.pixel_err, ref.centre,
             search_px=search, match_px=match, fit_mask=clean,
-        )  # fmt: skip
+        )
         shift = fit.shift if np.isfinite(fit.shift) else fit.coarse_shift
         stretch = fit.stretch if np.isfinite(fit.stretch) else 0.0
         predicted = ref.pixel + shift + stretch * (ref.pixel - ref.centre)
@@ -705,51 +705,72 @@ def _journal_header(fingerprint: dict) -> str:
     return json.dumps({"ritzline_journal": JOURNAL_SCHEMA, "config": fingerprint}) + "\n"
 
 
-def read_journal(path: str | os.PathLike) -> tuple[dict | None, dict[str, dict]]:
-    """Read a journal: (header config or None, rows keyed by resolved file path).
+def _iter_journal(path: Path) -> Iterator[tuple[int, str, dict]]:
+    """(line number, raw line, parsed object) of every complete, valid journal line.
 
-    A torn last line (a run killed mid-write) is ignored; a file appearing twice keeps its
-    last row.
+    A torn last line (a run killed mid-write) has no newline and is skipped.
     """
-    path = Path(path)
-    config = None
-    rows: dict[str, dict] = {}
-    if not path.exists():
-        return None, rows
     with open(path, encoding="utf-8") as fh:
-        for line in fh:
+        for number, line in enumerate(fh):
             if not line.endswith("\n"):
                 break
             try:
                 obj = json.loads(line)
             except json.JSONDecodeError:
                 continue
-            if "ritzline_journal" in obj:
-                config = obj.get("config")
-            elif "key" in obj:
-                rows[obj["key"]] = obj
+            if isinstance(obj, dict):
+                yield number, line, obj
+
+
+def read_journal(path: str | os.PathLike) -> tuple[dict | None, dict[str, dict]]:
+    """Read a journal: (header config or None, rows keyed by resolved file path).
+
+    A torn last line is ignored; a file appearing twice keeps its last row.
+    """
+    path = Path(path)
+    config = None
+    rows: dict[str, dict] = {}
+    if not path.exists():
+        return None, rows
+    for _, _, obj in _iter_journal(path):
+        if "ritzline_journal" in obj:
+            config = obj.get("config")
+        elif "key" in obj:
+            rows[obj["key"]] = obj
     return config, rows
 
 
 class _Journal:
-    """Append-only JSON-lines record of finished exposures; flushed after every row."""
+    """Append-only JSON-lines record of finished exposures; flushed after every row.
+
+    Only the keys of finished exposures stay in memory; the rows live in the file.
+    """
 
     def __init__(self, path: Path, fingerprint: dict, *, resume: bool) -> None:
         self.path = path
-        self.rows: dict[str, dict] = {}
+        self.done: set[str] = set()
+        last: dict[str, int] = {}
+        config = None
         if resume and path.exists():
-            config, rows = read_journal(path)
-            if config is not None and config != json.loads(json.dumps(fingerprint)):
+            for number, _, obj in _iter_journal(path):
+                if "ritzline_journal" in obj:
+                    config = obj.get("config")
+                elif "key" in obj:
+                    last[obj["key"]] = number
+            if last and config != json.loads(json.dumps(fingerprint)):
                 raise RitzlineError(
                     f"{path}: the finished exposures were checked with another reference "
                     "solution or other thresholds; run without --resume to start over"
                 )
-            self.rows = rows
-        # rewrite without torn or duplicate lines, then append
+        keep = set(last.values())
+        # rewrite without torn or duplicate lines (streaming), then append
         with atomic_write(path, "w", encoding="utf-8") as fh:
             fh.write(_journal_header(fingerprint))
-            for row in self.rows.values():
-                fh.write(json.dumps(row, allow_nan=True) + "\n")
+            if keep:
+                for number, line, _ in _iter_journal(path):
+                    if number in keep:
+                        fh.write(line)
+        self.done = set(last)
         self._fh = open(path, "a", encoding="utf-8")
         self._last_sync = time.monotonic()
 
@@ -770,38 +791,92 @@ class _Journal:
 # ---- summary -----------------------------------------------------------------------------
 
 
-def summary_table(rows: Sequence[dict], meta: dict | None = None):
-    """The summary Table (units, descriptions, meta) from result rows, in the given order."""
-    import astropy.units as u
-    from astropy.table import Column, MaskedColumn, Table
+class _SummaryColumns:
+    """Column arrays for ``n`` rows, filled in any order by input position."""
 
-    table = Table(meta=dict(meta or {}))
-    for name, kind, unit, desc in SUMMARY_COLUMNS:
-        values = [r.get(name) for r in rows]
-        unit_obj = u.Unit(unit) if unit else None
-        if kind == "int":
-            mask = np.array([v is None for v in values], bool)
-            data = np.array([0 if v is None else int(v) for v in values], dtype=np.int64)
-            col = MaskedColumn(data, name=name, mask=mask, description=desc, unit=unit_obj)
-            if not mask.any():
+    def __init__(self, n: int) -> None:
+        self.filled = np.zeros(n, bool)
+        self.data: dict[str, np.ndarray] = {}
+        self.masks: dict[str, np.ndarray] = {}
+        for name, kind, _, _ in SUMMARY_COLUMNS:
+            if kind == "int":
+                self.data[name] = np.zeros(n, np.int64)
+                self.masks[name] = np.ones(n, bool)
+            elif kind == "float":
+                self.data[name] = np.full(n, np.nan)
+            else:
+                self.data[name] = np.full(n, "", dtype=object)
+
+    def put(self, i: int, row: dict) -> None:
+        self.filled[i] = True
+        for name, kind, _, _ in SUMMARY_COLUMNS:
+            v = row.get(name)
+            if v is None:
+                continue
+            if kind == "int":
+                self.data[name][i] = int(v)
+                self.masks[name][i] = False
+            elif kind == "float":
+                self.data[name][i] = float(v)
+            else:
+                self.data[name][i] = str(v)
+
+    def table(self, meta: dict | None = None):
+        import astropy.units as u
+        from astropy.table import Column, MaskedColumn, Table
+
+        sel = np.flatnonzero(self.filled)
+        table = Table(meta=dict(meta or {}))
+        for name, kind, unit, desc in SUMMARY_COLUMNS:
+            unit_obj = u.Unit(unit) if unit else None
+            data = self.data[name][sel]
+            if kind == "int" and self.masks[name][sel].any():
+                col = MaskedColumn(data, name=name, mask=self.masks[name][sel],
+                                   description=desc, unit=unit_obj)
+            elif kind == "str":
+                text = data.astype(str) if data.size else np.zeros(0, dtype="U1")
+                col = Column(text, name=name, description=desc)
+            else:
                 col = Column(data, name=name, description=desc, unit=unit_obj)
-        elif kind == "float":
-            data = np.array([np.nan if v is None else float(v) for v in values], dtype=float)
-            col = Column(data, name=name, description=desc, unit=unit_obj)
-        else:
-            data = np.array(["" if v is None else str(v) for v in values], dtype=str)
-            if data.size == 0:
-                data = np.zeros(0, dtype="U1")
-            col = Column(data, name=name, description=desc)
-        table.add_column(col)
-    return table
+            table.add_column(col)
+        return table
 
 
-def _totals(rows: Sequence[dict]) -> dict:
-    counts = {s: 0 for s in STATUSES}
-    for r in rows:
-        counts[r["status"]] = counts.get(r["status"], 0) + 1
-    return {"exposures": len(rows), **counts}
+def summary_table(rows: Sequence[dict], meta: dict | None = None):
+    """The summary Table (units, descriptions, meta) from result rows, in the given order.
+
+    ``index`` is the row's own ``index`` when set, else its position.
+    """
+    cols = _SummaryColumns(len(rows))
+    for i, r in enumerate(rows):
+        cols.put(i, r if r.get("index") is not None else dict(r, index=i))
+    return cols.table(meta)
+
+
+def _table_rows(table) -> list[dict]:
+    """Plain-Python dicts of a summary table's rows (masked values -> None)."""
+    out = []
+    cols = {name: table[name] for name in _COLUMN_NAMES}
+    for i in range(len(table)):
+        row = {}
+        for name, kind, _, _ in SUMMARY_COLUMNS:
+            col = cols[name]
+            if getattr(col, "mask", None) is not None and bool(np.ma.getmaskarray(col)[i]):
+                row[name] = None
+            elif kind == "int":
+                row[name] = int(col[i])
+            elif kind == "float":
+                row[name] = float(col[i])
+            else:
+                row[name] = str(col[i])
+        out.append(row)
+    return out
+
+
+def _totals(status) -> dict:
+    status = np.asarray(status, str)
+    counts = {s: int(np.count_nonzero(status == s)) for s in STATUSES}
+    return {"exposures": int(status.size), **counts}
 
 
 # ---- runner ------------------------------------------------------------------------------
@@ -857,18 +932,14 @@ def _results_dask(task, items, scheduler: str, chunksize: int, workers: int | No
         ) from exc
     cluster = None
     if scheduler == "local":
-        cluster = LocalCluster(
-            n_workers=workers or os.cpu_count() or 1,
-            threads_per_worker=1,
-            host="127.0.0.1",
-            dashboard_address=None,
-            processes=True,
-        )
+        # worker processes on this machine, reachable on loopback only
+        cluster = LocalCluster(n_workers=workers or os.cpu_count() or 1, threads_per_worker=1,
+                               host="127.0.0.1", dashboard_address=None, processes=True)
         client = Client(cluster)
     elif scheduler == "local-threads":
-        cluster = LocalCluster(
-            n_workers=1, threads_per_worker=workers or 1, processes=False, dashboard_address=None
-        )
+        # one in-process worker with threads: no pickling, for notebooks and quick tests
+        cluster = LocalCluster(n_workers=1, threads_per_worker=workers or 1, processes=False,
+                               dashboard_address=None)
         client = Client(cluster)
     else:
         try:
@@ -900,13 +971,18 @@ def _results_dask(task, items, scheduler: str, chunksize: int, workers: int | No
 
 @dataclass(frozen=True)
 class BatchResult:
-    """What :func:`run_batch` did: result rows in input order and bookkeeping."""
+    """What :func:`run_batch` did: the summary table (input order) and bookkeeping."""
 
-    rows: list[dict]
+    table: object
     n_skipped: int
     n_run: int
     elapsed: float
     complete: bool
+
+    @property
+    def rows(self) -> list[dict]:
+        """The summary rows as plain dicts (masked values as None)."""
+        return _table_rows(self.table)
 
 
 def run_batch(
@@ -936,7 +1012,9 @@ def run_batch(
     workers : int, optional
         Local worker processes (default: the number of cores); 1 runs in this process.
     dask_scheduler : str, optional
-        ``"local"`` for a local Dask cluster, or a scheduler address ``tcp://host:port``.
+        ``"local"`` for a local Dask cluster of worker processes (loopback only),
+        ``"local-threads"`` for an in-process one, or a scheduler address
+        ``tcp://host:port``.
     resume : bool
         Keep rows already in the journal (same ``fingerprint``) and skip those files.
     fingerprint : dict, optional
@@ -948,6 +1026,8 @@ def run_batch(
         Called after every finished exposure.
     summary_interval : float
         Seconds between rebuilds of ``summary.ecsv`` during the run.
+    chunksize : int, optional
+        Exposures per task sent to a worker.
 
     Returns
     -------
@@ -957,46 +1037,51 @@ def run_batch(
     -----
     Each row is appended to the journal and flushed as soon as it arrives, so a run killed
     at any moment (Ctrl-C, SIGKILL) loses at most the exposures in flight; ``resume=True``
-    then does only what is missing.  ``summary.ecsv`` is rebuilt atomically from the journal
-    in input order, periodically and at the end (also after Ctrl-C).
+    then does only what is missing.  With ``outdir`` the parent keeps only the keys of
+    finished exposures: the rows live in the journal, from which ``summary.ecsv`` is rebuilt
+    atomically in input order, periodically and at the end (also after Ctrl-C), so memory
+    does not grow with the number of exposures beyond the final table.
     """
     t0 = time.monotonic()
     files = [str(p) for p in paths]
     keys = [str(Path(p).resolve()) for p in files]
-    if len(set(keys)) != len(keys):
+    index_of = {k: i for i, k in enumerate(keys)}
+    if len(index_of) != len(keys):
         raise RitzlineError("the same exposure file is listed twice")
     workers = int(workers or os.cpu_count() or 1)
-    fingerprint = fingerprint or {}
     journal = None
-    done: dict[str, dict] = {}
+    done: set[str] = set()
+    in_memory: dict[int, dict] = {}
     out = Path(outdir) if outdir is not None else None
     if out is not None:
         out.mkdir(parents=True, exist_ok=True)
-        journal = _Journal(out / JOURNAL_NAME, fingerprint, resume=resume)
-        done = journal.rows
-    key_set = set(keys)
+        journal = _Journal(out / JOURNAL_NAME, fingerprint or {}, resume=resume)
+        done = journal.done
     todo = [(i, k, f) for i, (k, f) in enumerate(zip(keys, files, strict=True)) if k not in done]
-    n_skipped = sum(1 for k in keys if k in done)
-    fresh: dict[str, dict] = {}
+    n_skipped = len(keys) - len(todo)
     chunksize = chunksize or max(1, min(16, len(todo) // (8 * workers) or 1))
 
-    def rows_in_order() -> list[dict]:
-        merged = []
-        for i, (k, f) in enumerate(zip(keys, files, strict=True)):
-            r = fresh.get(k) or done.get(k)
-            if r is not None:
-                r = dict(r)
-                r["index"] = i
-                r["file"] = f
-                merged.append(r)
-        return merged
+    def build_table():
+        cols = _SummaryColumns(len(keys))
+        if journal is not None:
+            for _, _, obj in _iter_journal(journal.path):
+                i = index_of.get(obj.get("key"))
+                if i is not None:
+                    cols.put(i, dict(obj, index=i, file=files[i]))
+        else:
+            for i, row in in_memory.items():
+                cols.put(i, dict(row, index=i, file=files[i]))
+        return cols.table(meta), int(cols.filled.sum())
 
-    def write_summary() -> None:
+    def write_summary():
+        table, n_filled = build_table()
         if out is not None:
-            write_table(summary_table(rows_in_order(), meta), out / "summary.ecsv")
+            write_table(table, out / "summary.ecsv")
+        return table, n_filled
 
-    complete = False
     n_run = 0
+    table = None
+    n_filled = 0
     try:
         if dask_scheduler:
             results = _results_dask(task, todo, dask_scheduler, chunksize, workers)
@@ -1006,31 +1091,28 @@ def run_batch(
         total = len(files)
         if progress is not None:
             progress(n_skipped, total)
-        for _index, key, row in results:
-            row = dict(row, key=key)
-            fresh[key] = row
+        for index, key, row in results:
             if journal is not None:
-                journal.append(row)
+                journal.append(dict(row, key=key))
+            else:
+                in_memory[index] = row
             n_run += 1
             if progress is not None:
                 progress(n_skipped + n_run, total)
             if out is not None and time.monotonic() - last_summary > summary_interval:
+                journal._fh.flush()
                 write_summary()
                 last_summary = time.monotonic()
-        complete = all(k in fresh or k in done for k in key_set)
     finally:
         if journal is not None:
             journal.close()
-        write_summary()
-    rows = rows_in_order()
-    for r in rows:
-        r.pop("key", None)
+        table, n_filled = write_summary()
     return BatchResult(
-        rows=rows,
+        table=table,
         n_skipped=n_skipped,
         n_run=n_run,
         elapsed=time.monotonic() - t0,
-        complete=complete,
+        complete=n_filled == len(keys),
     )
 
 
@@ -1120,16 +1202,16 @@ def check_exposures(
         meta=meta,
         progress=progress,
     )
-    totals = _totals(result.rows)
-    meta["totals"] = totals
-    meta["complete"] = result.complete
-    table = summary_table(result.rows, meta)
+    table = result.table
+    totals = _totals(table["status"])
+    table.meta["totals"] = totals
+    table.meta["complete"] = result.complete
     if outdir is not None:
         out = Path(outdir)
         write_table(table, out / "summary.ecsv")
         rate = result.n_run / result.elapsed if result.elapsed > 0 else float("nan")
         ref_keys = ("reference_solution", "reference_fwhm_px", "reference_resolving_power",
-                    "n_pixels", "medium", "lamps", "expected_lines", "dark")  # fmt: skip
+                    "n_pixels", "medium", "lamps", "expected_lines", "dark")
         info = {
             "totals": totals,
             "thresholds": asdict(limits),

@@ -276,7 +276,7 @@ def _check_axis(summary):
             )
         except ValueError:
             return order, "exposure (input order)", False
-        return times, "time stamp (UTC as written in the files)", True
+        return times, "time stamp (as written in the files)", True
     return order, "exposure (input order)", False
 
 

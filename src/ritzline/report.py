@@ -125,6 +125,8 @@ def _cell(name: str, value) -> str:
 def _meta_rows(items: Mapping[str, object]) -> str:
     out = []
     for k, v in items.items():
+        if isinstance(v, float):
+            v = f"{v:.6g}"
         out.append(f"<tr><td>{html.escape(str(k))}</td><td>{html.escape(str(v))}</td></tr>")
     return "\n".join(out)
 

@@ -1,0 +1,96 @@
+"""The HTML batch report in a real headless browser (Debian's ``chromium``): the page loads
+without script errors, the inline script runs, the table shows every row, and clicking a
+heading sorts it.  Skipped with a message when no Chromium is installed."""
+
+import re
+import shutil
+import subprocess
+
+import numpy as np
+import pytest
+
+from ritzline import check
+from ritzline.report import report_html, write_report
+
+pytestmark = pytest.mark.browser
+
+CHROMIUM = shutil.which("chromium") or shutil.which("chromium-browser")
+
+
+def chromium_dom(page, tmp_path):
+    if CHROMIUM is None:
+        pytest.skip("headless Chromium not found (Debian: apt-get install chromium)")
+    profile = tmp_path / "profile"
+    profile.mkdir()
+    cmd = [
+        CHROMIUM, "--headless", "--no-sandbox", "--disable-gpu", "--disable-quic",
+        "--no-first-run", "--disable-background-networking", "--disable-component-update",
+        "--disable-sync", f"--user-data-dir={profile}", "--enable-logging=stderr", "--log-level=0",
+        "--virtual-time-budget=5000", "--dump-dom", page.as_uri(),
+    ]  # fmt: skip
+    proc = subprocess.run(cmd, capture_output=True, text=True, timeout=120)
+    assert proc.returncode == 0, proc.stderr[-2000:]
+    return proc.stdout, proc.stderr
+
+
+SCRIPT_ERROR = re.compile(r"CONSOLE.*(Uncaught|Error)")
+
+
+def test_the_browser_check_sees_script_errors(tmp_path):
+    # guards the two tests below: a broken script must show up in the browser log
+    page = tmp_path / "broken.html"
+    page.write_text("<html><body><script>undefinedThing.call();</script></body></html>")
+    _, log = chromium_dom(page, tmp_path)
+    assert SCRIPT_ERROR.search(log)
+
+
+def rows(n, bad=()):
+    out = []
+    for i in range(n):
+        r = check._blank_row(f"exp<{i}>.txt")  # markup in a file name must be escaped
+        if i in bad:
+            r.update(status="error", reasons="exp.txt: file is empty")
+        else:
+            r.update(status="pass" if i % 3 else "warn", shift_px=0.1 * ((i * 7) % 11) - 0.5,
+                     shift_err_px=0.01, fwhm_px=2.6, fwhm_err_px=0.01, n_lines=30,
+                     n_expected=31, saturated_pixels=0, snr_median=150.0,
+                     timestamp=f"2026-03-14T08:{i:02d}:00")  # fmt: skip
+        r["index"] = i
+        out.append(r)
+    return out
+
+
+INFO = {"totals": {"exposures": 25, "pass": 16, "warn": 7, "fail": 0, "error": 2},
+        "thresholds": {"max_shift_px": 1.0}, "reference": {"reference_solution": "ref.json",
+        "reference_fwhm_px": 2.6}, "complete": True}  # fmt: skip
+
+
+def test_report_loads_without_errors_and_shows_every_row(tmp_path):
+    table = check.summary_table(rows(25, bad={3, 9}))
+    page = write_report(table, tmp_path, INFO)
+    dom, log = chromium_dom(page, tmp_path)
+    assert 'data-ritzline-ready="25"' in dom
+    assert len(re.findall(r'<tr class="s-', dom)) == 25
+    assert "exp&lt;3&gt;.txt" in dom and "<3>" not in dom
+    assert dom.count("data:image/png;base64,") == 3
+    assert not SCRIPT_ERROR.search(log), log[-2000:]
+
+
+def test_report_sorts_by_a_numeric_column_when_its_heading_is_clicked(tmp_path):
+    table = check.summary_table(rows(12))
+    html = report_html(table, INFO)
+    # the test drives the page: click "shift (px)" once, then record the row order
+    probe = """<script>
+    var th=[].find.call(document.querySelectorAll('#rows th'),function(h){
+      return h.textContent==='shift (px)';});
+    th.click();
+    var col=[].indexOf.call(th.parentNode.cells, th);
+    var v=[].map.call(document.getElementById('rows').tBodies[0].rows,function(r){
+      return r.cells[col].getAttribute('data-v');});
+    document.body.setAttribute('data-sorted', v.join(' '));
+    </script></body>"""
+    page = tmp_path / "report.html"
+    page.write_text(html.replace("</body>", probe), encoding="utf-8")
+    dom, _ = chromium_dom(page, tmp_path)
+    shown = [float(v) for v in re.search(r'data-sorted="([^"]*)"', dom).group(1).split()]
+    assert shown == sorted(np.asarray(table["shift_px"], float).tolist())
