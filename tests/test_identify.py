@@ -425,3 +425,12 @@ def test_match_command_exits_2_on_a_pixel_file_without_solution(demo_solution):
     res = CliRunner().invoke(main, ["match", str(data / "helium_glow.csv")])
     assert res.exit_code == 2
     assert "error:" in res.output
+
+
+def test_docstring_examples_run():
+    import doctest
+
+    import ritzline.identify
+
+    result = doctest.testmod(ritzline.identify)
+    assert result.attempted > 0 and result.failed == 0

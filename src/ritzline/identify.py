@@ -780,17 +780,32 @@ def identify_lines(
     line's flux and the published branching.  Scales are fitted by alternating updates;
     species are removed one at a time while the weakest has a log-likelihood ratio below
     ``species_threshold``.  Posterior shares give the probabilities.
+
+    Examples
+    --------
+    >>> from astropy.table import Table
+    >>> wl = [633.443, 638.299, 640.225, 650.653, 653.288, 659.895]
+    >>> lines = Table({"wavelength": wl, "wavelength_err": [0.002] * 6,
+    ...                "flux": [4e4, 4e4, 8e4, 6e4, 4e4, 4e4], "flux_err": [250.0] * 6,
+    ...                "snr": [160.0, 160.0, 320.0, 240.0, 160.0, 160.0]})
+    >>> ids = identify_lines(lines=lines, species=["Ne", "Ar"],
+    ...                      wavelength_range=(632.0, 661.0))
+    >>> [f"{s} {w:.2f}" for s, w in ids.lines["species", "ref_wavelength"]][:2]
+    ['Ne I 633.44', 'Ne I 638.30']
+    >>> ids.present
+    ('Ne I',)
     """
 
     opts = options or IdentifyOptions()
     if medium not in ("air", "vacuum"):
         raise RitzlineError(f"medium must be 'air' or 'vacuum', not {medium!r}")
-    sol_medium = getattr(solution, "medium", None)
-    if sol_medium is not None and sol_medium != medium:
-        raise RitzlineError(
-            f"the wavelength solution is in {sol_medium}, but medium={medium!r} was asked; "
-            f"pass medium={sol_medium!r}"
-        )
+    for what, known in (("wavelength solution", getattr(solution, "medium", None)),
+                        ("spectrum", (getattr(spectrum, "meta", None) or {}).get("medium"))):
+        if known is not None and known != medium:
+            raise RitzlineError(
+                f"the {what} is in {known}, but medium={medium!r} was asked; "
+                f"pass medium={known!r}"
+            )
     names = _species_list(species, custom=candidates is not None)
     table, axis_range = _measured_lines(spectrum, lines, solution, find_kw)
     n = len(table)

@@ -268,9 +268,7 @@ def run(n_spectra: int, seed: int, n_pixel: int, hard: bool = False) -> None:
             if not eligible[i]:
                 continue
             row = res.lines[i]
-            p = float(row["probability"])
-            if p <= 0:
-                continue
+            p = float(row["probability"])  # 0 when no candidate is left: counted as wrong
             ok = False
             if str(row["species"]):
                 ok = bool(correct[i])
