@@ -466,7 +466,8 @@ def match(file, species, solution_path, medium, max_energy, response, column, ou
         from .calibrate import Solution
 
         solution = Solution.load(solution_path)
-    medium = medium or getattr(solution, "medium", None) or "air"
+    medium = (medium or getattr(solution, "medium", None)
+              or (spectrum.meta or {}).get("medium") or "air")
     resp = read_response(response) if response else None
     result = identify_lines(spectrum, species, solution=solution, medium=medium,
                             max_electron_energy=max_energy, response=resp)
