@@ -585,3 +585,49 @@ def check(inputs, solution_path, lamp, dark, outdir, workers, dask_scheduler, ma
 
 
 # ---- demo ------------------------------------------------------------------------------
+
+
+@main.command("demo")
+@click.option("-o", "--outdir", default="ritzline-demo", show_default=True,
+              type=click.Path(file_okay=False), help="Folder for every output of the demo.")
+@click.option("--workers", type=click.IntRange(min=1), default=None,
+              help="Worker processes for the batch check (default: number of cores).")
+@handle_errors
+def demo(outdir: str, workers: int | None) -> None:
+    """Run the whole pipeline on the bundled example data, offline, in seconds.
+
+    The data are synthetic: an invented LR-1 bench spectrometer in an invented teaching
+    laboratory looking at an Hg+Ar calibration lamp, a helium glow tube with hydrogen and
+    neon traces, and a morning of lamp frames that drift (one file is damaged).
+    """
+    from .demo import run_demo
+
+    result = run_demo(outdir, workers=workers, say=lambda m: click.echo(m, err=True))
+    cal, ident, chk = (result.facts[k] for k in ("calibration", "identification", "check"))
+    lo, hi = cal["wavelength_limits_nm"]
+    click.echo("")
+    click.echo("1. calibration (Hg+Ar lamp)")
+    click.echo(f"   {cal['lines_used']} lines used, RMS {cal['rms_nm'] * 1e3:.2f} pm "
+               f"({cal['rms_pixel']:.3f} px), degree {cal['degree']}, {lo:.1f}-{hi:.1f} nm, "
+               f"{cal['verdict']}")
+    click.echo("2. identification (helium glow tube)")
+    click.echo(f"   {ident['identified']} of {ident['lines']} lines identified "
+               f"({ident['second_order']} second-order image); species present: "
+               f"{', '.join(ident['present'])}; {ident['levels']} excited upper levels")
+    for species, (t, dt) in ident["temperatures"].items():
+        if dt < 0.25 * t:  # the others rest on too few lines to quote
+            click.echo(f"   {species} excitation temperature {t:.0f} ± {dt:.0f} K")
+    click.echo("3. batch check (12 lamp frames)")
+    click.echo(f"   {chk['pass']} pass, {chk['warn']} warn, {chk['fail']} fail, "
+               f"{chk['error']} error; largest shift {chk['max_shift_px']:+.2f} px")
+    for name, status, reasons in chk["not_pass"][:4]:
+        click.echo(f"   {status:5s} {name}: {reasons}")
+    if len(chk["not_pass"]) > 4:
+        click.echo(f"   ... {len(chk['not_pass']) - 4} more in the report")
+    click.echo("")
+    click.echo("files:")
+    for stage, paths in result.files.items():
+        click.echo(f"  {stage}:")
+        for path in paths:
+            click.echo(f"    {path}")
+    click.echo(f"open {outdir}/check/report.html in a browser for the batch report")
