@@ -905,16 +905,58 @@ def _chunks(items: list, size: int) -> Iterator[list]:
         yield items[i : i + size]
 
 
+def _run_chunk_in_worker(items: list[tuple[int, str, str]]):
+    return _run_chunk(_WORKER_TASK, items)
+
+
 def _results_pool(task, items, workers: int, chunksize: int):
-    if workers <= 1:
-        for index, key, path in items:
+    """Results from ``workers`` processes: this one and ``workers - 1`` forked helpers.
+
+    The parent checks exposures too (between collecting the helpers' results), so
+    ``workers=2`` is two processes, not three: the scientific stack is loaded once less.
+    The parent checks the first exposure before the helpers start, so they inherit its
+    imports.
+    """
+    items = list(items)
+    if not items:
+        return
+    first, rest = items[0], items[1:]
+    yield first[0], first[1], task(first[2])
+    if workers <= 1 or not rest:
+        for index, key, path in rest:
             yield index, key, task(path)
         return
+    import collections
     import multiprocessing as mp
 
-    pool = mp.get_context().Pool(workers, initializer=_init_worker, initargs=(task,))
+    chunks = _chunks(rest, chunksize)
+    window = 3 * (workers - 1)
+    pool = mp.get_context().Pool(workers - 1, initializer=_init_worker, initargs=(task,))
+    pending: collections.deque = collections.deque()
+
+    def submit() -> None:
+        while len(pending) < window:
+            chunk = next(chunks, None)
+            if chunk is None:
+                return
+            pending.append(pool.apply_async(_run_chunk_in_worker, (chunk,)))
+
+    def harvest():
+        while pending and pending[0].ready():
+            yield from pending.popleft().get()
+        submit()
+
     try:
-        yield from pool.imap_unordered(_run_one, items, chunksize=chunksize)
+        submit()
+        while True:
+            mine = next(chunks, None)
+            if mine is None:
+                break
+            for index, key, path in mine:
+                yield index, key, task(path)
+                yield from harvest()
+        while pending:
+            yield from pending.popleft().get()
         pool.close()
     except BaseException:
         pool.terminate()

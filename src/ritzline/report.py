@@ -14,7 +14,7 @@ from pathlib import Path
 
 from ._io import atomic_write
 
-__all__ = ["FIGURE_FILES", "report_html", "write_report"]
+__all__ = ["FIGURE_FILES", "report_html", "report_parts", "write_report"]
 
 # figure name -> (file in OUTDIR, caption)
 FIGURE_FILES = {
@@ -132,7 +132,13 @@ def _meta_rows(items: Mapping[str, object]) -> str:
 
 
 def report_html(summary, info: Mapping, figures: Mapping[str, bytes] | None = None) -> str:
-    """The report page as a string.
+    """The report page as a string (see :func:`report_parts`)."""
+    return "\n".join(report_parts(summary, info, figures))
+
+
+def report_parts(summary, info: Mapping, figures: Mapping[str, bytes] | None = None):
+    """The report page as a sequence of HTML fragments, one table row at a time, so a large
+    batch can be written without holding the whole page in memory.
 
     Parameters
     ----------
@@ -201,6 +207,7 @@ def report_html(summary, info: Mapping, figures: Mapping[str, bytes] | None = No
     cols = [name for name, _ in _TABLE_COLUMNS if name in summary.colnames]
     data = {name: summary[name] for name in cols}
     masks = {name: getattr(data[name], "mask", None) for name in cols}
+    yield from parts
     for i in range(len(summary)):
         status = html.escape(str(summary["status"][i]))
         cells = []
@@ -214,11 +221,10 @@ def report_html(summary, info: Mapping, figures: Mapping[str, bytes] | None = No
                 cells.append(f'<td class="t"><span class="{status}">&nbsp;</span> {status}</td>')
             else:
                 cells.append(_cell(name, value))
-        parts.append(f'<tr class="s-{status}">' + "".join(cells) + "</tr>")
-    parts.append("</tbody></table>")
-    parts.append(f"<script>{_JS}</script>")
-    parts.append("</body></html>")
-    return "\n".join(parts)
+        yield f'<tr class="s-{status}">' + "".join(cells) + "</tr>"
+    yield "</tbody></table>"
+    yield f"<script>{_JS}</script>"
+    yield "</body></html>"
 
 
 def write_report(summary, outdir: str | os.PathLike, info: Mapping) -> Path:
@@ -238,8 +244,9 @@ def write_report(summary, outdir: str | os.PathLike, info: Mapping) -> Path:
     )
     plot_check_status(summary, out / FIGURE_FILES["status"][0])
     figures = {name: (out / fname).read_bytes() for name, (fname, _) in FIGURE_FILES.items()}
-    page = report_html(summary, info, figures)
     path = out / "report.html"
     with atomic_write(path, "w", encoding="utf-8") as fh:
-        fh.write(page)
+        for part in report_parts(summary, info, figures):
+            fh.write(part)
+            fh.write("\n")
     return path
