@@ -434,3 +434,14 @@ def test_docstring_examples_run():
 
     result = doctest.testmod(ritzline.identify)
     assert result.attempted > 0 and result.failed == 0
+
+
+def test_a_calibration_off_by_more_than_its_band_is_absorbed_by_the_fitted_correction():
+    # 0.03 nm = 6 times the stated 0.005 nm uncertainty
+    shifted = measured(np.asarray(HG_LINES) + 0.03, HG_FLUX, sigma=0.005)
+    res = identify_lines(lines=shifted, species=["Hg I"], wavelength_range=(240.0, 600.0))
+    assert np.all(np.asarray(res.lines["species"]) == "Hg I")
+    assert res.meta["wavelength_correction_nm"]["offset"] == pytest.approx(0.03, abs=0.003)
+    rigid = identify_lines(lines=shifted, species=["Hg I"], wavelength_range=(240.0, 600.0),
+                           options=IdentifyOptions(fit_shift=False))
+    assert np.all(np.asarray(rigid.lines["species"]) == "")

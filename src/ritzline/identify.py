@@ -78,6 +78,10 @@ class IdentifyOptions:
         Extra wavelength uncertainty (nm) added in quadrature to every line.
     observed_only : bool
         Use only transitions published as observed lines (not every allowed Ritz line).
+    fit_shift : bool
+        Fit a small linear wavelength correction (offset + tilt across the range) common to
+        all lines, with a Gaussian prior of 3 x the median line uncertainty: it absorbs a
+        calibration that moved by more than its stated band.
     n_iter : int
         Iterations of the scale/assignment updates for each species set.
     """
@@ -93,6 +97,7 @@ class IdentifyOptions:
     min_probability: float = 0.5
     systematic_nm: float = 0.0
     observed_only: bool = True
+    fit_shift: bool = True
     n_iter: int = 6
 
 
@@ -449,6 +454,9 @@ class _Model:
     gi: np.ndarray
     z: np.ndarray
     s: np.ndarray
+    dl: np.ndarray  # measured minus hypothesis wavelength per pair (nm)
+    x_line: np.ndarray  # position of each line across the range, -1 .. 1
+    shift_prior: float  # prior sigma (nm) of the wavelength correction terms
     generic: np.ndarray  # log density of each line's flux under "unknown line"
     opts: IdentifyOptions
     siblings: tuple  # CSR (ptr, idx) of same-level first-order groups
@@ -462,6 +470,7 @@ class _Model:
     observed: np.ndarray = None  # per group: expected number of measured lines assigned
     resp: np.ndarray = None  # responsibilities per pair
     resp_u: np.ndarray = None  # per line: P(unknown)
+    shift: np.ndarray = field(default_factory=lambda: np.zeros(2))  # offset, tilt (nm)
 
     @property
     def n_lines(self) -> int:
@@ -553,6 +562,7 @@ class _Model:
         g = self.groups
         gi, li = self.gi, self.li
         lw = _lognorm(self.z, 0.0, 1.0) - np.log(self.s)
+        lw = np.where(np.abs(self.z) < self.opts.window_sigma, lw, -np.inf)
         has_mu = np.isfinite(lnmu[gi])
         tot = np.sqrt(sig[gi] ** 2 + self.lnf_err[li] ** 2)
         lnq = np.where(g.order[gi] == 1, self.lnq[g.species[gi]], self.lnq2)
@@ -577,8 +587,38 @@ class _Model:
         self.observed = np.bincount(self.gi, self.resp, self.groups.species.size)
         return lw, lu, m, w, wu, total, expected
 
+    def update_shift(self):
+        """Weighted least squares of the common wavelength correction, Gaussian prior."""
+        x = self.x_line[self.li]
+        w = self.resp / self.s**2
+        prec = 1.0 / self.shift_prior**2
+        a11 = np.sum(w) + prec
+        a12 = np.sum(w * x)
+        a22 = np.sum(w * x * x) + prec
+        b1 = np.sum(w * self.dl)
+        b2 = np.sum(w * x * self.dl)
+        det = a11 * a22 - a12 * a12
+        self.shift = np.array([(a22 * b1 - a12 * b2) / det, (a11 * b2 - a12 * b1) / det])
+        self.z = (self.dl - self.shift[0] - self.shift[1] * x) / self.s
+
+    def initial_shift(self):
+        """Start the correction at the densest offset of the measured-minus-listed residuals
+        (a kernel density over a grid within the prior), if it clearly beats no offset."""
+        if self.li.size == 0:
+            return
+        grid = np.linspace(-3.0, 3.0, 121) * self.shift_prior
+        zz = (self.dl[None, :] - grid[:, None]) / self.s[None, :]
+        score = np.sum(np.exp(-0.5 * np.minimum(zz**2, 50.0)), axis=1)
+        score = score * np.exp(-0.5 * (grid / (2.0 * self.shift_prior)) ** 2)
+        k = int(np.argmax(score))
+        if score[k] > 1.5 * score[grid.size // 2]:
+            self.shift = np.array([grid[k], 0.0])
+            self.z = (self.dl - self.shift[0]) / self.s
+
     def m_step(self):
         g, o = self.groups, self.opts
+        if o.fit_shift and self.li.size:
+            self.update_shift()
         first = g.order[self.gi] == 1
         prior = np.exp(self.log_prior_group())
         grid = np.linspace(-4.0, 4.0, 81)
@@ -887,14 +927,22 @@ def identify_lines(
     # at the detection limit (so it is a density over detected fluxes)
     generic = _lognorm(lnf, mean_f, sd_f) - log_ndtr((mean_f - ln_lim) / sd_f)
 
-    li, gi, z, s = _pairs(lam, sig, groups.wavelength, groups.sigma, opts.window_sigma)
+    # pairs are collected in a wider window so that a fitted correction can move lines
+    extra = 3.0 if opts.fit_shift else 0.0
+    li, gi, z, s = _pairs(lam, sig, groups.wavelength, groups.sigma, opts.window_sigma + extra)
+    dl = z * s
+    x_line = np.clip(2.0 * (lam - lo) / max(hi - lo, 1e-9) - 1.0, -1.0, 1.0)
+    shift_prior = 3.0 * float(np.median(sig)) if n else 1.0
     n_sp = len(names)
     model = _Model(
         groups=groups, n_species=n_sp, lnf=lnf, lnf_err=lnf_err, ln_lim=ln_lim,
-        width=max(hi - lo, 1e-3), li=li, gi=gi, z=z, s=s, generic=generic, opts=opts,
+        width=max(hi - lo, 1e-3), li=li, gi=gi, z=z, s=s, dl=dl, x_line=x_line,
+        shift_prior=shift_prior, generic=generic, opts=opts,
         siblings=_siblings(groups),
     )
     model.active = np.array([bool(np.any(groups.species == k)) for k in range(n_sp)])
+    if opts.fit_shift:
+        model.initial_shift()
     model.second_active = bool(np.any(groups.order == 2))
     model.lnk = _initial_scales(model)
     model.lnq = np.full(n_sp, np.log(0.3))
@@ -952,6 +1000,11 @@ def identify_lines(
         "second_order_llr": None if not np.isfinite(llr_second) else float(llr_second),
         "second_order_efficiency": float(np.exp(model.ln_eta)) if model.second_active else None,
         "unknown_line_density_per_nm": float(np.exp(model.ln_rho)),
+        "wavelength_correction_nm": {
+            "offset": float(model.shift[0]), "tilt": float(model.shift[1]),
+            "note": "fitted correction (offset + tilt x, x = -1 .. 1 across the range) "
+                    "subtracted from the measured wavelengths before matching",
+        },
         "options": {k: getattr(opts, k) for k in opts.__dataclass_fields__},
     }
     for t in (lines_out, levels_out, species_out):
