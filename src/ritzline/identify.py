@@ -740,6 +740,126 @@ def _siblings(groups: _Groups):
     return np.cumsum(ptr), dst
 
 
+@dataclass(frozen=True)
+class _LineArrays:
+    """The measured lines as float arrays, with their total wavelength uncertainty."""
+
+    lam: np.ndarray
+    sig: np.ndarray
+    flux: np.ndarray
+    flux_err: np.ndarray
+    snr: np.ndarray
+    flags: np.ndarray
+    fwhm_nm: float
+    wavelength_range: tuple[float, float]
+
+
+def _line_arrays(table, solution, calibration_err, fwhm_nm, wavelength_range, opts):
+    """Arrays of the measured line table; the total uncertainty per line combines centroid,
+    calibration band, a systematic floor and, for flagged blends, a fraction of the FWHM."""
+    n = len(table)
+    lam = _column(table, "wavelength")
+    if n and not np.all(np.isfinite(lam)):
+        raise RitzlineError("some measured lines have no finite wavelength")
+    lam_err = np.nan_to_num(_column(table, "wavelength_err"), nan=0.0)
+    flux = _column(table, "flux")
+    flux_err = _column(table, "flux_err")
+    snr = _column(table, "snr")
+    if not np.any(np.isfinite(flux_err)):
+        flux_err = np.where(np.isfinite(snr) & (snr > 0), np.abs(flux) / snr, np.nan)
+    flags = _column(table, "flags", "", str) if "flags" in table.colnames else np.full(n, "")
+    if wavelength_range is None:
+        if n == 0:
+            raise RitzlineError("no lines to identify and no wavelength range given")
+        pad = 0.02 * max(np.ptp(lam), 1.0)
+        wavelength_range = (float(lam.min() - pad), float(lam.max() + pad))
+    lo, hi = (float(min(wavelength_range)), float(max(wavelength_range)))
+    blended = np.char.find(flags.astype(str), "blend") >= 0
+    if fwhm_nm is None:
+        fw = _column(table, "fwhm")
+        clean = np.isfinite(fw) & (fw > 0) & ~blended
+        if clean.any():
+            fwhm_nm = float(np.median(fw[clean]))
+        elif solution is not None and getattr(solution, "fwhm_pixel", None):
+            mid = np.nanmedian(_column(table, "pixel")) if "pixel" in table.colnames else 0.0
+            fwhm_nm = float(solution.fwhm_pixel * abs(solution.dispersion(mid)))
+        elif n == 0:
+            fwhm_nm = 1.0  # nothing to group; any value will do
+        else:
+            raise RitzlineError(
+                "the instrument resolution is unknown: the line table has no fwhm column; "
+                "pass fwhm_nm= (FWHM in nm)"
+            )
+    cal = np.zeros(n)
+    # peaks.attach_wavelengths already folds the solution's band into wavelength_err
+    err_doc = table["wavelength_err"].description if "wavelength_err" in table.colnames else ""
+    band_included = "solution band" in str(err_doc or "")
+    if solution is not None and not band_included and "pixel" in table.colnames:
+        cal = np.asarray(solution.wavelength_err(_column(table, "pixel")), float)
+    elif callable(calibration_err):
+        cal = np.asarray(calibration_err(lam), float) * np.ones(n)
+    elif calibration_err is not None:
+        cal = np.full(n, float(calibration_err))
+    sig = np.sqrt(lam_err**2 + cal**2 + opts.systematic_nm**2 + (blended * 0.15 * fwhm_nm) ** 2)
+    sig = np.maximum(sig, 1e-4 * fwhm_nm + 1e-6)
+    return _LineArrays(lam=lam, sig=sig, flux=flux, flux_err=flux_err, snr=snr, flags=flags,
+                       fwhm_nm=float(fwhm_nm), wavelength_range=(lo, hi))
+
+
+def _flux_terms(m: _LineArrays, corr: np.ndarray):
+    """ln flux and its error per line, the ln detection limit, and the "unknown line" flux
+    density (a broad fit to all lines, cut at the detection limit)."""
+    n = m.lam.size
+    fl = np.where(np.isfinite(m.flux) & (m.flux > 0), m.flux, np.nan) / corr
+    fe = np.where(np.isfinite(m.flux_err) & (m.flux_err > 0), m.flux_err, np.nan) / corr
+    good_f = np.isfinite(fl)
+    floor = np.nanmin(fl) if good_f.any() else 1.0
+    lnf = np.log(np.where(good_f, fl, floor))
+    lnf_err = np.where(good_f & np.isfinite(fe), fe / np.where(good_f, fl, 1.0), 2.0)
+    # a saturated line's flux says little: make it (nearly) uninformative
+    saturated = np.char.find(m.flags.astype(str), "saturated") >= 0
+    lnf_err = np.where(saturated, 2.0, np.minimum(lnf_err, 2.0))
+    if good_f.any() and np.isfinite(fe).any():
+        noise = np.nanpercentile(fe, 10)
+        snr_min = np.nanpercentile(m.snr, 2) if np.isfinite(m.snr).any() else 5.0
+        ln_lim = float(np.log(max(noise * max(snr_min, 3.0), 1e-300)))
+    else:
+        ln_lim = float(np.min(lnf)) if n else 0.0
+    mean_f = float(np.mean(lnf)) if n else 0.0
+    sd_f = max(float(np.std(lnf)) if n > 1 else 1.0, 0.7)
+    generic = _lognorm(lnf, mean_f, sd_f) - log_ndtr((mean_f - ln_lim) / sd_f)
+    return lnf, lnf_err, ln_lim, generic
+
+
+def _select_species(model: _Model, opts: IdentifyOptions):
+    """Backward elimination: drop the weakest component (a species, or the second-order
+    images) while its log-likelihood ratio is below the threshold; refit after each drop."""
+    n_sp = model.n_species
+    llr_final = np.full(n_sp, np.nan)
+    llr_second = np.nan
+    while True:
+        model.fit(opts.n_iter)
+        llr, llr2, _ = model.evidence()
+        comps = [(llr[k], k) for k in np.flatnonzero(model.active)]
+        if model.second_active:
+            comps.append((llr2, -1))
+        if not comps:
+            break
+        worst, k = min(comps)
+        if worst >= opts.species_threshold:
+            llr_final[model.active] = llr[model.active]
+            llr_second = llr2 if model.second_active else llr_second
+            break
+        if k == -1:
+            model.second_active = False
+            llr_second = llr2
+        else:
+            model.active[k] = False
+            llr_final[k] = llr[k]
+    model.fit(2)
+    return llr_final, llr_second
+
+
 # ---- public entry point ------------------------------------------------------------------
 
 
@@ -790,7 +910,8 @@ def identify_lines(
     wavelength_range : (float, float), optional
         Spectral range covered (nm); default: the spectrum axis, else the lines' extent.
     fwhm_nm : float, optional
-        Instrument resolution (FWHM, nm); default: the median measured FWHM.
+        Instrument resolution (FWHM, nm); default: the median FWHM of the unblended measured
+        lines, else the solution's LSF width; required for a line table without ``fwhm``.
     calibration_err : float or callable, optional
         Calibration uncertainty (nm) for a ``lines`` table without a solution: a number, or
         a function of wavelength.
@@ -829,7 +950,7 @@ def identify_lines(
     ...                "flux": [4e4, 4e4, 8e4, 6e4, 4e4, 4e4], "flux_err": [250.0] * 6,
     ...                "snr": [160.0, 160.0, 320.0, 240.0, 160.0, 160.0]})
     >>> ids = identify_lines(lines=lines, species=["Ne", "Ar"],
-    ...                      wavelength_range=(632.0, 661.0))
+    ...                      wavelength_range=(632.0, 661.0), fwhm_nm=0.1)
     >>> [f"{s} {w:.2f}" for s, w in ids.lines["species", "ref_wavelength"]][:2]
     ['Ne I 633.44', 'Ne I 638.30']
     >>> ids.present
@@ -849,49 +970,12 @@ def identify_lines(
     names = _species_list(species, custom=candidates is not None)
     table, axis_range = _measured_lines(spectrum, lines, solution, find_kw)
     n = len(table)
-    lam = _column(table, "wavelength")
-    if n and not np.all(np.isfinite(lam)):
-        raise RitzlineError("some measured lines have no finite wavelength")
-    lam_err = np.nan_to_num(_column(table, "wavelength_err"), nan=0.0)
-    flux = _column(table, "flux")
-    flux_err = _column(table, "flux_err")
-    snr = _column(table, "snr")
-    if not np.any(np.isfinite(flux_err)):
-        flux_err = np.where(np.isfinite(snr) & (snr > 0), np.abs(flux) / snr, np.nan)
-    flags_in = _column(table, "flags", "", str) if "flags" in table.colnames else np.full(n, "")
-
     resp = _response_function(response)
     if wavelength_range is None:
         wavelength_range = axis_range
-    if wavelength_range is None:
-        if n == 0:
-            raise RitzlineError("no lines to identify and no wavelength range given")
-        pad = 0.02 * max(np.ptp(lam), 1.0)
-        wavelength_range = (float(lam.min() - pad), float(lam.max() + pad))
-    lo, hi = (float(min(wavelength_range)), float(max(wavelength_range)))
-    if fwhm_nm is None:
-        fw = _column(table, "fwhm")
-        clean = np.isfinite(fw) & (fw > 0) & (np.char.find(flags_in.astype(str), "blend") < 0)
-        if clean.any():
-            fwhm_nm = float(np.median(fw[clean]))
-        elif solution is not None and getattr(solution, "fwhm_pixel", None):
-            mid = np.nanmedian(_column(table, "pixel")) if "pixel" in table.colnames else 0.0
-            fwhm_nm = float(solution.fwhm_pixel * abs(solution.dispersion(mid)))
-        else:
-            fwhm_nm = 0.1 * max(float(np.median(np.diff(np.sort(lam)))) if n > 1 else 1.0, 0.01)
-    cal = np.zeros(n)
-    # peaks.attach_wavelengths already folds the solution's band into wavelength_err
-    err_doc = table["wavelength_err"].description if "wavelength_err" in table.colnames else ""
-    band_included = "solution band" in str(err_doc or "")
-    if solution is not None and not band_included and "pixel" in table.colnames:
-        cal = np.asarray(solution.wavelength_err(_column(table, "pixel")), float)
-    elif callable(calibration_err):
-        cal = np.asarray(calibration_err(lam), float) * np.ones(n)
-    elif calibration_err is not None:
-        cal = np.full(n, float(calibration_err))
-    blended = np.char.find(flags_in.astype(str), "blend") >= 0
-    sig = np.sqrt(lam_err**2 + cal**2 + opts.systematic_nm**2 + (blended * 0.15 * fwhm_nm) ** 2)
-    sig = np.maximum(sig, 1e-4 * fwhm_nm + 1e-6)
+    m = _line_arrays(table, solution, calibration_err, fwhm_nm, wavelength_range, opts)
+    lam, sig, flux, snr, flags_in, fwhm_nm = m.lam, m.sig, m.flux, m.snr, m.flags, m.fwhm_nm
+    lo, hi = m.wavelength_range
 
     if candidates is None:
         candidates = _shipped_transitions(tuple(names), medium, opts.observed_only)
@@ -907,25 +991,7 @@ def identify_lines(
                 "the response does not cover every measured line "
                 f"({lo:.1f}–{hi:.1f} nm); extend it over the whole spectrum"
             )
-    fl = np.where(np.isfinite(flux) & (flux > 0), flux, np.nan) / corr
-    fe = np.where(np.isfinite(flux_err) & (flux_err > 0), flux_err, np.nan) / corr
-    good_f = np.isfinite(fl)
-    floor = np.nanmin(fl) if good_f.any() else 1.0
-    lnf = np.log(np.where(good_f, fl, floor))
-    lnf_err = np.where(good_f & np.isfinite(fe), fe / np.where(good_f, fl, 1.0), 2.0)
-    saturated = np.char.find(flags_in.astype(str), "saturated") >= 0
-    lnf_err = np.where(saturated, 2.0, np.minimum(lnf_err, 2.0))
-    if good_f.any() and np.isfinite(fe).any():
-        noise = np.nanpercentile(fe, 10)
-        snr_min = np.nanpercentile(snr, 2) if np.isfinite(snr).any() else 5.0
-        ln_lim = float(np.log(max(noise * max(snr_min, 3.0), 1e-300)))
-    else:
-        ln_lim = float(np.min(lnf)) if n else 0.0
-    mean_f = float(np.mean(lnf)) if n else 0.0
-    sd_f = max(float(np.std(lnf)) if n > 1 else 1.0, 0.7)
-    # flux density of a line that belongs to nothing listed: a broad fit to all lines, cut
-    # at the detection limit (so it is a density over detected fluxes)
-    generic = _lognorm(lnf, mean_f, sd_f) - log_ndtr((mean_f - ln_lim) / sd_f)
+    lnf, lnf_err, ln_lim, generic = _flux_terms(m, corr)
 
     # pairs are collected in a wider window so that a fitted correction can move lines
     extra = 3.0 if opts.fit_shift else 0.0
@@ -948,31 +1014,11 @@ def identify_lines(
     model.lnq = np.full(n_sp, np.log(0.3))
     model.ln_rho = float(np.log(max(opts.unknown_fraction * n, 0.5) / model.width))
 
-    llr_final = np.full(n_sp, np.nan)
-    llr_second = np.nan
     if n:
-        while True:
-            model.fit(opts.n_iter)
-            llr, llr2, _ = model.evidence()
-            comps = [(llr[k], k) for k in np.flatnonzero(model.active)]
-            if model.second_active:
-                comps.append((llr2, -1))
-            if not comps:
-                break
-            worst, k = min(comps)
-            if worst >= opts.species_threshold:
-                llr_final[model.active] = llr[model.active]
-                llr_second = llr2 if model.second_active else llr_second
-                break
-            if k == -1:
-                model.second_active = False
-                llr_second = llr2
-            else:
-                model.active[k] = False
-                llr_final[k] = llr[k]
-        model.fit(2)
+        llr_final, llr_second = _select_species(model, opts)
     else:
         model.active[:] = False
+        llr_final, llr_second = np.full(n_sp, np.nan), np.nan
 
     lines_out = _line_table(table, model, cand, names, lam, sig, flux, snr, flags_in, opts)
     if resp is not None:
