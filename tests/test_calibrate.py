@@ -142,7 +142,7 @@ def test_random_lines_are_refused():
     rng = np.random.default_rng(11)
     fake = {"wavelength": rng.uniform(335.0, 925.0, 35), "intensity": np.ones(35)}
     counts, _ = lamp_exposure(ins, fake, rng, missing=(0, 0), extra=(0, 0))
-    with pytest.raises(CalibrationError, match=r"Wrong lamp|chance"):
+    with pytest.raises(CalibrationError, match="lines detected"):
         calibrate(counts, "Ne")
 
 
