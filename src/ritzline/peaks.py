@@ -25,7 +25,7 @@ _DEFAULT_FWHM = 2.5  # px, used only when no line is bright enough to measure th
 _GROUP_SEPARATION = 2.0  # lines closer than this many FWHM are fitted jointly
 _WINDOW_HALF = 3.0  # fit window half-width beyond the outer lines, in FWHM
 _MAX_COMPONENTS = 8  # a group larger than this is split at its widest gaps
-_MAX_ITER = 30
+_MAX_ITER = 20
 _SATURATION_MARGIN = 0.97
 
 
@@ -387,7 +387,7 @@ def _fit_batch(groups, state, ctx, noise, neighbours_model):
     # Parameters that are not free: sigma when fixed (none by default, saturated lines keep it).
     frozen = np.zeros((n_g, n_par), bool)
     frozen[:, 2::3] = fixed_sigma
-    for _ in range(_MAX_ITER):
+    for it in range(_MAX_ITER):
         wj = jac * w[:, None, :]
         hess = np.einsum("gpl,gql->gpq", wj, jac)
         grad = np.einsum("gpl,gl->gp", wj, resid)
@@ -411,7 +411,9 @@ def _fit_batch(groups, state, ctx, noise, neighbours_model):
         lam = np.where(better, np.maximum(lam / 5.0, 1e-7), np.minimum(lam * 4.0, 1e7))
         # Converged when the Gauss-Newton step would lower chi2 by a negligible amount.
         predicted = np.einsum("gp,gp->g", step, grad)
-        done = active & ((predicted < 1e-2) | (lam >= 1e7))
+        # Ill-conditioned fits (weak candidates with a flat width direction) creep along a
+        # valley; after a few steps, a possible gain below one unit of chi2 is good enough.
+        done = active & ((predicted < 1e-2) | ((it >= 5) & (predicted < 1.0)) | (lam >= 1e7))
         bsel = better[:, None]
         b0 = np.where(better, nb0, b0)
         c = np.where(bsel, nc, c)
@@ -523,11 +525,22 @@ def _lines_model(state, n, keep=None):
     return np.bincount(pix[ok], weights=(f[:, None] * frac)[ok], minlength=n)
 
 
-def _fit_all(state, ctx, noise):
-    """Fit every component (grouped jointly), other lines' models held fixed."""
+def _fit_all(state, ctx, noise, near=None):
+    """Fit every component (grouped jointly), other lines' models held fixed.
+
+    With ``near`` (pixel positions), only the groups within reach of those are refitted.
+    """
     everything = _lines_model(state, ctx.n)
     diag = []
-    for groups in _make_groups(state.centre, ctx.sigma_lsf * FWHM_PER_SIGMA, ctx.n):
+    fwhm = ctx.sigma_lsf * FWHM_PER_SIGMA
+    for groups in _make_groups(state.centre, fwhm, ctx.n):
+        if near is not None:
+            reach = (_WINDOW_HALF + _GROUP_SEPARATION) * fwhm + 1.0
+            hit = ((near[None, :] > groups.lo[:, None] - reach)
+                   & (near[None, :] < groups.hi[:, None] + reach)).any(axis=1)
+            if not hit.any():
+                continue
+            groups = _Groups(member=groups.member[hit], lo=groups.lo[hit], hi=groups.hi[hit])
         diag.append(_fit_batch(groups, state, ctx, noise, everything))
     return diag
 
@@ -550,10 +563,14 @@ def _reestimate_slope(noise, diag):
     e2 = (x_res * x_res / np.clip(1.0 - lev, 0.2, 1.0))[bright]
     delta = delta[bright]
     median_chi2_1 = 0.45493642311957283  # median of chi-square, 1 dof (common practice)
-    trial = noise.b * np.geomspace(0.05, 20.0, 121)
-    stat = np.median(e2[None, :] / (noise.a + trial[:, None] * delta[None, :]), axis=1)
-    # stat decreases with b: take the crossing of the median value.
-    j = int(np.clip(np.searchsorted(-stat, -median_chi2_1), 1, trial.size - 1))
+    # stat(b) decreases with b: bracket its crossing of the median on a coarse grid, then on
+    # a fine one inside the bracket.
+    lo_f, hi_f = 0.05, 20.0
+    for n_grid in (17, 17):
+        trial = noise.b * np.geomspace(lo_f, hi_f, n_grid)
+        stat = np.median(e2[None, :] / (noise.a + trial[:, None] * delta[None, :]), axis=1)
+        j = int(np.clip(np.searchsorted(-stat, -median_chi2_1), 1, trial.size - 1))
+        lo_f, hi_f = trial[j - 1] / noise.b, trial[j] / noise.b
     t0, t1, s0, s1 = trial[j - 1], trial[j], stat[j - 1], stat[j]
     b = t0 + (t1 - t0) * (s0 - median_chi2_1) / (s0 - s1) if s0 != s1 else t0
     return _Noise(a=noise.a, b=float(max(b, 0.0)), ref=noise.ref, method=noise.method)
@@ -589,14 +606,17 @@ _COLUMNS = {
 
 
 def _build_table(cols, flags, meta):
-    from astropy.table import Column, Table
+    from astropy.table import Table
 
-    t = Table(meta=meta)
-    for name, (unit, desc) in _COLUMNS.items():
-        t[name] = Column(np.asarray(cols[name], float), unit=unit or None, description=desc)
-    t["flags"] = Column(np.asarray(flags, dtype=str), description=(
-        "comma-separated: saturated, blended, blend_suspect, edge; empty when clean"))
-    return t
+    names = [*_COLUMNS, "flags"]
+    data = [np.asarray(cols[name], float) for name in _COLUMNS]
+    data.append(np.asarray(flags, dtype=str))
+    units = [unit or None for unit, _ in _COLUMNS.values()] + [None]
+    descriptions = [desc for _, desc in _COLUMNS.values()]
+    descriptions.append("comma-separated: saturated, blended, blend_suspect, edge; "
+                        "empty when clean")
+    return Table(data, names=names, units=units, descriptions=descriptions, meta=meta,
+                 copy=False)
 
 
 class _AxisSolution:
@@ -888,11 +908,12 @@ def find_lines(
     diag = _fit_all(state, ctx, noise)
     if gain is None:
         noise = _reestimate_slope(noise, diag)
-    before = state
+    before = state.centre
     state, rejected = _prune(state, ctx, fwhm, min_snr, rejected, final=True)
-    if state.centre.size and state.centre.size < before.centre.size:
-        # Something was dropped: refit so its neighbours no longer share flux with it.
-        diag = _fit_all(state, ctx, noise)
+    if state.centre.size and state.centre.size < before.size:
+        # Something was dropped: refit its neighbours so they no longer share flux with it.
+        gone = np.setdiff1d(before, state.centre)
+        _fit_all(state, ctx, noise, near=gone)
         state, rejected = _prune(state, ctx, fwhm, min_snr, rejected, final=True)
 
     # LSF estimate from the clean, isolated, bright lines.
