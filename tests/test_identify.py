@@ -369,8 +369,9 @@ def test_a_wavelength_axis_spectrum_is_measured_and_identified():
 
 @pytest.fixture(scope="module")
 def demo_solution(tmp_path_factory):
-    from ritzline import calibrate, read_spectrum
+    from ritzline import read_spectrum
     from ritzline._resources import data_path
+    from ritzline.calibrate import calibrate
 
     lamp_path = data_path("examples", "hgar_lamp.csv")
     sol = calibrate(read_spectrum(lamp_path), lamps=("Hg", "Ar"))
