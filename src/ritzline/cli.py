@@ -295,6 +295,100 @@ def transitions_command(
 
 # ---- peaks -----------------------------------------------------------------------------
 
+
+def _peaks_print(lines) -> None:
+    from rich.console import Console
+    from rich.table import Table as RichTable
+
+    wl = "wavelength" in lines.colnames
+    tab = RichTable(box=None, header_style="bold", pad_edge=False)
+    heads = ["#", "pixel", "± px"] + (["λ nm", "± nm"] if wl else []) + [
+        "FWHM px", "flux", "± flux", "SNR", "flags"]
+    for h in heads:
+        tab.add_column(h, justify="left" if h == "flags" else "right")
+    for i, row in enumerate(lines, 1):
+        cells = [str(i), f"{row['pixel']:.3f}", f"{row['pixel_err']:.3f}"]
+        if wl:
+            cells += [f"{row['wavelength']:.4f}", f"{row['wavelength_err']:.4f}"]
+        cells += [f"{row['fwhm_pixel']:.2f}", f"{row['flux']:.4g}", f"{row['flux_err']:.2g}",
+                  f"{row['snr']:.1f}", str(row["flags"])]
+        tab.add_row(*cells)
+    Console(highlight=False, soft_wrap=True).print(tab)
+    meta = lines.meta
+    noise = meta.get("noise_model", {})
+    gain = noise.get("gain")
+    rejected = ", ".join(f"{k} {v}" for k, v in meta.get("rejected", {}).items() if v)
+    summary = f"{len(lines)} lines"
+    if meta.get("lsf_fwhm_pixel"):
+        summary += f"; LSF FWHM {meta['lsf_fwhm_pixel']:.3f} px"
+    if gain:
+        summary += (f"; gain {gain:.3g} e-/ADU, read noise {noise.get('read_noise', 0.0):.3g}"
+                    f" ADU ({noise.get('method', '?')})")
+    click.echo(summary)
+    if rejected:
+        click.echo(f"rejected candidates: {rejected}")
+
+
+@main.command("peaks")
+@click.argument("file", type=click.Path(exists=True, dir_okay=False))
+@click.option("--solution", "solution_path", type=click.Path(exists=True, dir_okay=False),
+              default=None, help="Wavelength solution (JSON) to add wavelengths to the lines.")
+@click.option("--dark", "dark_path", type=click.Path(exists=True, dir_okay=False),
+              default=None, help="Dark/background exposure of the same detector to subtract.")
+@click.option("--min-snr", type=click.FloatRange(min=0, min_open=True), default=5.0,
+              show_default=True, help="Report lines whose signal-to-noise reaches this.")
+@click.option("--fwhm", "fwhm_guess", type=click.FloatRange(min=0, min_open=True),
+              default=None, help="Line-spread FWHM in pixels (default: measured).")
+@click.option("--saturation", type=float, default=None,
+              help="Saturation level in ADU (default: from the file or detected).")
+@click.option("--gain", type=click.FloatRange(min=0, min_open=True), default=None,
+              help="Detector gain in e-/ADU (default: estimated).")
+@click.option("--read-noise", type=click.FloatRange(min=0), default=None,
+              help="Read noise in ADU (used with --gain).")
+@click.option("--column", default=None, help="Counts column of a table file.")
+@click.option("-o", "--output", type=click.Path(dir_okay=False), default=None,
+              help="Write the line table (ECSV).")
+@click.option("--plot", "plot_path", type=click.Path(dir_okay=False), default=None,
+              help="Draw the spectrum with the lines marked (PNG).")
+@handle_errors
+def peaks_cmd(file, solution_path, dark_path, min_snr, fwhm_guess, saturation, gain,
+              read_noise, column, output, plot_path):
+    """Find the emission lines of FILE: centroids, widths, fluxes and their errors."""
+    import warnings
+
+    from ._io import write_table
+    from .peaks import attach_wavelengths, find_lines
+    from .spectrum import read_spectrum
+
+    spectrum = read_spectrum(file, column=column, saturation=saturation)
+    dark = read_spectrum(dark_path, column=column) if dark_path else None
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        lines = find_lines(spectrum, min_snr=min_snr, fwhm_guess=fwhm_guess,
+                           saturation=saturation, gain=gain, read_noise=read_noise, dark=dark)
+    for w in caught:
+        click.echo(f"warning: {w.message}", err=True)
+    if solution_path:
+        from .calibrate import Solution
+
+        lines = attach_wavelengths(lines, Solution.load(solution_path))
+    lines.meta["input"] = str(file)
+    _peaks_print(lines)
+    if output:
+        write_table(lines, output)
+        click.echo(f"lines written to {output}")
+    if plot_path:
+        from .peaks import line_background
+        from .plots import plot_peaks
+        from .spectrum import spectrum_arrays
+
+        arr = spectrum_arrays(spectrum)
+        counts = arr.counts - spectrum_arrays(dark).counts if dark is not None else arr.counts
+        plot_peaks(counts, lines, plot_path,
+                   background=line_background(spectrum, lines, dark=dark))
+        click.echo(f"plot written to {plot_path}")
+
+
 # ---- calibrate -------------------------------------------------------------------------
 
 

@@ -18,7 +18,7 @@ from .errors import RitzlineError, SpectrumFormatError
 from .spectrum import spectrum_arrays
 from .synthetic import FWHM_PER_SIGMA
 
-__all__ = ["attach_wavelengths", "centroid_crlb", "find_lines", "line_crlb"]
+__all__ = ["attach_wavelengths", "centroid_crlb", "find_lines", "line_background", "line_crlb"]
 
 _SQRT2PI = np.sqrt(2.0 * np.pi)
 _DEFAULT_FWHM = 2.5  # px, used only when no line is bright enough to measure the LSF
@@ -26,6 +26,7 @@ _GROUP_SEPARATION = 2.0  # lines closer than this many FWHM are fitted jointly
 _WINDOW_HALF = 3.0  # fit window half-width beyond the outer lines, in FWHM
 _MAX_COMPONENTS = 8  # a group larger than this is split at its widest gaps
 _MAX_ITER = 20
+_MAX_WIDTH = 3.5  # components wider than this many LSF FWHM are rejected
 _SATURATION_MARGIN = 0.97
 
 
@@ -827,7 +828,8 @@ def find_lines(
     fwhm_for_spikes = fwhm or _DEFAULT_FWHM
     spikes = _spike_pixels(excess, noise.variance(bg + np.maximum(excess, 0)), ok,
                            min(fwhm_for_spikes, 2.0) if fwhm is None else fwhm, min_snr)
-    rejected = {"spike": int(np.count_nonzero(spikes)), "too_narrow": 0, "below_snr": 0,
+    rejected = {"spike": int(np.count_nonzero(spikes)), "too_narrow": 0, "too_wide": 0,
+                "below_snr": 0,
                 "not_converged": 0, "duplicate": 0, "outside": 0}
     ok &= ~spikes
 
@@ -1012,8 +1014,10 @@ def _prune(state, ctx, fwhm, snr_cut, rejected, *, final):
     fw_err = FWHM_PER_SIGMA * state.sigma_err
     outside = (state.centre < -0.5) | (state.centre > ctx.n - 0.5) | ~np.isfinite(state.centre)
     narrow = (fw < 0.5 * fwhm) & ((0.5 * fwhm - fw) > 2.0 * fw_err) & ~outside
-    weak = (state.snr < snr_cut) & ~outside & ~narrow
-    drop = outside | narrow | weak
+    # Far wider than the LSF: a background wiggle or a fit gone astray, not a line.
+    wide = (fw > _MAX_WIDTH * fwhm) & ~outside & ~narrow
+    weak = (state.snr < snr_cut) & ~outside & ~narrow & ~wide
+    drop = outside | narrow | wide | weak
     # Duplicates: two components within 0.6 FWHM; keep the brighter.
     order = np.argsort(state.centre)
     c = state.centre[order]
@@ -1027,6 +1031,7 @@ def _prune(state, ctx, fwhm, snr_cut, rejected, *, final):
     if final:
         rejected["outside"] += int(np.count_nonzero(outside))
         rejected["too_narrow"] += int(np.count_nonzero(narrow))
+        rejected["too_wide"] += int(np.count_nonzero(wide))
         rejected["below_snr"] += int(np.count_nonzero(weak))
         rejected["duplicate"] += int(np.count_nonzero(dup))
         # A fit that did not converge keeps its last values (flagged by a large chi2); it is
@@ -1075,3 +1080,47 @@ def _table_from_state(state, ctx, fwhm, clipped, meta, n):
     meta["n_lines"] = int(c.size)
     meta["error_scaling"] = "inverse Fisher matrix; x sqrt(chi2/dof) where p(chi2) < 0.01"
     return _build_table(cols, flags[order] if flags.size else np.zeros(0, "U1"), meta)
+
+
+def line_background(spectrum, lines, *, dark=None) -> np.ndarray:
+    """The background under a spectrum's lines, for display: counts minus the fitted lines.
+
+    A block median (blocks of 8 LSF FWHM, from ``lines.meta``) of the (dark-subtracted)
+    counts minus the fitted profiles of ``lines``, interpolated between blocks, as
+    :func:`find_lines` estimates it.  Masked and saturated samples are left out.
+
+    Parameters
+    ----------
+    spectrum : specutils.Spectrum or array
+        The spectrum ``lines`` came from.
+    lines : astropy.table.Table
+        The table :func:`find_lines` returned for it.
+    dark : specutils.Spectrum or array, optional
+        The same dark frame given to :func:`find_lines`.
+
+    Returns
+    -------
+    ndarray
+        Background counts per pixel (ADU).
+    """
+    arr = spectrum_arrays(spectrum)
+    counts = np.array(arr.counts, float)
+    ok = ~np.asarray(arr.mask, bool)
+    if dark is not None:
+        d_counts, d_mask = _as_counts(dark, counts.size, "dark frame")
+        counts = counts - d_counts
+        ok &= ~d_mask
+    sat = lines.meta.get("saturation")
+    if sat is not None:
+        ok &= np.asarray(arr.counts, float) < _SATURATION_MARGIN * float(sat)
+    counts = np.where(ok, counts, 0.0)
+    fwhm = float(lines.meta.get("lsf_fwhm_pixel") or _DEFAULT_FWHM)
+    if len(lines):
+        fitted = np.asarray([("saturated" not in f) for f in lines["flags"]], bool)
+        sig = np.asarray(lines["fwhm_pixel"], float)[fitted] / FWHM_PER_SIGMA
+        st = _State(np.asarray(lines["pixel"], float)[fitted], sig,
+                    np.asarray(lines["flux"], float)[fitted], np.zeros(sig.size, bool))
+        counts = counts - _lines_model(st, counts.size)
+    if not ok.any():
+        return np.zeros(counts.size)
+    return _block_background(counts, ok, max(12.0, 8.0 * fwhm), q=None)

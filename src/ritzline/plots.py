@@ -34,6 +34,65 @@ def save_figure(fig, path, *, dpi: int = 110) -> Path:
 
 # ---- peaks -----------------------------------------------------------------------------
 
+_PEAK_FLAG_COLOURS = (  # first matching flag wins
+    ("saturated", "tab:red", "saturated"),
+    ("blend_suspect", "tab:purple", "blend suspect"),
+    ("blended", "tab:orange", "blended"),
+    ("edge", "0.5", "edge"),
+    ("", "tab:green", "clean"),
+)
+
+
+def plot_peaks(counts, lines, path, *, background=None, title: str | None = None) -> Path:
+    """The spectrum with every found line marked, and the estimated background.
+
+    Each line gets a centroid tick (from the background up to its peak) and a horizontal bar
+    one FWHM wide at half its height, coloured by its flags (saturated, blend suspect,
+    blended, edge, clean).  The counts axis is logarithmic (symlog) when the spectrum spans
+    more than two decades.  Returns the path.
+    """
+    import numpy as np
+
+    y = np.asarray(counts, float)
+    x = np.arange(y.size)
+    fig, ax = new_figure(figsize=(12, 4.5))
+    ax.plot(x, y, drawstyle="steps-mid", lw=0.7, color="0.2", label="counts")
+    if background is not None:
+        ax.plot(x, background, lw=1.0, ls="--", color="tab:blue", label="background")
+    if len(lines):
+        p = np.asarray(lines["pixel"], float)
+        fw = np.asarray(lines["fwhm_pixel"], float)
+        bg = np.asarray(lines["background"], float)
+        amp = np.asarray(lines["amplitude"], float)
+        top = np.interp(p, x, y)
+        peak = np.where(np.isfinite(amp), bg + amp, top)
+        flags = np.asarray(lines["flags"], str)
+        used = np.zeros(p.size, bool)
+        for word, colour, label in _PEAK_FLAG_COLOURS:
+            sel = ~used & (np.char.find(flags, word) >= 0 if word else ~used)
+            used |= sel
+            if not sel.any():
+                continue
+            ax.vlines(p[sel], bg[sel], peak[sel], colors=colour, lw=1.2,
+                      label=f"{label} ({int(sel.sum())})")
+            half = 0.5 * (bg[sel] + peak[sel])
+            ax.hlines(half, p[sel] - fw[sel] / 2, p[sel] + fw[sel] / 2, colors=colour, lw=2.5)
+    finite = y[np.isfinite(y)]
+    if finite.size and np.nanmax(finite) > 100 * max(np.nanmedian(np.abs(finite)), 1.0):
+        ax.set_yscale("symlog", linthresh=max(np.nanmedian(np.abs(finite)), 1.0))
+    ax.set_xlim(-0.5, y.size - 0.5)
+    ax.set_xlabel("pixel")
+    ax.set_ylabel("counts (ADU)")
+    meta = getattr(lines, "meta", {}) or {}
+    fwhm = meta.get("lsf_fwhm_pixel")
+    ax.set_title(title or (
+        f"{len(lines)} lines" + (f", LSF FWHM {fwhm:.2f} px" if fwhm else "")
+        + (f", min SNR {meta['min_snr']:g}" if "min_snr" in meta else "")
+    ))
+    ax.legend(loc="upper right", fontsize=8, ncols=2)
+    return save_figure(fig, path)
+
+
 # ---- calibrate -------------------------------------------------------------------------
 
 
