@@ -531,6 +531,8 @@ def _fit_all(state, ctx, noise, near=None):
 
     With ``near`` (pixel positions), only the groups within reach of those are refitted.
     """
+    if state.centre.size == 0:
+        return []
     everything = _lines_model(state, ctx.n)
     diag = []
     fwhm = ctx.sigma_lsf * FWHM_PER_SIGMA
@@ -544,6 +546,48 @@ def _fit_all(state, ctx, noise, near=None):
             groups = _Groups(member=groups.member[hit], lo=groups.lo[hit], hi=groups.hi[hit])
         diag.append(_fit_batch(groups, state, ctx, noise, everything))
     return diag
+
+
+def _variance_slope_from_background(counts, bg, quiet, ref, block=64):
+    """Fit ``var = a + b (level - ref)`` to the noise of quiet pixels in blocks of the spectrum.
+
+    Returns ``(a, b)`` when the background spans enough levels to pin the slope down to 25 %,
+    else None.  The noise per block is the MAD of second differences (white-noise sigma).
+    """
+    n = counts.size
+    nb = n // block
+    if nb < 4:
+        return None
+    d2 = np.zeros(n)
+    d2[1:-1] = counts[1:-1] - 0.5 * (counts[:-2] + counts[2:])
+    good = quiet.copy()
+    good[0] = good[-1] = False
+    good[1:-1] &= quiet[:-2] & quiet[2:]
+    d = np.where(good, d2, np.nan)[: nb * block].reshape(nb, block)
+    lv = bg[: nb * block].reshape(nb, block)
+    n_q = np.count_nonzero(np.isfinite(d), axis=1)
+    use = n_q >= 16
+    if np.count_nonzero(use) < 4:
+        return None
+    d, lv, n_q = d[use], lv[use], n_q[use]
+    med = np.nanmedian(d, axis=1)
+    var = (1.4826 * np.nanmedian(np.abs(d - med[:, None]), axis=1)) ** 2 / 1.5
+    x = np.median(lv, axis=1) - ref
+    # Weighted least squares; the relative error of a MAD variance is about 2.3/sqrt(n).
+    design = np.stack([np.ones_like(x), x], axis=1)
+    model = np.full(x.size, max(float(np.median(var)), 1e-12))
+    for _ in range(2):
+        w = n_q / (2.3 * model) ** 2
+        try:
+            cov = np.linalg.inv(design.T @ (design * w[:, None]))
+        except np.linalg.LinAlgError:
+            return None
+        coef = cov @ (design.T @ (w * var))
+        model = np.maximum(coef[0] + coef[1] * x, 1e-12)
+    a, b = float(coef[0]), float(coef[1])
+    if not (a > 0 and b > 0 and np.sqrt(cov[1, 1]) < 0.25 * b):
+        return None
+    return a, b
 
 
 def _reestimate_slope(noise, diag):
@@ -817,10 +861,16 @@ def find_lines(
         if gain is not None:
             b, method = 1.0 / gain, "given gain; variance at background measured"
         else:
-            # Until the fit residuals say otherwise: all background variance photon noise.
-            b = a / max(ref, a) if ref > 0 else 1.0
-            method = "estimated: background variance from second differences, gain from fit " \
-                     "residuals"
+            slope = _variance_slope_from_background(counts, bg, quiet, ref)
+            if slope is not None:
+                a, b = slope
+                method = ("estimated: variance against background level from second "
+                          "differences")
+            else:
+                # Until the fit residuals say otherwise: all background variance photon noise.
+                b = a / max(ref, a) if ref > 0 else 1.0
+                method = ("estimated: background variance from second differences, gain from "
+                          "fit residuals")
         noise = _Noise(a=a, b=b, ref=ref, method=method)
     var_null = noise.variance(bg)
 
@@ -830,7 +880,7 @@ def find_lines(
                            min(fwhm_for_spikes, 2.0) if fwhm is None else fwhm, min_snr)
     rejected = {"spike": int(np.count_nonzero(spikes)), "too_narrow": 0, "too_wide": 0,
                 "below_snr": 0,
-                "not_converged": 0, "duplicate": 0, "outside": 0}
+                "bad_fit": 0, "duplicate": 0, "outside": 0}
     ok &= ~spikes
 
     # LSF width from the brightest isolated, unsaturated peaks.
@@ -887,7 +937,7 @@ def find_lines(
 
     # Pass 1.
     diag = _fit_all(state, ctx, noise)
-    if gain is None:
+    if gain is None and "fit residuals" in noise.method:
         noise = _reestimate_slope(noise, diag)
     state, rejected = _prune(state, ctx, fwhm, 0.5 * min_snr, rejected, final=False)
     # Background again, from the spectrum minus the fitted lines.
@@ -908,7 +958,7 @@ def find_lines(
         state = state.extend(extra.astype(float), np.full(extra.size, sigma_lsf), f_r[extra])
     # Pass 2, neighbours from pass 1.
     diag = _fit_all(state, ctx, noise)
-    if gain is None:
+    if gain is None and "fit residuals" in noise.method:
         noise = _reestimate_slope(noise, diag)
     before = state.centre
     state, rejected = _prune(state, ctx, fwhm, min_snr, rejected, final=True)
@@ -1027,17 +1077,16 @@ def _prune(state, ctx, fwhm, snr_cut, rejected, *, final):
     weaker = np.where(state.flux[for_idx_a] < state.flux[for_idx_b], for_idx_a, for_idx_b)
     dup[weaker] = True
     dup &= ~drop
-    not_conv = ~state.converged & ~drop & ~dup
     if final:
         rejected["outside"] += int(np.count_nonzero(outside))
         rejected["too_narrow"] += int(np.count_nonzero(narrow))
         rejected["too_wide"] += int(np.count_nonzero(wide))
         rejected["below_snr"] += int(np.count_nonzero(weak))
         rejected["duplicate"] += int(np.count_nonzero(dup))
-        # A fit that did not converge keeps its last values (flagged by a large chi2); it is
-        # only counted, not dropped, unless its errors are unusable.
-        bad_err = not_conv & ~np.isfinite(state.centre_err)
-        rejected["not_converged"] += int(np.count_nonzero(bad_err))
+        # A component whose covariance is unusable (a degenerate fit) cannot be reported.
+        bad_err = ~drop & ~dup & ~(np.isfinite(state.centre_err) & (state.centre_err > 0)
+                                   & (state.flux_err > 0))
+        rejected["bad_fit"] += int(np.count_nonzero(bad_err))
         drop = drop | dup | bad_err
     else:
         rejected["too_narrow"] += int(np.count_nonzero(narrow))

@@ -57,12 +57,16 @@ def flux_for_snr(snr, fwhm, level, gain, read_noise):
 # ---- peers ------------------------------------------------------------------------------
 
 def handwritten_peer(y, fwhm):
-    """scipy find_peaks above 5 robust sigma, then a +-1 FWHM intensity-weighted centroid."""
+    """Running-median background, scipy find_peaks above 5 robust sigma (height and
+    prominence), then a +-1 FWHM intensity-weighted centroid."""
+    from scipy.ndimage import median_filter
     from scipy.signal import find_peaks
 
-    bg = np.median(y)
+    bg = median_filter(y, size=int(20 * fwhm) | 1, mode="nearest")
     sig = 1.4826 * np.median(np.abs(np.diff(y) - np.median(np.diff(y)))) / np.sqrt(2)
-    peaks, _ = find_peaks(y - bg, height=5 * sig, distance=max(1, int(fwhm)))
+    peaks, _ = find_peaks(y - bg, height=5 * sig, prominence=5 * sig,
+                          distance=max(1, int(fwhm)))
+    bg = bg[peaks][:, None]
     half = int(np.ceil(fwhm))
     idx = np.clip(peaks[:, None] + np.arange(-half, half + 1)[None, :], 0, y.size - 1)
     w = np.clip(y[idx] - bg, 0, None)
