@@ -64,7 +64,12 @@ DEFAULT_RANGE_NM = (200.0, 1100.0)
 DISPERSION_LIMITS = (0.003, 3.0)
 CONFIDENT_P = 1e-3  # largest look-elsewhere-corrected chance probability accepted
 MAX_DEGREE = 5
+# Grating spectrometers depart from a linear pixel -> wavelength map by at most a few per
+# cent of the half-span (common practice); beyond the outermost lines the band includes a
+# 1-sigma curvature of this fraction of the half-span per squared normalised distance.
+NONLINEARITY_PRIOR = 0.01
 MAX_CHI2 = 25.0  # a solution whose residuals exceed 5x the centroid errors is not returned
+MIN_LINES_BLIND = 6  # fewer fitted lines than this never make a solution without a guess
 _MATCH_NSIGMA = 4.0  # a detection belongs to a reference line within this many sigma
 _WINDOW_FRACTION_INSIDE = 0.3  # the same between fitted lines
 _WINDOW_FRACTION = 0.1  # a match window must be smaller than this x the line spacing
@@ -164,6 +169,7 @@ class Solution:
             t = np.linspace(0.0, 1.0, 33)
             path = edge[:, None] + (xr - edge)[:, None] * t[None, :]
             spread = np.maximum(spread, np.abs(_cheb.chebval(path, self.model_spread)).max(1))
+            spread = np.hypot(spread, _prior_band(xr, self.coefficients, (lo, hi)))
         err = np.sqrt(np.clip(var, 0, None) + spread**2)
         return err.reshape(np.shape(x)) if np.ndim(x) else float(err[0])
 
@@ -525,6 +531,15 @@ class _Refs:
     intensity: np.ndarray
     species: np.ndarray
     designation: np.ndarray
+    usable: np.ndarray | None = None  # may be fitted (not only matched)
+    reason: np.ndarray | None = None  # why not, when not
+
+    def fit_ok(self, ri) -> np.ndarray:
+        return np.ones(np.size(ri), bool) if self.usable is None else self.usable[ri]
+
+    @property
+    def n_usable(self) -> int:
+        return self.wavelength.size if self.usable is None else int(self.usable.sum())
 
 
 def _detections(spectrum, n_pixels: int | None) -> tuple[_Lines, dict]:
@@ -586,15 +601,26 @@ def _references(lamps, wavelength_range, medium: str, fwhm_nm: float | None = No
     for name in lamps:
         t = levels.lamp_lines(name, wavelength_range=wavelength_range, medium=medium,
                               fwhm_nm=fwhm_nm)
+        # Every listed line is kept for matching (a real lamp emits them all, so knowing
+        # where they are protects the usable ones); only usable lines are fitted.
         keep = np.asarray(t["usable"], bool) if "usable" in t.colnames else np.ones(len(t), bool)
+        why = (np.asarray(t["reason"], dtype=object) if "reason" in t.colnames
+               else np.full(len(t), "", dtype=object))
         if fwhm_nm is not None and len(t):
-            # a centroid is only as good as the blend it measures: leave out every line with
+            # a centroid is only as good as the blend it measures: do not fit a line with
             # another listed line (usable or not) within one FWHM
             groups = levels.blends(t, fwhm_nm, fraction=1.0)
             for n_members, rows in zip(groups["n_members"], groups["member_rows"], strict=True):
                 if n_members > 1:
-                    keep[[int(r) for r in str(rows).split(",")]] = False
-        parts.append(t[keep])
+                    idx = [int(r) for r in str(rows).split(",")]
+                    fresh = keep[idx]
+                    keep[idx] = False
+                    for i in np.asarray(idx)[fresh]:
+                        why[i] = f"unresolved reference blend at FWHM {fwhm_nm:.3g} nm"
+        t = t.copy(copy_data=False)
+        t["_fit_ok"] = keep
+        t["_why"] = np.array([str(v) for v in why], dtype=str) if len(t) else np.zeros(0, str)
+        parts.append(t)
     w = np.concatenate([np.asarray(t["wavelength"], float) for t in parts])
     m = w.size
 
@@ -615,6 +641,8 @@ def _references(lamps, wavelength_range, medium: str, fwhm_nm: float | None = No
         intensity=cat("intensity", np.nan).astype(float)[order],
         species=cat("species", "").astype(str)[order],
         designation=des[order],
+        usable=cat("_fit_ok", True).astype(bool)[order],
+        reason=cat("_why", "").astype(str)[order] if m else np.zeros(0, str),
     )
 
 
@@ -684,12 +712,21 @@ def _band(x, coef, cov, spread=None, covered=None):
     return np.sqrt(np.clip(var, 0, None))
 
 
+def _prior_band(x, coef, covered) -> np.ndarray:
+    """What the lines cannot say beyond the outermost of them: a curvature of up to
+    ``NONLINEARITY_PRIOR`` of the half-span per squared normalised distance (1 sigma)."""
+    out = np.clip(covered[0] - x, 0, None) + np.clip(x - covered[1], 0, None)
+    return NONLINEARITY_PRIOR * abs(float(coef[1])) * out**2
+
+
 def _loo_band(xall, coef, cov, spread, fitted, var_fitted):
     """Prediction band at every detection; for the fitted ones, the leave-one-out band (a
     line that alone pins the fit somewhere gets the wide band it would have without it, so
     its association there stays in doubt)."""
     covered = (xall[fitted].min(), xall[fitted].max()) if fitted.size else None
     band = _band(xall, coef, cov, spread, covered)
+    if covered is not None:
+        band = np.hypot(band, _prior_band(xall, coef, covered))
     if fitted.size:
         var_cov = _band(xall[fitted], coef, cov) ** 2
         lev = np.clip(var_cov / var_fitted, 0.0, 1.0 - 1e-9)
@@ -699,9 +736,9 @@ def _loo_band(xall, coef, cov, spread, fitted, var_fitted):
 
 
 def _degree_cap(n_lines: int, spread: float) -> int:
-    """Highest degree allowed by the number of lines (the next degree must still leave two
-    degrees of freedom, for the model-spread band) and by their spread over the detector."""
-    return int(max(1, min(MAX_DEGREE, n_lines - 4, 2 + math.floor(6 * spread))))
+    """Highest degree allowed by the number of lines (the next degree must still leave one
+    degree of freedom, for the model-spread band) and by their spread over the detector."""
+    return int(max(1, min(MAX_DEGREE, n_lines - 3, 2 + math.floor(6 * spread))))
 
 
 def _line_sigma(det: _Lines, ref: _Refs, di, ri, disp):
@@ -923,7 +960,7 @@ def _final_fit(det: _Lines, ref: _Refs, di, ri, degree: int | None) -> _Fit | No
     n = det.n_pixels
     x = _xnorm(det.pixel[di], n)
     y = ref.wavelength[ri]
-    fit_ok = ~det.bad[di]
+    fit_ok = ~det.bad[di] & ref.fit_ok(ri)
     if fit_ok.sum() < 3:
         return None
     c1, _ = _wls(x[fit_ok], y[fit_ok], np.ones(fit_ok.sum()), 1)
@@ -953,16 +990,25 @@ def _final_fit(det: _Lines, ref: _Refs, di, ri, degree: int | None) -> _Fit | No
         deg = best[1]
         coef, cov, use, chi2r = _fit_clip(x, y, sig, deg, keep=fit_ok)
     spread_c = np.zeros(deg + 2)
-    if use.sum() >= deg + 4:
+    if use.sum() >= deg + 3:
         c_hi, _, _, _ = _fit_clip(x, y, sig, deg + 1, keep=use, max_iter=1)
         spread_c = c_hi - np.pad(coef, (0, 1))
     z = (y - _cheb.chebval(x, coef)) / (sig * math.sqrt(max(1.0, chi2r)))
-    reason = np.where(fit_ok, "", det.reason[di]).astype(object)
+    reason = _not_fitted_reasons(det, ref, di, ri)
     outlier = fit_ok & ~use
     reason[outlier] = [f"outlier {abs(v):.1f} sigma" for v in z[outlier]]
     fit = _Fit(di, ri, coef, cov, spread_c, use, reason.astype(str), chi2r, sig)
     fit.cov_jackknife = _jackknife_cov(x[use], y[use], sig[use], coef)
     return fit
+
+
+def _not_fitted_reasons(det: _Lines, ref: _Refs, di, ri) -> np.ndarray:
+    """Why each matched line is left out of the fit ("" for fitted lines)."""
+    reason = det.reason[di].astype(object)
+    if ref.reason is not None:
+        unusable = ~ref.fit_ok(ri) & (reason == "")
+        reason[unusable] = [f"reference: {r or 'not usable'}" for r in ref.reason[ri][unusable]]
+    return reason
 
 
 def _jackknife_cov(x, y, sig, coef) -> np.ndarray:
@@ -1131,7 +1177,7 @@ def _guess_fit(det: _Lines, ref: _Refs, guess: Solution, max_shift: float):
                      np.zeros(order.size, str), np.zeros(order.size, str))
         di, k = _associate(det, fake, det.pixel, np.full(det.pixel.size, tol_px))
         ri = ref_idx[order][k]
-        ok = ~det.bad[di]
+        ok = ~det.bad[di] & ref.fit_ok(ri)
         if ok.sum() < 3:
             return None
         a = np.stack([np.ones(ok.sum()), p_old[ri][ok] - c], 1) / det.pixel_err[di][ok, None]
@@ -1272,15 +1318,15 @@ def calibrate(
     ref = _references(lamps, wrange, medium, fwhm_guess)
     lamp_txt = "+".join(lamps)
     tried = (
-        f"{det.pixel.size} lines detected, {ref.wavelength.size} usable {lamp_txt} reference "
-        f"lines in {wrange[0]:.0f}-{wrange[1]:.0f} nm ({medium})"
+        f"{det.pixel.size} lines detected, {ref.n_usable} usable "
+        f"{lamp_txt} reference lines in {wrange[0]:.0f}-{wrange[1]:.0f} nm ({medium})"
     )
     if det.pixel.size < (3 if guess is not None else 5):
         raise CalibrationError(
             f"too few lines to calibrate: {tried}. Is this a lamp exposure? Check the "
             "exposure level (lines need SNR >= 5) and that the lamp was on."
         )
-    if ref.wavelength.size < 4:
+    if ref.n_usable < 4:
         raise CalibrationError(
             f"too few reference lines: {tried}. Widen the wavelength range or add a lamp."
         )
@@ -1309,11 +1355,11 @@ def calibrate(
             "range, or not a lamp exposure?"
         )
     n_used = int(fit.used.sum())
-    if guess is None and n_used < len(fit.coef) + 3:
+    if guess is None and n_used < max(MIN_LINES_BLIND, len(fit.coef) + 2):
         raise CalibrationError(
-            f"only {n_used} lines matched for a degree-{len(fit.coef) - 1} fit, too few to "
-            f"check the model beyond them, after {what}: {tried}. Add a lamp, expose longer, "
-            "or give --guess."
+            f"only {n_used} lines matched for a degree-{len(fit.coef) - 1} fit (at least "
+            f"{max(MIN_LINES_BLIND, len(fit.coef) + 2)} needed to check the model), after "
+            f"{what}: {tried}. Add a lamp, expose longer, or give --guess."
         )
     if fit.chi2r > MAX_CHI2:
         raise CalibrationError(
@@ -1408,7 +1454,7 @@ def _calibrate_from_guess(det, ref, guess: Solution, degree, max_shift) -> _Fit 
     if found is None:
         return None
     di, ri, _shift, _stretch, n_hyp = found
-    ok = ~det.bad[di]
+    ok = ~det.bad[di] & ref.fit_ok(ri)
     free_needed = (degree if degree is not None else guess.degree) + 5
     if degree is not None or ok.sum() >= free_needed:
         fit = _final_fit(det, ref, di, ri, degree)
@@ -1439,7 +1485,7 @@ def _calibrate_from_guess(det, ref, guess: Solution, degree, max_shift) -> _Fit 
     chi2r = float(np.sum(z[use] ** 2) / dof)
     cov_a = cov_a * max(1.0, chi2r)
     coef, cov, spread = _compose_guess(guess, float(sol[0]), float(sol[1]), cov_a)
-    reason = np.where(ok, "", det.reason[di]).astype(object)
+    reason = _not_fitted_reasons(det, ref, di, ri)
     out = ok & ~use
     reason[out] = [f"outlier {abs(v):.1f} sigma" for v in z[out]]
     x = _xnorm(det.pixel[di], n)

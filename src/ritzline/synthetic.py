@@ -192,7 +192,8 @@ class LampTruth:
     (``missing`` lines are not among them): ``wavelength`` (air nm), ``pixel``, ``flux``
     (counts), ``snr`` (matched-filter signal-to-noise expected for the line alone),
     ``saturated`` (peak above the saturation level), ``resolved`` (no other rendered line,
-    listed or extra, within 1.5 FWHM), ``usable`` (resolved, unsaturated, SNR >= 10) and
+    listed or extra, within 1.5 FWHM), ``usable`` (listed as usable for calibration,
+    resolved, unsaturated, SNR >= 10, at least one FWHM inside the detector) and
     ``index`` (row in the input list).  ``missing_index`` lists the rows on the detector that
     were left out; ``extra_pixel``/``extra_flux`` the unlisted lines added; ``spike_pixel``
     the single-pixel hits.
@@ -221,23 +222,31 @@ class LampTruth:
         return int(np.count_nonzero(self.usable))
 
 
-def _lamp_reference(lamp) -> tuple[np.ndarray, np.ndarray]:
-    """(wavelength nm, intensity) of a lamp: a name / names for ``levels.lamp_lines``, or
-    anything with ``wavelength`` and ``intensity`` columns (intensity may be NaN)."""
+def _lamp_reference(lamp) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """(wavelength nm, intensity, listed as usable) of a lamp: a name / names for
+    ``levels.lamp_lines``, or anything with ``wavelength`` and ``intensity`` columns
+    (intensity may be NaN; an optional ``usable`` column)."""
     if isinstance(lamp, str) or (
         isinstance(lamp, (tuple, list)) and lamp and all(isinstance(s, str) for s in lamp)
     ):
         from . import levels
 
         names = [lamp] if isinstance(lamp, str) else list(lamp)
-        wl, inten = [], []
-        for name in names:
-            table = levels.lamp_lines(name, medium="air")
-            keep = np.asarray(table["usable"], bool) if "usable" in table.colnames else True
-            wl.append(np.asarray(table["wavelength"], float)[keep])
-            inten.append(np.asarray(table["intensity"], float)[keep])
-        return np.concatenate(wl), np.concatenate(inten)
-    return np.asarray(lamp["wavelength"], float), np.asarray(lamp["intensity"], float)
+        tables = [levels.lamp_lines(name, medium="air") for name in names]
+    else:
+        tables = [lamp]
+    wl = np.concatenate([np.asarray(t["wavelength"], float) for t in tables])
+    inten = np.concatenate([np.asarray(t["intensity"], float) for t in tables])
+    usable = np.concatenate([
+        np.asarray(t["usable"], bool) if "usable" in _names(t) else np.ones(len(t["wavelength"]),
+                                                                            bool)
+        for t in tables
+    ])
+    return wl, inten, usable
+
+
+def _names(table) -> list[str]:
+    return list(getattr(table, "colnames", None) or table.keys())
 
 
 def lamp_exposure(
@@ -259,9 +268,11 @@ def lamp_exposure(
     instrument : Instrument
         The spectrometer (true pixel -> air wavelength mapping, LSF, detector noise).
     lamp : str, sequence of str, or table
-        Lamp name(s) understood by ``ritzline.levels.lamp_lines`` (only lines marked usable
-        are rendered), or any table/mapping with ``wavelength`` (air nm) and ``intensity``
-        columns; NaN intensities get the list's median.
+        Lamp name(s) understood by ``ritzline.levels.lamp_lines`` (every listed line is
+        rendered, as a real lamp emits them all; only those listed as usable can count as
+        usable in the truth), or any table/mapping with ``wavelength`` (air nm) and
+        ``intensity`` columns (and optionally ``usable``); NaN intensities get the list's
+        median.
     rng : numpy.random.Generator
         The only source of randomness.
     missing : (low, high)
@@ -285,7 +296,7 @@ def lamp_exposure(
         ADU, noisy, clipped at ``instrument.saturation``.
     truth : LampTruth
     """
-    wl_all, inten_all = _lamp_reference(lamp)
+    wl_all, inten_all, listed_usable = _lamp_reference(lamp)
     n = instrument.n_pixels
     fwhm = instrument.fwhm_px
     sigma = fwhm / FWHM_PER_SIGMA
@@ -347,8 +358,9 @@ def lamp_exposure(
     near_sorted = np.minimum(np.r_[np.inf, gaps], np.r_[gaps, np.inf])
     near[order] = near_sorted
     resolved = near[: keep.size] >= 1.5 * fwhm
-    inside = (pix_all[keep] >= 0) & (pix_all[keep] <= n - 1)
-    usable = resolved & ~saturated & (snr >= 10.0) & inside
+    # a line cut by the end of the detector gives no honest centroid
+    inside = (pix_all[keep] >= fwhm) & (pix_all[keep] <= n - 1 - fwhm)
+    usable = resolved & ~saturated & (snr >= 10.0) & inside & listed_usable[keep]
     truth = LampTruth(
         instrument=instrument,
         wavelength=wl_all[keep],
