@@ -446,3 +446,25 @@ def test_a_calibration_off_by_more_than_its_band_is_absorbed_by_the_fitted_corre
     rigid = identify_lines(lines=shifted, species=["Hg I"], wavelength_range=(240.0, 600.0),
                            options=IdentifyOptions(fit_shift=False))
     assert np.all(np.asarray(rigid.lines["species"]) == "")
+
+
+def test_a_bright_line_on_a_weak_listed_line_is_not_claimed_when_its_branches_disagree():
+    # Ar I 714.70 nm (intensity 1000) shares its upper level with 794.82 nm (20000) and
+    # 852.14 nm (15000) (NIST Handbook, Sansonetti & Martin 2005; memory): a line at 714.70 nm
+    # 30 times brighter than the branching allows, next to siblings of normal brightness,
+    # is a coincidence, not that transition.
+    from ritzline import levels
+
+    t = levels.transitions("Ar I", wavelength_range=(690.0, 860.0), observed_only=True)
+    wl = np.asarray(t["wavelength"], float)
+    inten = np.asarray(np.ma.filled(t["intensity"], np.nan), float)
+    keep = np.isfinite(inten) & (inten >= 1000)
+    flux = 10 * inten[keep]
+    normal = identify_lines(lines=measured(wl[keep], flux), species=["Ar I", "Ne I"],
+                            wavelength_range=(690.0, 860.0))
+    assert row_at(normal, 714.704)["species"] == "Ar I"
+    boosted = np.where(np.abs(wl[keep] - 714.704) < 0.01, 30 * flux, flux)
+    odd = identify_lines(lines=measured(wl[keep], boosted), species=["Ar I", "Ne I"],
+                         wavelength_range=(690.0, 860.0))
+    row = row_at(odd, 714.704)
+    assert row["species"] == "" and row["p_unidentified"] > 0.9

@@ -525,7 +525,14 @@ class _Model:
         return lnmu, sig, expected, act
 
     def coherence(self, lnmu):
-        """Per pair: log likelihood ratio of the sibling lines' seen/unseen status."""
+        """Per pair: log likelihood ratio of what the other lines of the same upper level show.
+
+        If line i is transition c, each sibling c' (same upper level) should have the flux
+        ``F_i S_c'/S_c`` (branching, scatter ``branch_scatter``); otherwise it has the flux
+        the species scale predicts (scatter ``strength_scatter``).  A sibling seen in the
+        previous iteration contributes the ratio of its flux densities under the two, an
+        unseen one the ratio of its non-detection probabilities.
+        """
         ptr, idx = self.siblings
         g = self.groups
         out = np.zeros(self.li.size)
@@ -544,16 +551,21 @@ class _Model:
         rep, sib = rep[ok], sib[ok]
         if rep.size == 0:
             return out
-        sb = self.opts.branch_scatter
+        s1 = self.opts.branch_scatter * np.sqrt(2.0)
+        s0 = self.opts.strength_scatter
         # flux the sibling should have if this pair is right
         mu1 = self.lnf[self.li[rep]] + np.log(g.strength[sib] / g.strength[self.gi[rep]])
-        p1 = ndtr((mu1 - self.ln_lim) / (sb * np.sqrt(2.0)))
-        p0 = ndtr((lnmu[sib] - self.ln_lim) / self.opts.strength_scatter)
+        p1 = np.clip(ndtr((mu1 - self.ln_lim) / s1), 1e-3, 1 - 1e-3)
+        p0 = np.clip(ndtr((lnmu[sib] - self.ln_lim) / s0), 1e-3, 1 - 1e-3)
         seen = np.clip(self.observed[sib], 0.0, 1.0)
-        eps = 1e-3
-        p1 = np.clip(p1, eps, 1 - eps)
-        p0 = np.clip(p0, eps, 1 - eps)
-        llr = np.log(seen * p1 + (1 - seen) * (1 - p1)) - np.log(seen * p0 + (1 - seen) * (1 - p0))
+        n_g = g.species.size
+        w = np.bincount(self.gi, self.resp, n_g)
+        seen_lnf = np.bincount(self.gi, self.resp * self.lnf[self.li], n_g) / np.where(
+            w > 0, w, 1.0)
+        x = seen_lnf[sib]
+        llr_seen = _lognorm(x, mu1, s1) - _lognorm(x, np.nan_to_num(lnmu[sib]), s0)
+        llr_seen = np.clip(np.where(w[sib] > 0, llr_seen, 0.0), -8.0, 8.0)
+        llr = seen * llr_seen + (1 - seen) * (np.log1p(-p1) - np.log1p(-p0))
         np.add.at(out, rep, llr)
         return np.clip(out, -12.0, 12.0)
 
@@ -777,12 +789,16 @@ def _line_arrays(table, solution, calibration_err, fwhm_nm, wavelength_range, op
     blended = np.char.find(flags.astype(str), "blend") >= 0
     if fwhm_nm is None:
         fw = _column(table, "fwhm")
-        clean = np.isfinite(fw) & (fw > 0) & ~blended
-        if clean.any():
-            fwhm_nm = float(np.median(fw[clean]))
-        elif solution is not None and getattr(solution, "fwhm_pixel", None):
+        finite = np.isfinite(fw) & (fw > 0)
+        # the line finder's LSF width, else the solution's, through the dispersion
+        lsf_px = (table.meta or {}).get("lsf_fwhm_pixel") or getattr(solution, "fwhm_pixel", None)
+        if np.any(finite & ~blended):
+            fwhm_nm = float(np.median(fw[finite & ~blended]))
+        elif solution is not None and lsf_px:
             mid = np.nanmedian(_column(table, "pixel")) if "pixel" in table.colnames else 0.0
-            fwhm_nm = float(solution.fwhm_pixel * abs(solution.dispersion(mid)))
+            fwhm_nm = float(lsf_px * abs(float(np.asarray(solution.dispersion(mid)))))
+        elif finite.any():
+            fwhm_nm = float(np.min(fw[finite]))
         elif n == 0:
             fwhm_nm = 1.0  # nothing to group; any value will do
         else:
