@@ -1378,6 +1378,8 @@ def boltzmann_plot(lines, species: str, *, corrected: bool) -> BoltzmannPlot | N
         temp = -1.0 / (K_B_EV * slope)
         temp_err = abs(temp * slope_err / slope)
         msg = f"excitation temperature from {rows.size} lines"
+        if rows.size == 2:
+            msg += " (two points: error from the measurement noise only)"
     else:
         temp, temp_err = nan, nan
         msg = "non-negative slope: the levels are not in a Boltzmann distribution"
