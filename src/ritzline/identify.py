@@ -371,14 +371,11 @@ def _candidate_groups(cand, species_names, fwhm_nm, wl_range, max_energy, opts) 
 
     sp_g = s_sorted[starts] if n_g else np.zeros(0, int)
     g_upper_ev = upper_ev[primary] if n_g else np.zeros(0)
-    if n_g:
-        member_ev = np.maximum.reduceat(np.nan_to_num(upper_ev[order], nan=-np.inf), starts)
-    else:
-        member_ev = np.zeros(0)
+    # the limit applies to the upper level the group is reported under (its strongest line)
     if max_energy is None:
         above = np.zeros(n_g, bool)
     else:
-        above = np.isfinite(g_upper_ev) & (member_ev > max_energy + 1e-9)
+        above = np.isfinite(g_upper_ev) & (g_upper_ev > max_energy + 1e-9)
     # level ids for coherence: species + upper energy (rounded to 0.01 cm-1)
     up_key = np.round(upper_cm1[primary], 2) if n_g else np.zeros(0)
     level = np.full(n_g, -1, int)
@@ -1258,6 +1255,8 @@ def _species_table(model, names, present, llr, lnmu, lines_out):
     t["scale_intensity"] = np.exp(model.lnk[:, 0]) if model.lnk is not None else np.nan
     t["scale_ga"] = np.exp(model.lnk[:, 1]) if model.lnk is not None else np.nan
     t["detected_fraction_unrated"] = np.exp(model.lnq) if model.lnq is not None else np.nan
+    t["note"] = np.array(["no listed line in the range" if c == 0 else "" for c in n_cand],
+                         dtype=str)
     t.meta["threshold"] = model.opts.species_threshold
     return t
 
