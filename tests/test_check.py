@@ -17,6 +17,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
+import _check_synthetic as cs
 from ritzline import check
 from ritzline.check import (
     CheckLimits,
@@ -310,6 +311,8 @@ def test_killed_run_resumes_without_missing_or_duplicated_exposures(tmp_path, si
     proc.wait(timeout=30)
     first = len(read_journal(journal)[1])
     assert 0 < first < n, "the run was not interrupted part way"
+    if sig == signal.SIGINT:  # Ctrl-C: the summary is written on the way out
+        assert len(Table.read(out / "summary.ecsv")) == first
 
     done = subprocess.run([sys.executable, "-c", script], capture_output=True, check=True,
                           timeout=60)
@@ -351,8 +354,6 @@ def test_summary_table_of_no_rows_has_every_column():
 def bench(tmp_path_factory):
     """A reference solution and a short time-stamped sequence with known shifts, plus bad
     files of several kinds."""
-    import _check_synthetic as cs
-
     rng = np.random.default_rng(20261201)
     inst, lines = cs.bench_instrument(), cs.bench_lines()
     solution = cs.reference_solution(inst, lines, rng)
@@ -426,16 +427,12 @@ def test_bad_files_are_error_rows_with_the_readers_reason(bench):
 
 
 def test_an_exposure_from_another_detector_fails(bench, tmp_path):
-    import _check_synthetic as cs
-
     path = cs.write_text_exposure(tmp_path / "other.txt", np.full(2048, 100.0))
     table = check.check_exposures([path], bench["solution"], workers=1)
     assert table["status"][0] == "fail" and "2048 pixels" in table["reasons"][0]
 
 
 def test_missing_lines_are_listed(bench, tmp_path):
-    import _check_synthetic as cs
-
     lines = {k: v[5:] for k, v in bench["lines"].items()}  # the five bluest lines gone
     counts, _ = cs.clean_exposure(bench["inst"], lines, np.random.default_rng(3))
     path = cs.write_text_exposure(tmp_path / "fewer.txt", counts)
@@ -450,8 +447,6 @@ def test_missing_lines_are_listed(bench, tmp_path):
 
 
 def test_saturated_pixels_are_counted_and_warned(bench, tmp_path):
-    import _check_synthetic as cs
-
     counts, _ = cs.clean_exposure(bench["inst"], bench["lines"], np.random.default_rng(4),
                                   saturate=(0.1, 0.1))
     path = cs.write_text_exposure(tmp_path / "sat.txt", counts)
@@ -527,3 +522,46 @@ def test_cli_exit_2_on_a_bad_solution_file(bench, tmp_path):
 def test_cli_exit_2_when_no_files_are_found(bench, tmp_path):
     r = run_cli("check", tmp_path, "--solution", bench["solution_path"], "-o", tmp_path / "o")
     assert r.exit_code == 2 and "no exposure files" in r.output
+
+
+def test_dask_backend_gives_the_same_summary_as_the_pool(bench):
+    pytest.importorskip("distributed")
+    pool = check.check_exposures(bench["paths"][:4], bench["solution"], workers=2)
+    dask = check.check_exposures(bench["paths"][:4], bench["solution"], workers=2,
+                                 dask_scheduler="local-threads")
+    for name in ("status", "shift_px", "shift_err_px", "fwhm_px", "n_lines"):
+        assert list(dask[name]) == list(pool[name])
+
+
+def test_expected_lines_from_a_lamp_list(tmp_path):
+    from ritzline import levels
+
+    inst = cs.bench_instrument()
+    table = levels.lamp_lines("Ne", medium="air")
+    usable = np.asarray(table["usable"], bool)
+    ne = {"wavelength": np.asarray(table["wavelength"], float)[usable],
+          "intensity": np.asarray(table["intensity"], float)[usable]}
+    rng = np.random.default_rng(2)
+    solution = cs.reference_solution(inst, ne, rng)
+    counts, _ = cs.clean_exposure(cs.drifted(inst, 0.4), ne, rng)
+    path = cs.write_text_exposure(tmp_path / "ne.txt", counts)
+    result = check.check_exposures([path], solution, lamp="Ne", workers=1)
+    pix = inst.pixel(ne["wavelength"])
+    on = int(np.count_nonzero((pix > 3) & (pix < inst.n_pixels - 4)))
+    assert result["n_expected"][0] == on
+    assert result["shift_px"][0] == pytest.approx(0.4, abs=0.02)
+    assert result.meta["expected_lines"] == "lamp list"
+
+
+def test_dark_frame_is_subtracted_before_line_finding(bench, tmp_path):
+    from ritzline.synthetic import integrated_gaussians
+
+    # a warm spot on the detector that looks like a line; the dark frame shows it too
+    warm = 80.0 + integrated_gaussians(3648, [1500.3], [40000.0], 2.6)
+    counts, _ = cs.clean_exposure(bench["inst"], bench["lines"], np.random.default_rng(6))
+    exposure = cs.write_text_exposure(tmp_path / "exp.txt", counts + warm)
+    dark = cs.write_text_exposure(tmp_path / "dark.txt", warm)
+    plain = check.check_exposures([exposure], bench["solution"], workers=1)
+    darked = check.check_exposures([exposure], bench["solution"], workers=1, dark=dark)
+    assert plain["n_found"][0] == darked["n_found"][0] + 1
+    assert darked["n_found"][0] == darked["n_lines"][0] == 36

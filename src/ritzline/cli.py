@@ -634,10 +634,12 @@ def check(inputs, solution_path, lamp, dark, outdir, workers, dask_scheduler, ma
     progress_cm = None
     progress = None
     if sys.stderr.isatty():
+        from rich.console import Console
         from rich.progress import BarColumn, MofNCompleteColumn, Progress, TimeRemainingColumn
 
         progress_cm = Progress("checking", BarColumn(), MofNCompleteColumn(),
-                               TimeRemainingColumn(), transient=True)
+                               TimeRemainingColumn(), transient=True,
+                               console=Console(stderr=True))
         bar = progress_cm.add_task("check", total=None)
 
         def progress(done: int, total: int) -> None:
