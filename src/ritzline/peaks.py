@@ -23,9 +23,10 @@ __all__ = ["attach_wavelengths", "centroid_crlb", "find_lines", "line_background
 _SQRT2PI = np.sqrt(2.0 * np.pi)
 _DEFAULT_FWHM = 2.5  # px, used only when no line is bright enough to measure the LSF
 _GROUP_SEPARATION = 2.0  # lines closer than this many FWHM are fitted jointly
-_WINDOW_HALF = 3.0  # fit window half-width beyond the outer lines, in FWHM
+_WINDOW_HALF = 4.0  # fit window half-width beyond the outer lines, in FWHM
 _MAX_COMPONENTS = 8  # a group larger than this is split at its widest gaps
 _MAX_ITER = 20
+_WING_REACH = 2.5  # FWHM beyond a clipped run whose pixels are left out of fits
 _MAX_WIDTH = 3.5  # components wider than this many LSF FWHM are rejected
 _SATURATION_MARGIN = 0.97
 
@@ -208,7 +209,8 @@ def _block_background(y, ok, width, q=None, sigma=0.0):
     frac = pos - lo
     vlo = vals[rows, lo]
     vhi = vals[rows, hi]
-    stat = np.where(has, vlo + frac * (np.where(np.isfinite(vhi), vhi, vlo) - vlo), np.nan)
+    with np.errstate(invalid="ignore"):
+        stat = np.where(has, vlo + frac * (np.where(np.isfinite(vhi), vhi, vlo) - vlo), np.nan)
     if q is not None:
         from scipy.special import ndtri
 
@@ -462,9 +464,12 @@ def _fit_batch(groups, state, ctx, noise, neighbours_model):
     state.dof[comp] = dof[:, None]
     state.converged[comp] = converged[:, None]
     state.group_size[comp] = k
+    # Groups whose widths all match the LSF (no unresolved blend) inform the noise estimate.
+    lsf_like = np.all((np.abs(s / ctx.sigma_lsf - 1.0) < 0.25) | (m < 0), axis=1)
+    use = valid & lsf_like[:, None]
     return {
-        "x": xi[valid], "resid": resid[valid], "lev": lev[valid],
-        "level": level_of(model)[valid], "chi2": chi2, "dof": dof,
+        "x": xi[use], "resid": resid[use], "lev": lev[use], "level": level_of(model)[use],
+        "chi2": chi2, "dof": dof,
     }
 
 
@@ -910,6 +915,9 @@ def find_lines(
             f"{fwhm:.2f}-pixel FWHM; give a longer spectrum"
         )
     sigma_lsf = fwhm / FWHM_PER_SIGMA
+    if saturated_px.any():
+        # The wings of a clipped line are not modelled: keep them out of every other fit.
+        ok &= ~_near_saturation(sat_zone, np.arange(n), fwhm, _WING_REACH)
 
     # Detection: matched filter on the background-subtracted counts.
     weight = np.where(ok, 1.0 / noise.variance(bg), 0.0)
@@ -991,9 +999,9 @@ def find_lines(
     return table
 
 
-def _near_saturation(sat_zone, idx, fwhm):
-    """Whether pixels ``idx`` lie within 1.5 FWHM of a saturated (or bloomed) pixel."""
-    reach = int(np.ceil(1.5 * fwhm))
+def _near_saturation(sat_zone, idx, fwhm, reach_fwhm=1.5):
+    """Whether pixels ``idx`` lie within ``reach_fwhm`` FWHM of a saturated (bloomed) pixel."""
+    reach = int(np.ceil(reach_fwhm * fwhm))
     zone = np.convolve(sat_zone, np.ones(2 * reach + 1), mode="same") > 0
     return zone[idx]
 
