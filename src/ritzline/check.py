@@ -385,7 +385,6 @@ def fit_drift(
     if fi.size == 0:
         return DriftFit(nan, nan, nan, nan, nan, fi, ri, empty, s0)
 
-    # second pass with the stretch from a first fit, so the far ends match too
     def solve(sel):
         x = ref[ri][sel] - centre
         y = found[fi][sel] - ref[ri][sel]
@@ -408,6 +407,7 @@ def fit_drift(
     usable = mask[fi]
     if not usable.any():
         return DriftFit(nan, nan, nan, nan, nan, fi, ri, np.zeros(fi.size, bool), s0)
+    # second pass with the stretch from a first fit, so the far ends match too
     p, _, _, _ = solve(usable)
     predicted = ref + p[0] + p[1] * (ref - centre)
     fi, ri = _match_nearest(found, predicted, match_px)

@@ -670,7 +670,8 @@ def check(inputs, solution_path, lamp, dark, outdir, workers, dask_scheduler, ma
     shown = 0
     for row in table:
         if row["status"] != "pass" and shown < 20:
-            click.echo(f"  {row['status']:5s} {row['file']}: {row['reasons']}")
+            reasons = str(row["reasons"]).removeprefix(f"{row['file']}: ")
+            click.echo(f"  {row['status']:5s} {row['file']}: {reasons}")
             shown += 1
     hidden = len(table) - totals["pass"] - shown
     if hidden > 0:
