@@ -72,7 +72,7 @@ MAX_CHI2 = 25.0  # a solution whose residuals exceed 5x the centroid errors is n
 MIN_LINES_BLIND = 6  # fewer fitted lines than this never make a solution without a guess
 _MATCH_NSIGMA = 4.0  # a detection belongs to a reference line within this many sigma
 _WINDOW_FRACTION_INSIDE = 0.3  # the same between fitted lines
-_WINDOW_FRACTION = 0.1  # a match window must be smaller than this x the line spacing
+_WINDOW_FRACTION = 0.2  # a match window must be smaller than this x the line spacing
 _CLIP_NSIGMA = 4.0  # rejection threshold of the final fit
 
 
@@ -517,7 +517,7 @@ class _Lines:
     flux: np.ndarray
     snr: np.ndarray
     fwhm: np.ndarray
-    bad: np.ndarray  # saturated / blended / edge: matched but not fitted
+    bad: np.ndarray  # blended / edge: matched but not fitted
     reason: np.ndarray  # why a line is not fitted ("" when clean)
     n_pixels: int
 
@@ -577,7 +577,9 @@ def _detections(spectrum, n_pixels: int | None) -> tuple[_Lines, dict]:
         np.asarray(table["flags"], dtype=str) if "flags" in table.colnames else np.full(m, "")
     )
     reason = np.full(m, "", dtype=object)
-    for word in ("saturated", "blended", "blend_suspect", "edge"):
+    # Saturated lines are fitted: the line finder measures them from the unclipped wings and
+    # gives them their (larger) errors.  Blended and edge lines are matched, not fitted.
+    for word in ("blended", "blend_suspect", "edge"):
         has = np.char.find(flags.astype(str), word) >= 0
         reason[has & (reason == "")] = word
     order = np.argsort(p)
@@ -710,6 +712,13 @@ def _band(x, coef, cov, spread=None, covered=None):
             extra = np.where((x < covered[0]) | (x > covered[1]), extra, 0.0)
         var = var + extra
     return np.sqrt(np.clip(var, 0, None))
+
+
+def _fwhm_px(det: _Lines) -> np.ndarray:
+    """FWHM of each detection in pixels (the median width where a line has none)."""
+    fw = det.fwhm
+    med = np.nanmedian(fw) if np.isfinite(fw).any() else 2.5
+    return np.where(np.isfinite(fw), fw, med)
 
 
 def _prior_band(x, coef, covered) -> np.ndarray:
@@ -889,6 +898,9 @@ def _associate(det: _Lines, ref: _Refs, pred, tol, inside=None):
         inside, _WINDOW_FRACTION_INSIDE, _WINDOW_FRACTION
     )
     ok = (dist < tol) & (np.abs(pred - w[other]) >= tol) & (tol < frac * gap)
+    # a line whose centroid is known to worse than a quarter of its width cannot be
+    # identified on its own
+    ok &= _MATCH_NSIGMA * det.pixel_err < _fwhm_px(det)
     di = np.flatnonzero(ok)
     ri = near[ok]
     score = dist[ok] / tol[ok]
