@@ -1011,6 +1011,18 @@ def _results_dask(task, items, scheduler: str, chunksize: int, workers: int | No
             cluster.close()
 
 
+OUTPUT_NAMES = (JOURNAL_NAME, "summary.ecsv", "summary.json", "report.html", "drift.png",
+                "fwhm.png", "status.png")
+
+
+def _remove_stale_temporaries(out: Path) -> None:
+    """Delete temporary files a killed run left behind while writing one of our outputs."""
+    for name in OUTPUT_NAMES:
+        for tmp in out.glob(f".{name}.*.tmp"):
+            with contextlib.suppress(OSError):
+                tmp.unlink()
+
+
 @dataclass(frozen=True)
 class BatchResult:
     """What :func:`run_batch` did: the summary table (input order) and bookkeeping."""
@@ -1097,6 +1109,7 @@ def run_batch(
     out = Path(outdir) if outdir is not None else None
     if out is not None:
         out.mkdir(parents=True, exist_ok=True)
+        _remove_stale_temporaries(out)
         journal = _Journal(out / JOURNAL_NAME, fingerprint or {}, resume=resume)
         done = journal.done
     todo = [(i, k, f) for i, (k, f) in enumerate(zip(keys, files, strict=True)) if k not in done]

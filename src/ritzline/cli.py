@@ -605,7 +605,8 @@ def match(file, species, solution_path, medium, max_energy, response, column, ou
 @click.option("--workers", type=click.IntRange(min=1), default=None,
               help="Local worker processes (default: number of cores).")
 @click.option("--dask-scheduler", metavar="ADDRESS|local", default=None,
-              help="Run on a Dask cluster: a scheduler address (tcp://host:port) or 'local'.")
+              help="Run on a Dask cluster: a scheduler address (tcp://host:port; its workers "
+              "need ritzline and the same file paths) or 'local' for a cluster on this machine.")
 @click.option("--max-shift", type=click.FloatRange(min=0, min_open=True), default=1.0,
               show_default=True, help="Fail above this shift (px); warn above half of it.")
 @click.option("--max-fwhm-change", type=click.FloatRange(min=0, min_open=True), default=15.0,
