@@ -570,3 +570,20 @@ def test_dark_frame_is_subtracted_before_line_finding(bench, tmp_path):
     darked = check.check_exposures([exposure], bench["solution"], workers=1, dark=dark)
     assert plain["n_found"][0] == darked["n_found"][0] + 1
     assert darked["n_found"][0] == darked["n_lines"][0] == 36
+
+
+def test_drift_is_robust_to_missing_extra_and_saturated_lines_and_spikes(bench, tmp_path):
+    from ritzline.synthetic import lamp_exposure
+
+    rng = np.random.default_rng(11)
+    shifts = rng.uniform(-2.0, 2.0, 10)
+    paths = []
+    for i, s in enumerate(shifts):
+        # defaults: 10-30 % of lines missing, up to 30 % unlisted extras, up to 10 %
+        # saturated, up to 5 cosmic-ray hits
+        counts, _ = lamp_exposure(cs.drifted(bench["inst"], s), bench["lines"], rng,
+                                  intensity_scatter=0.2)
+        paths.append(cs.write_text_exposure(tmp_path / f"messy{i}.txt", counts))
+    table = check.check_exposures(paths, bench["solution"], workers=2)
+    got = np.asarray(table["shift_px"], float)
+    assert np.max(np.abs(got - shifts)) < 0.02
