@@ -335,7 +335,7 @@ def _make_groups(centres, fwhm, n):
     return out
 
 
-def _fit_batch(groups, state, ctx, noise, neighbours_model):
+def _fit_batch(groups, state, ctx, noise, neighbours_model, tol):
     """Fit one size class of groups; updates ``state`` (component arrays) in place.
 
     Returns per-group chi2, dof, and per-component covariance pieces.
@@ -359,7 +359,6 @@ def _fit_batch(groups, state, ctx, noise, neighbours_model):
     others = neighbours_model[xi] - own0
     y = ctx.excess[xi] - others
     b0 = np.zeros(n_g)
-    fixed_sigma = state.fix_sigma[m]
 
     def evaluate(b0, c, s, f):
         frac, d_c, d_s = _integrated(xf[:, None, :], c[..., None], s[..., None])
@@ -367,7 +366,7 @@ def _fit_batch(groups, state, ctx, noise, neighbours_model):
         jac = np.empty((n_g, n_par, length))
         jac[:, 0, :] = 1.0
         jac[:, 1::3, :] = f[..., None] * d_c
-        jac[:, 2::3, :] = np.where(fixed_sigma[..., None], 0.0, f[..., None] * d_s)
+        jac[:, 2::3, :] = f[..., None] * d_s
         jac[:, 3::3, :] = frac
         return model, jac, frac
 
@@ -381,21 +380,19 @@ def _fit_batch(groups, state, ctx, noise, neighbours_model):
 
     model, jac, frac = evaluate(b0, c, s, f)
     var = noise.variance(level_of(model))
-    w = np.where(valid, 1.0 / var, 0.0)
+    valid_f = valid.astype(float)
+    w = valid_f / var
     resid = y - model
     chi2 = np.sum(w * resid * resid, axis=1)
     lam = np.full(n_g, 1e-3)
     active = np.ones(n_g, bool)
     eye = np.eye(n_par)
-    # Parameters that are not free: sigma when fixed (none by default, saturated lines keep it).
-    frozen = np.zeros((n_g, n_par), bool)
-    frozen[:, 2::3] = fixed_sigma
     for it in range(_MAX_ITER):
         wj = jac * w[:, None, :]
         hess = np.einsum("gpl,gql->gpq", wj, jac)
         grad = np.einsum("gpl,gl->gp", wj, resid)
         diag = np.einsum("gpp->gp", hess)
-        dead = frozen | (diag <= 0)
+        dead = diag <= 0  # padding components: no information
         damp = hess + (lam[:, None] * np.where(dead, 1.0, diag))[:, :, None] * eye
         damp = np.where(dead[:, :, None] | dead[:, None, :], eye, damp)
         grad = np.where(dead, 0.0, grad)
@@ -416,7 +413,7 @@ def _fit_batch(groups, state, ctx, noise, neighbours_model):
         predicted = np.einsum("gp,gp->g", step, grad)
         # Ill-conditioned fits (weak candidates with a flat width direction) creep along a
         # valley; after a few steps, a possible gain below one unit of chi2 is good enough.
-        done = active & ((predicted < 1e-2) | ((it >= 5) & (predicted < 1.0)) | (lam >= 1e7))
+        done = active & ((predicted < tol) | ((it >= 5) & (predicted < 1.0)) | (lam >= 1e7))
         bsel = better[:, None]
         b0 = np.where(better, nb0, b0)
         c = np.where(bsel, nc, c)
@@ -427,7 +424,7 @@ def _fit_batch(groups, state, ctx, noise, neighbours_model):
         frac = np.where(better[:, None, None], nfrac, frac)
         # Variance from the model at the accepted point (not from the data).
         var = np.where(bsel, noise.variance(level_of(model)), var)
-        w = np.where(valid, 1.0 / var, 0.0)
+        w = valid_f / var
         resid = y - model
         chi2 = np.sum(w * resid * resid, axis=1)
         active &= ~done
@@ -438,7 +435,7 @@ def _fit_batch(groups, state, ctx, noise, neighbours_model):
     wj = jac * w[:, None, :]
     hess = np.einsum("gpl,gql->gpq", wj, jac)
     diag = np.einsum("gpp->gp", hess)
-    dead = frozen | (diag <= 0)
+    dead = diag <= 0
     hess = np.where(dead[:, :, None] | dead[:, None, :], eye, hess)
     try:
         cov = np.linalg.inv(hess)
@@ -449,8 +446,13 @@ def _fit_batch(groups, state, ctx, noise, neighbours_model):
     dof = np.count_nonzero(valid, axis=1) - n_free
     # Leverage of each pixel (for the noise re-estimate).
     lev = np.einsum("gpl,gpq,gql->gl", jac, cov, jac) * w
-    # Shape-fixed flux significance on a known background (the matched-filter SNR).
-    info_f = np.einsum("gkl,gl->gk", frac * frac, w)
+    # Detection significance: the matched filter (LSF-shaped, known background) applied at
+    # the fitted centre to the data minus every other component -- a statistic with unit
+    # spread under noise, unlike the flux over its free-shape error.
+    frac_lsf, _, _ = _integrated(xf[:, None, :], c[..., None], ctx.sigma_lsf)
+    alone = resid[:, None, :] + f[..., None] * frac
+    info_f = np.einsum("gkl,gl->gk", frac_lsf * frac_lsf, w)
+    mf_num = np.einsum("gkl,gl->gk", frac_lsf * alone, w)
     comp = m
     state.centre[comp] = c
     state.sigma[comp] = s
@@ -459,7 +461,8 @@ def _fit_batch(groups, state, ctx, noise, neighbours_model):
     state.centre_err[comp] = np.sqrt(np.maximum(cov[:, 1::3, 1::3].diagonal(axis1=1, axis2=2), 0))
     state.sigma_err[comp] = np.sqrt(np.maximum(cov[:, 2::3, 2::3].diagonal(axis1=1, axis2=2), 0))
     state.flux_err[comp] = np.sqrt(np.maximum(cov[:, 3::3, 3::3].diagonal(axis1=1, axis2=2), 0))
-    state.snr[comp] = f * np.sqrt(info_f)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        state.snr[comp] = np.where(info_f > 0, mf_num / np.sqrt(info_f), 0.0)
     state.chi2[comp] = chi2[:, None]
     state.dof[comp] = dof[:, None]
     state.converged[comp] = converged[:, None]
@@ -478,7 +481,6 @@ class _State:
     centre: np.ndarray
     sigma: np.ndarray
     flux: np.ndarray
-    fix_sigma: np.ndarray
 
     def __post_init__(self):
         n = self.centre.size
@@ -494,8 +496,7 @@ class _State:
         self.group_size = np.ones(n, int)
 
     def subset(self, keep):
-        new = _State(self.centre[keep].copy(), self.sigma[keep].copy(), self.flux[keep].copy(),
-                     self.fix_sigma[keep].copy())
+        new = _State(self.centre[keep].copy(), self.sigma[keep].copy(), self.flux[keep].copy())
         for name in ("bg_offset", "centre_err", "sigma_err", "flux_err", "snr", "chi2", "dof",
                      "converged", "group_size"):
             setattr(new, name, getattr(self, name)[keep].copy())
@@ -503,7 +504,7 @@ class _State:
 
     def extend(self, centre, sigma, flux):
         new = _State(np.r_[self.centre, centre], np.r_[self.sigma, sigma],
-                     np.r_[self.flux, flux], np.r_[self.fix_sigma, np.zeros(centre.size, bool)])
+                     np.r_[self.flux, flux])
         return new
 
 
@@ -531,7 +532,7 @@ def _lines_model(state, n, keep=None):
     return np.bincount(pix[ok], weights=(f[:, None] * frac)[ok], minlength=n)
 
 
-def _fit_all(state, ctx, noise, near=None):
+def _fit_all(state, ctx, noise, near=None, tol=1e-2):
     """Fit every component (grouped jointly), other lines' models held fixed.
 
     With ``near`` (pixel positions), only the groups within reach of those are refitted.
@@ -549,7 +550,7 @@ def _fit_all(state, ctx, noise, near=None):
             if not hit.any():
                 continue
             groups = _Groups(member=groups.member[hit], lo=groups.lo[hit], hi=groups.hi[hit])
-        diag.append(_fit_batch(groups, state, ctx, noise, everything))
+        diag.append(_fit_batch(groups, state, ctx, noise, everything, tol))
     return diag
 
 
@@ -615,12 +616,13 @@ def _reestimate_slope(noise, diag):
     median_chi2_1 = 0.45493642311957283  # median of chi-square, 1 dof (common practice)
     # stat(b) decreases with b: bracket its crossing of the median on a coarse grid, then on
     # a fine one inside the bracket.
-    lo_f, hi_f = 0.05, 20.0
+    base = noise.b if noise.b > 0 else noise.a / max(noise.ref, np.sqrt(noise.a))
+    lo_f, hi_f = 0.01, 20.0
     for n_grid in (17, 17):
-        trial = noise.b * np.geomspace(lo_f, hi_f, n_grid)
+        trial = base * np.geomspace(lo_f, hi_f, n_grid)
         stat = np.median(e2[None, :] / (noise.a + trial[:, None] * delta[None, :]), axis=1)
         j = int(np.clip(np.searchsorted(-stat, -median_chi2_1), 1, trial.size - 1))
-        lo_f, hi_f = trial[j - 1] / noise.b, trial[j] / noise.b
+        lo_f, hi_f = trial[j - 1] / base, trial[j] / base
     t0, t1, s0, s1 = trial[j - 1], trial[j], stat[j - 1], stat[j]
     b = t0 + (t1 - t0) * (s0 - median_chi2_1) / (s0 - s1) if s0 != s1 else t0
     return _Noise(a=noise.a, b=float(max(b, 0.0)), ref=noise.ref, method=noise.method)
@@ -651,7 +653,7 @@ _COLUMNS = {
     "flux": ("ct", "total counts in the line"),
     "flux_err": ("ct", "1-sigma uncertainty of the flux"),
     "background": ("ct / pix", "background level under the line centre"),
-    "snr": ("", "flux over its uncertainty for a line of the fitted shape (matched filter)"),
+    "snr": ("", "matched-filter significance at the centre (LSF-shaped, other lines removed)"),
 }
 
 
@@ -739,6 +741,7 @@ def find_lines(
     gain: float | None = None,
     read_noise: float | None = None,
     dark=None,
+    _rerun: bool = False,
 ):
     """Find the emission lines of a spectrum and fit each with a pixel-integrated Gaussian.
 
@@ -939,12 +942,12 @@ def find_lines(
     den = zl - 2 * z0 + zr
     shift = np.where(den < 0, 0.5 * (zl - zr) / np.where(den < 0, den, -1), 0.0)
     cand_c = cand_c + np.clip(shift, -0.5, 0.5)
-    state = _State(cand_c, np.full(cand_c.size, sigma_lsf), cand_f, np.zeros(cand_c.size, bool))
+    state = _State(cand_c, np.full(cand_c.size, sigma_lsf), cand_f)
     n_candidates = int(cand_c.size + clipped["pixel"].size)
     ctx = _Context(n=n, excess=excess, background=bg, ok=ok, sigma_lsf=sigma_lsf)
 
-    # Pass 1.
-    diag = _fit_all(state, ctx, noise)
+    # Pass 1 (a loose tolerance: pass 2 refines every line).
+    diag = _fit_all(state, ctx, noise, tol=0.5)
     if gain is None and "fit residuals" in noise.method:
         noise = _reestimate_slope(noise, diag)
     state, rejected = _prune(state, ctx, fwhm, 0.5 * min_snr, rejected, final=False)
@@ -978,11 +981,24 @@ def find_lines(
 
     # LSF estimate from the clean, isolated, bright lines.
     fw = FWHM_PER_SIGMA * state.sigma
-    clean = (state.group_size == 1) & (state.snr > 20) & (state.converged)
+    single = (state.group_size == 1) & state.converged
+    clean = single & (state.snr > 20)
+    if np.count_nonzero(clean) < 3:
+        clean = single & (state.snr >= min_snr)  # a faint spectrum: use what there is
     lsf_fit = None
     if np.count_nonzero(clean) >= 3:
         lsf_fit = float(np.median(fw[clean]))
         if fwhm_guess is None:
+            if abs(lsf_fit / fwhm - 1.0) > 0.1 and not _rerun:
+                # The width used for detection was far off: detect and fit again with the
+                # measured one (matched filter, grouping and significance depend on it).
+                again = find_lines(spectrum, min_snr=min_snr, fwhm_guess=lsf_fit,
+                                   saturation=saturation, gain=gain, read_noise=read_noise,
+                                   dark=dark, _rerun=True)
+                again.meta["lsf_method"] = (
+                    f"{lsf_method}; refitted with the median fitted FWHM of "
+                    f"{np.count_nonzero(clean)} lines")
+                return again
             fwhm = lsf_fit
             lsf_method += f" (median fitted FWHM of {np.count_nonzero(clean)} lines)"
     meta.update(_meta_tail(noise, fwhm, lsf_fit, lsf_method, rejected, n_candidates, min_snr))
@@ -1176,7 +1192,7 @@ def line_background(spectrum, lines, *, dark=None) -> np.ndarray:
         fitted = np.asarray([("saturated" not in f) for f in lines["flags"]], bool)
         sig = np.asarray(lines["fwhm_pixel"], float)[fitted] / FWHM_PER_SIGMA
         st = _State(np.asarray(lines["pixel"], float)[fitted], sig,
-                    np.asarray(lines["flux"], float)[fitted], np.zeros(sig.size, bool))
+                    np.asarray(lines["flux"], float)[fitted])
         counts = counts - _lines_model(st, counts.size)
     if not ok.any():
         return np.zeros(counts.size)
