@@ -26,6 +26,48 @@ How a lamp exposure is solved
 
 With ``guess=`` (an earlier Solution) the search is a vote over the shift only, and the fit
 is the earlier shape moved by a shift and a small stretch when few lines are found.
+
+The solution file (schema ``ritzline.wavelength-solution``, version 1)
+-----------------------------------------------------------------------
+A UTF-8 JSON object, written atomically by :meth:`Solution.save`:
+
+``schema``, ``schema_version``
+    ``"ritzline.wavelength-solution"`` and the integer ``1``; any other value is refused.
+``polynomial``
+    ``kind`` ``"chebyshev"``; ``variable`` (text: ``x = 2*pixel/(n_pixels-1) - 1``);
+    ``domain`` ``[0, n_pixels-1]`` (pixel 0 is the centre of the first pixel);
+    ``coefficients`` (nm, lowest order first); ``covariance`` (nm^2, square, one row per
+    coefficient: chi-square-scaled formal plus jackknife covariance); ``model_spread``
+    (Chebyshev coefficients, nm: next-degree fit minus this one, part of the band).
+``wavelength_unit``
+    ``"nm"``.
+``medium``
+    ``"air"`` (standard air) or ``"vacuum"``.
+``lamps``
+    Lamp names used, e.g. ``["Hg", "Ar"]``.
+``n_pixels``
+    Detector length (integer).
+``fwhm_pixel``
+    Median LSF FWHM of the fitted lines in pixels, or ``null``.
+``rms_nm``, ``rms_pixel``
+    RMS residual of the fitted lines.
+``confidence``, ``verdict``
+    One minus the corrected chance-match probability, and ``"confident"`` or
+    ``"confident (from guess)"``.
+``lines``
+    One object per matched detection: ``pixel``, ``pixel_err``, ``wavelength_ref``,
+    ``wavelength_ref_err``, ``species``, ``designation``, ``flux``, ``snr`` (``null`` when
+    unknown), ``residual_nm`` (fit minus reference), ``used`` (bool), ``reason`` (why a line
+    was not fitted: "blended", "edge", "outlier 5.3 sigma", "reference: ...", or "").
+``meta``
+    Provenance: ``created`` (ISO 8601 UTC), ``ritzline_version``, ``input`` and
+    ``input_sha256`` (the lamp exposure, when calibrated from a file), ``wavelength_range``,
+    ``method``, ``p_chance``, ``log10_p_chance``, ``n_hypotheses``, ``chi2_reduced``,
+    ``n_detected``, ``n_reference``, ``solve_seconds``.
+
+The band reported by :meth:`Solution.wavelength_err` is computed from ``covariance``,
+``model_spread`` (its running maximum beyond the outermost used line) and, beyond the
+outermost used lines, a curvature prior of ``NONLINEARITY_PRIOR`` x half-span x distance^2.
 """
 
 from __future__ import annotations
@@ -36,6 +78,7 @@ import math
 import os
 import time
 from dataclasses import dataclass, field
+from functools import cached_property
 from pathlib import Path
 from typing import Any
 
@@ -97,10 +140,11 @@ class Solution:
         "air" or "vacuum".
     lamps : tuple of str
         Lamp names used.
-    matches : astropy.table.Table
-        One row per detection associated with a reference line: ``pixel, pixel_err,
-        wavelength_ref, wavelength_ref_err, species, designation, flux, snr, wavelength_fit,
-        residual_nm, residual_pixel, used, reason``.
+    lines : dict of ndarray
+        One entry per detection associated with a reference line: ``pixel, pixel_err,
+        wavelength_ref, wavelength_ref_err, species, designation, flux, snr, residual_nm,
+        used, reason``; :attr:`matches` is the same as an astropy Table (built on first use,
+        so that loading a solution does not import astropy).
     rms_nm, rms_pixel : float
         Unweighted RMS of the residuals of the used lines.
     confidence : float
@@ -124,7 +168,7 @@ class Solution:
     n_pixels: int
     medium: str
     lamps: tuple[str, ...]
-    matches: Any
+    lines: dict
     rms_nm: float
     rms_pixel: float
     confidence: float
@@ -134,6 +178,12 @@ class Solution:
     meta: dict = field(default_factory=dict)
 
     # -- evaluation --------------------------------------------------------------------
+    @cached_property
+    def matches(self):
+        """The matched lines as an astropy Table with units (plus ``wavelength_fit`` and
+        ``residual_pixel``)."""
+        return _matches_table(self.lines, self)
+
     @property
     def degree(self) -> int:
         """Degree of the Chebyshev series."""
@@ -161,9 +211,9 @@ class Solution:
         v = _cheb.chebvander(xr, self.degree)
         var = np.einsum("ij,jk,ik->i", v, self.covariance, v)
         spread = np.abs(_cheb.chebval(xr, self.model_spread))
-        used = np.asarray(self.matches["used"], bool) if len(self.matches) else None
-        if used is not None and used.any():
-            px = np.asarray(self.matches["pixel"], float)[used]
+        used = np.asarray(self.lines["used"], bool)
+        if used.any():
+            px = np.asarray(self.lines["pixel"], float)[used]
             lo, hi = self._x(px.min()), self._x(px.max())
             edge = np.clip(xr, lo, hi)
             t = np.linspace(0.0, 1.0, 33)
@@ -204,25 +254,23 @@ class Solution:
     # -- file ----------------------------------------------------------------------------
     def to_dict(self) -> dict:
         """The JSON document (schema ``ritzline.wavelength-solution`` version 1)."""
-        m = self.matches
-        lines = []
-        if m is not None and len(m):
-            for row in m:
-                lines.append(
-                    {
-                        "pixel": float(row["pixel"]),
-                        "pixel_err": float(row["pixel_err"]),
-                        "wavelength_ref": float(row["wavelength_ref"]),
-                        "wavelength_ref_err": float(row["wavelength_ref_err"]),
-                        "species": str(row["species"]),
-                        "designation": str(row["designation"]),
-                        "flux": _json_float(row["flux"]),
-                        "snr": _json_float(row["snr"]),
-                        "residual_nm": float(row["residual_nm"]),
-                        "used": bool(row["used"]),
-                        "reason": str(row["reason"]),
-                    }
-                )
+        m = self.lines
+        lines = [
+            {
+                "pixel": float(m["pixel"][i]),
+                "pixel_err": float(m["pixel_err"][i]),
+                "wavelength_ref": float(m["wavelength_ref"][i]),
+                "wavelength_ref_err": float(m["wavelength_ref_err"][i]),
+                "species": str(m["species"][i]),
+                "designation": str(m["designation"][i]),
+                "flux": _json_float(m["flux"][i]),
+                "snr": _json_float(m["snr"][i]),
+                "residual_nm": float(m["residual_nm"][i]),
+                "used": bool(m["used"][i]),
+                "reason": str(m["reason"][i]),
+            }
+            for i in range(len(m["pixel"]))
+        ]
         return {
             "schema": SCHEMA_NAME,
             "schema_version": SCHEMA_VERSION,
@@ -357,14 +405,14 @@ class Solution:
         meta = doc.get("meta", {})
         if not isinstance(meta, dict):
             raise bad("field 'meta' must be an object")
-        matches = _lines_table(lines, bad)
+        line_cols = _lines_columns(lines, bad)
         return cls(
             coefficients=coef,
             covariance=cov,
             n_pixels=n_pixels,
             medium=medium,
             lamps=tuple(lamps),
-            matches=matches,
+            lines=line_cols,
             rms_nm=rms_nm,
             rms_pixel=rms_px,
             confidence=conf,
@@ -376,7 +424,7 @@ class Solution:
 
     def summary(self) -> dict:
         """The figures a person reads first (used by the CLI report)."""
-        used = np.asarray(self.matches["used"], bool) if len(self.matches) else np.zeros(0, bool)
+        used = np.asarray(self.lines["used"], bool)
         disp = np.abs(self.dispersion(np.linspace(0, self.n_pixels - 1, 64)))
         return {
             "lines_used": int(used.sum()),
@@ -419,9 +467,7 @@ def _numbers(value, name: str, bad) -> np.ndarray:
     return arr
 
 
-def _lines_table(lines: list, bad):
-    from astropy.table import Table
-
+def _lines_columns(lines: list, bad) -> dict:
     cols: dict[str, list] = {k: [] for k in (*_LINE_FIELDS, "flux", "snr")}
     for i, item in enumerate(lines):
         if not isinstance(item, dict):
@@ -438,51 +484,41 @@ def _lines_table(lines: list, bad):
         for key in ("flux", "snr"):
             value = item.get(key)
             cols[key].append(float("nan") if value is None else float(value))
-    return _matches_table(
-        pixel=np.array(cols["pixel"], float),
-        pixel_err=np.array(cols["pixel_err"], float),
-        wavelength_ref=np.array(cols["wavelength_ref"], float),
-        wavelength_ref_err=np.array(cols["wavelength_ref_err"], float),
-        species=cols["species"],
-        designation=cols["designation"],
-        flux=np.array(cols["flux"], float),
-        snr=np.array(cols["snr"], float),
-        residual_nm=np.array(cols["residual_nm"], float),
-        used=np.array(cols["used"], bool),
-        reason=cols["reason"],
-        table_cls=Table,
-    )
+    return _line_columns(**cols)
 
 
-def _matches_table(*, table_cls=None, wavelength_fit=None, dispersion=None, **cols):
-    if table_cls is None:
-        from astropy.table import Table as table_cls
+def _line_columns(**cols) -> dict:
+    """The matched-line columns as numpy arrays (the one layout Solution keeps)."""
+    out = {}
+    for key in ("pixel", "pixel_err", "wavelength_ref", "wavelength_ref_err", "flux", "snr",
+                "residual_nm"):
+        out[key] = np.asarray(cols[key], float).reshape(-1)
+    for key in ("species", "designation", "reason"):
+        out[key] = np.asarray(cols[key], dtype=str).reshape(-1)
+    out["used"] = np.asarray(cols["used"], bool).reshape(-1)
+    return out
+
+
+def _matches_table(lines: dict, solution: Solution):
     import astropy.units as u
+    from astropy.table import Table
 
-    n = len(cols["pixel"])
-    if wavelength_fit is None:
-        wavelength_fit = np.asarray(cols["wavelength_ref"], float) + np.asarray(
-            cols["residual_nm"], float
-        )
-    residual_px = (
-        np.asarray(cols["residual_nm"], float) / dispersion
-        if dispersion is not None
-        else np.full(n, np.nan)
-    )
-    t = table_cls()
-    t["pixel"] = np.asarray(cols["pixel"], float) * u.pix
-    t["pixel_err"] = np.asarray(cols["pixel_err"], float) * u.pix
-    t["wavelength_ref"] = np.asarray(cols["wavelength_ref"], float) * u.nm
-    t["wavelength_ref_err"] = np.asarray(cols["wavelength_ref_err"], float) * u.nm
-    t["species"] = np.asarray(cols["species"], dtype=str) if n else np.zeros(0, "U1")
-    t["designation"] = np.asarray(cols["designation"], dtype=str) if n else np.zeros(0, "U1")
-    t["flux"] = np.asarray(cols["flux"], float) * u.ct
-    t["snr"] = np.asarray(cols["snr"], float)
-    t["wavelength_fit"] = np.asarray(wavelength_fit, float) * u.nm
-    t["residual_nm"] = np.asarray(cols["residual_nm"], float) * u.nm
-    t["residual_pixel"] = residual_px * u.pix
-    t["used"] = np.asarray(cols["used"], bool)
-    t["reason"] = np.asarray(cols["reason"], dtype=str) if n else np.zeros(0, "U1")
+    t = Table()
+    t["pixel"] = lines["pixel"] * u.pix
+    t["pixel_err"] = lines["pixel_err"] * u.pix
+    t["wavelength_ref"] = lines["wavelength_ref"] * u.nm
+    t["wavelength_ref_err"] = lines["wavelength_ref_err"] * u.nm
+    t["species"] = lines["species"]
+    t["designation"] = lines["designation"]
+    t["flux"] = lines["flux"] * u.ct
+    t["snr"] = lines["snr"]
+    t["wavelength_fit"] = solution.wavelength(lines["pixel"]) * u.nm
+    t["residual_nm"] = lines["residual_nm"] * u.nm
+    disp = solution.dispersion(lines["pixel"]) if len(lines["pixel"]) else np.zeros(0)
+    t["residual_pixel"] = lines["residual_nm"] / np.where(disp == 0, np.nan, disp) * u.pix
+    t["used"] = lines["used"]
+    t["reason"] = lines["reason"]
+    t.meta.update(medium=solution.medium, lamps=list(solution.lamps))
     return t
 
 
@@ -1111,7 +1147,7 @@ def _solution_from_fit(det, ref, fit: _Fit, lamps, medium, meta, verdict) -> Sol
     used = fit.used
     rms_nm = float(np.sqrt(np.mean(resid[used] ** 2)))
     rms_px = float(np.sqrt(np.mean((resid[used] / disp[used]) ** 2)))
-    matches = _matches_table(
+    line_cols = _line_columns(
         pixel=det.pixel[fit.di],
         pixel_err=det.pixel_err[fit.di],
         wavelength_ref=ref.wavelength[fit.ri],
@@ -1123,8 +1159,6 @@ def _solution_from_fit(det, ref, fit: _Fit, lamps, medium, meta, verdict) -> Sol
         residual_nm=resid,
         used=used,
         reason=fit.reason,
-        wavelength_fit=wfit,
-        dispersion=disp,
     )
     fw = det.fwhm[fit.di][used]
     fw = fw[np.isfinite(fw)]
@@ -1138,7 +1172,7 @@ def _solution_from_fit(det, ref, fit: _Fit, lamps, medium, meta, verdict) -> Sol
         n_pixels=n,
         medium=medium,
         lamps=tuple(lamps),
-        matches=matches,
+        lines=line_cols,
         rms_nm=rms_nm,
         rms_pixel=rms_px,
         confidence=float(1.0 - p_chance),
