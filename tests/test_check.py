@@ -587,3 +587,26 @@ def test_drift_is_robust_to_missing_extra_and_saturated_lines_and_spikes(bench, 
     table = check.check_exposures(paths, bench["solution"], workers=2)
     got = np.asarray(table["shift_px"], float)
     assert np.max(np.abs(got - shifts)) < 0.02
+
+
+def test_figures_put_time_stamps_with_offsets_on_one_utc_axis(tmp_path):
+    from ritzline.plots import _check_axis, plot_check_drift
+
+    rows = []
+    for i, stamp in enumerate(["2026-03-14T08:00:00+01:00", "2026-03-14T07:30:00Z", ""]):
+        row = check._blank_row(f"f{i}")
+        row.update(status="error" if not stamp else "pass", timestamp=stamp, shift_px=0.1,
+                   shift_err_px=0.01)
+        rows.append(row)
+    x, label, is_time = _check_axis(summary_table(rows))
+    assert is_time and label == "time stamp (UTC)"
+    assert x[0] == np.datetime64("2026-03-14T07:00:00") and np.isnat(x[2])
+    assert plot_check_drift(summary_table(rows), tmp_path / "d.png").stat().st_size > 1000
+
+
+def test_figures_fall_back_to_input_order_when_a_stamp_is_missing():
+    from ritzline.plots import _check_axis
+
+    rows = [dict(check._blank_row("a"), status="pass", timestamp="2026-03-14T08:00:00"),
+            dict(check._blank_row("b"), status="pass", timestamp="")]
+    assert _check_axis(summary_table(rows))[1] == "exposure (input order)"

@@ -319,24 +319,36 @@ CHECK_STATUS_COLOURS = {"pass": "#2e7d32", "warn": "#f9a825", "fail": "#c62828",
 
 
 def _check_axis(summary):
-    """x values and label for batch figures: time stamps when every checked row has one,
-    else the exposure order."""
+    """x values and label for batch figures: time stamps when every checked row has one
+    that parses, else the exposure order."""
+    from datetime import UTC, datetime
+
     import numpy as np
 
     n = len(summary)
     order = np.asarray(summary["index"], float) if "index" in summary.colnames else np.arange(n)
-    stamps = [str(s) for s in summary["timestamp"]] if "timestamp" in summary.colnames else []
-    ok = [s for s, st in zip(stamps, summary["status"], strict=False) if st != "error"]
-    if ok and all(ok):
+    if "timestamp" not in summary.colnames or n == 0:
+        return order, "exposure (input order)", False
+    status = np.asarray(summary["status"], str)
+    stamps = [str(s).strip() for s in summary["timestamp"]]
+    if not all(s for s, st in zip(stamps, status, strict=True) if st != "error"):
+        return order, "exposure (input order)", False
+    times = []
+    aware = False
+    for s in stamps:
+        if not s:
+            times.append(np.datetime64("NaT"))
+            continue
         try:
-            times = np.array(
-                [np.datetime64(s.replace("Z", "")) if s else np.datetime64("NaT") for s in stamps],
-                dtype="datetime64[ms]",
-            )
+            t = datetime.fromisoformat(s.replace("Z", "+00:00"))
         except ValueError:
             return order, "exposure (input order)", False
-        return times, "time stamp (as written in the files)", True
-    return order, "exposure (input order)", False
+        if t.tzinfo is not None:
+            aware = True
+            t = t.astimezone(UTC).replace(tzinfo=None)
+        times.append(np.datetime64(t, "ms"))
+    label = "time stamp (UTC)" if aware else "time stamp (as written in the files)"
+    return np.array(times, dtype="datetime64[ms]"), label, True
 
 
 def _check_status_points(ax, x, y, yerr, status):
