@@ -610,3 +610,23 @@ def test_figures_fall_back_to_input_order_when_a_stamp_is_missing():
     rows = [dict(check._blank_row("a"), status="pass", timestamp="2026-03-14T08:00:00"),
             dict(check._blank_row("b"), status="pass", timestamp="")]
     assert _check_axis(summary_table(rows))[1] == "exposure (input order)"
+
+
+def test_fits_and_ecsv_exposures_are_checked_like_text(bench, tmp_path):
+    from astropy.io import fits
+
+    from ritzline.spectrum import read_spectrum, write_spectrum
+
+    text = bench["paths"][3]
+    spectrum = read_spectrum(text)
+    counts = np.asarray(spectrum.flux.value, float)
+    hdu = fits.PrimaryHDU(counts.astype(np.float32))
+    hdu.header["DATE-OBS"] = "2026-03-14T09:15:00"
+    hdu.header["SATURATE"] = 65535.0
+    fits_path = tmp_path / "exp.fits"
+    hdu.writeto(fits_path)
+    ecsv_path = write_spectrum(spectrum, tmp_path / "exp.ecsv")
+    table = check.check_exposures([text, fits_path, ecsv_path], bench["solution"], workers=1)
+    assert list(table["status"]) == ["warn"] * 3
+    assert np.ptp(np.asarray(table["shift_px"], float)) < 1e-3  # float32 rounding in FITS
+    assert table["timestamp"][1] == "2026-03-14T09:15:00"
