@@ -1429,11 +1429,11 @@ def _calibrate_blind(det: _Lines, ref: _Refs, wrange, degree, blended_refs):
     """Search, grow and fit from each vote cell; keep the least likely to be chance.  Then,
     with the resolution now known, drop reference lines blended at it and refit."""
     seeds, n_votes = _seed_candidates(det, ref, wrange)
-    # Look-elsewhere factor: the number of candidate solutions grown and tested.  The vote
-    # that picks them is itself a search; on simulated wrong-lamp and random-line exposures
-    # the uncorrected chance of the best candidate behaves like a uniform p-value (see
-    # tests/benchmarks/bench_calibrate.py), so this factor is what remains to correct.
-    n_hyp = max(len(seeds), 1)
+    # Look-elsewhere factor: the number of distinct candidate solutions grown and tested.
+    # The vote that picks them is itself a search; on simulated wrong-lamp and random-line
+    # exposures the uncorrected chance of the best candidate behaves like a uniform p-value
+    # (see tests/benchmarks/bench_calibrate.py), so this factor is what remains to correct.
+    distinct: set = set()
     fw = det.fwhm[np.isfinite(det.fwhm) & ~det.bad]
     fw_px = float(np.median(fw)) if fw.size else float("nan")
     lists: dict[int, _Refs] = {}
@@ -1463,14 +1463,18 @@ def _calibrate_blind(det: _Lines, ref: _Refs, wrange, degree, blended_refs):
         fit = _refine(det, ref_s, fit, degree)
         if fit is None or fit.used.sum() < 4:
             continue
-        fit.n_hyp = n_hyp
         fit.n_votes = n_votes
-        fit.log10_p = _log10_chance(det, ref_s, fit, fit.n_hyp, len(fit.coef))
+        fit.log10_p = _log10_chance(det, ref_s, fit, 1, len(fit.coef))
+        distinct.add(tuple(zip(fit.di[fit.used].tolist(),
+                               np.round(ref_s.wavelength[fit.ri[fit.used]], 4).tolist(),
+                               strict=True)))
         if best is None or fit.log10_p < best.log10_p:
             best, best_ref = fit, ref_s
     if best is None:
         return None, ref
     ref = best_ref
+    best.n_hyp = len(distinct)
+    best.log10_p = _log10_chance(det, ref, best, best.n_hyp, len(best.coef))
     fwhm_nm = _fwhm_nm(det, best)
     if math.isfinite(fwhm_nm):
         ref2 = blended_refs(fwhm_nm)
