@@ -236,3 +236,27 @@ def test_cli_calibrate_wrong_lamp_exits_2(tmp_path):
     assert res.exit_code == 2
     assert "error:" in res.output
     assert not (tmp_path / "s.json").exists()
+
+
+def test_cli_calibrate_with_guess_and_fixed_degree(tmp_path):
+    ins = _instrument()
+    counts, _ = _exposure(ins, "Ne")
+    lamp = tmp_path / "lamp.txt"
+    np.savetxt(lamp, counts)
+    first = tmp_path / "first.json"
+    runner = CliRunner()
+    assert runner.invoke(main, ["calibrate", str(lamp), "--lamp", "Ne", "-o", str(first),
+                                "--degree", "3"]).exit_code == 0
+    assert Solution.load(first).degree == 3
+    res = runner.invoke(main, ["calibrate", str(lamp), "--lamp", "Ne", "--guess", str(first),
+                               "-o", str(tmp_path / "again.json"), "--json"])
+    assert res.exit_code == 0, res.output
+    assert json.loads(res.output)["verdict"] == "confident (from guess)"
+
+
+def test_guess_from_another_detector_size_is_refused():
+    ins = _instrument()
+    counts, _ = _exposure(ins, "Ne")
+    sol = calibrate(counts, "Ne")
+    with pytest.raises(CalibrationError, match="pixels"):
+        calibrate(counts[:2000], "Ne", guess=sol)
