@@ -94,3 +94,18 @@ def test_report_sorts_by_a_numeric_column_when_its_heading_is_clicked(tmp_path):
     dom, _ = chromium_dom(page, tmp_path)
     shown = [float(v) for v in re.search(r'data-sorted="([^"]*)"', dom).group(1).split()]
     assert shown == sorted(np.asarray(table["shift_px"], float).tolist())
+
+
+def test_clicking_a_status_total_shows_only_those_exposures(tmp_path):
+    table = check.summary_table(rows(12, bad={2, 5}))
+    html = report_html(table, INFO)
+    probe = """<script>
+    document.querySelector('.totals [data-status="error"]').click();
+    var shown=[].filter.call(document.getElementById('rows').tBodies[0].rows,function(r){
+      return r.style.display!=='none';}).map(function(r){return r.cells[0].textContent;});
+    document.body.setAttribute('data-shown', shown.join(' '));
+    </script></body>"""
+    page = tmp_path / "report.html"
+    page.write_text(html.replace("</body>", probe), encoding="utf-8")
+    dom, _ = chromium_dom(page, tmp_path)
+    assert re.search(r'data-shown="([^"]*)"', dom).group(1).split() == ["2", "5"]

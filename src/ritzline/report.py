@@ -58,7 +58,7 @@ _CSS = """
 body{font-family:system-ui,-apple-system,"Segoe UI",sans-serif;margin:1.5em;color:#222}
 h1{font-size:1.4em;margin-bottom:.2em} h2{font-size:1.1em;margin-top:1.6em}
 .totals span{display:inline-block;margin-right:1.2em;padding:.2em .6em;border-radius:4px;
- color:#fff;font-weight:600}
+ color:#fff;font-weight:600;cursor:pointer}
 .pass{background:#2e7d32}.warn{background:#f9a825;color:#222!important}.fail{background:#c62828}
 .error{background:#6a1b9a}.all{background:#455a64}
 table.meta td{padding:.1em .8em .1em 0;vertical-align:top}
@@ -98,9 +98,16 @@ _JS = """
     });
   });
   var filter=document.getElementById('filter');
-  filter.addEventListener('input',function(){var q=filter.value.toLowerCase();
+  function show(q,status){
     Array.prototype.forEach.call(body.rows,function(r){
-      r.style.display=(!q||r.textContent.toLowerCase().indexOf(q)>=0)?'':'none';});
+      var ok=status?r.className==='s-'+status:(!q||r.textContent.toLowerCase().indexOf(q)>=0);
+      r.style.display=ok?'':'none';});
+  }
+  filter.addEventListener('input',function(){show(filter.value.toLowerCase(),null);});
+  // a click on a total shows only the exposures with that status ("total": all of them)
+  Array.prototype.forEach.call(document.querySelectorAll('.totals [data-status]'),function(b){
+    b.addEventListener('click',function(){filter.value='';
+      show('',b.getAttribute('data-status')==='all'?null:b.getAttribute('data-status'));});
   });
   document.body.setAttribute('data-ritzline-ready', String(body.rows.length));
 })();
@@ -164,10 +171,11 @@ def report_parts(summary, info: Mapping, figures: Mapping[str, bytes] | None = N
         f"{html.escape(str(info.get('reference', {}).get('reference_solution', '')))} "
         f"with ritzline {html.escape(__version__)}.</p>",
         '<p class="totals">',
-        f'<span class="all">{n} total</span>',
+        f'<span class="all" data-status="all" title="show all">{n} total</span>',
     ]
     for status in ("pass", "warn", "fail", "error"):
-        parts.append(f'<span class="{status}">{totals.get(status, 0)} {status}</span>')
+        parts.append(f'<span class="{status}" data-status="{status}" title="show only these">'
+                     f"{totals.get(status, 0)} {status}</span>")
     parts.append("</p>")
     if not info.get("complete", True):
         parts.append(
