@@ -630,3 +630,16 @@ def test_fits_and_ecsv_exposures_are_checked_like_text(bench, tmp_path):
     assert list(table["status"]) == ["warn"] * 3
     assert np.ptp(np.asarray(table["shift_px"], float)) < 1e-3  # float32 rounding in FITS
     assert table["timestamp"][1] == "2026-03-14T09:15:00"
+
+
+def test_an_unexpected_reader_exception_becomes_an_error_row(bench, monkeypatch):
+    import ritzline.spectrum
+
+    def broken(path, **kw):
+        raise KeyError("HDU")
+
+    monkeypatch.setattr(ritzline.spectrum, "read_spectrum", broken)
+    checker = check.ExposureChecker(check.reference_from_solution(bench["solution"]))
+    row = checker("odd.fits")
+    assert row["status"] == "error"
+    assert "odd.fits" in row["reasons"] and "KeyError" in row["reasons"]

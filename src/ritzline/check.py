@@ -538,9 +538,14 @@ class ExposureChecker:
             from .spectrum import read_spectrum
 
             spectrum = read_spectrum(path)
-        except (RitzlineError, OSError, ValueError) as exc:
+        except (RitzlineError, OSError) as exc:
             row["status"] = "error"
             row["reasons"] = " ".join(str(exc).split()) or type(exc).__name__
+            return row
+        except Exception as exc:  # a reader bug on one odd file must not stop the batch
+            row["status"] = "error"
+            msg = " ".join(str(exc).split())
+            row["reasons"] = f"{path}: could not be read ({type(exc).__name__}: {msg})"
             return row
         try:
             self._measure(spectrum, row)
