@@ -58,7 +58,7 @@ A UTF-8 JSON object, written atomically by :meth:`Solution.save`:
     One object per matched detection: ``pixel``, ``pixel_err``, ``wavelength_ref``,
     ``wavelength_ref_err``, ``species``, ``designation``, ``flux``, ``snr`` (``null`` when
     unknown), ``residual_nm`` (fit minus reference), ``used`` (bool), ``reason`` (why a line
-    was not fitted: "blended", "edge", "outlier 5.3 sigma", "reference: ...", or "").
+    was not fitted: "blend_suspect", "edge", "outlier 5.3 sigma", "reference: ...", or "").
 ``meta``
     Provenance: ``created`` (ISO 8601 UTC), ``ritzline_version``, ``input`` and
     ``input_sha256`` (the lamp exposure, when calibrated from a file), ``wavelength_range``,
@@ -553,7 +553,7 @@ class _Lines:
     flux: np.ndarray
     snr: np.ndarray
     fwhm: np.ndarray
-    bad: np.ndarray  # blended / edge: matched but not fitted
+    bad: np.ndarray  # suspected blend / edge: matched but not fitted
     reason: np.ndarray  # why a line is not fitted ("" when clean)
     n_pixels: int
 
@@ -614,8 +614,10 @@ def _detections(spectrum, n_pixels: int | None) -> tuple[_Lines, dict]:
     )
     reason = np.full(m, "", dtype=object)
     # Saturated lines are fitted: the line finder measures them from the unclipped wings and
-    # gives them their (larger) errors.  Blended and edge lines are matched, not fitted.
-    for word in ("blended", "blend_suspect", "edge"):
+    # gives them their (larger) errors; so are lines it fitted jointly with a neighbour
+    # ("blended"), whose errors hold down to one FWHM of separation.  Suspected unresolved
+    # blends and lines cut by the detector edge are matched, not fitted.
+    for word in ("blend_suspect", "edge"):
         has = np.char.find(flags.astype(str), word) >= 0
         reason[has & (reason == "")] = word
     order = np.argsort(p)
