@@ -301,7 +301,10 @@ def lamp_exposure(
     fwhm = instrument.fwhm_px
     sigma = fwhm / FWHM_PER_SIGMA
     pix_all = instrument.pixel(wl_all)
-    on = np.flatnonzero((pix_all > -3 * fwhm) & (pix_all < n - 1 + 3 * fwhm))
+    # far outside the detector the inverse can land on another branch of the polynomial
+    lo_nm, hi_nm = np.sort(instrument.wavelength([-3 * fwhm, n - 1 + 3 * fwhm]))
+    genuine = (wl_all >= lo_nm) & (wl_all <= hi_nm)
+    on = np.flatnonzero(genuine & (pix_all > -3 * fwhm) & (pix_all < n - 1 + 3 * fwhm))
     n_drop = round(rng.uniform(*missing) * on.size)
     drop = np.sort(rng.choice(on, size=n_drop, replace=False)) if n_drop else on[:0]
     keep = np.setdiff1d(on, drop)
