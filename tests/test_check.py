@@ -6,6 +6,7 @@ data); everything else checks our own bookkeeping against what was put in.
 """
 
 import json
+import multiprocessing
 import os
 import signal
 import subprocess
@@ -53,6 +54,10 @@ class NumberTask:
             row["status"] = "error"
             row["reasons"] = f"{path}: {exc}"
             return row
+        if value == "die" and multiprocessing.parent_process() is not None:
+            os._exit(3)  # a helper process killed mid-run (out of memory, say)
+        if value == "die":
+            value = -1
         row["status"] = "pass"
         row["shift_px"] = float(value)
         row["n_lines"] = int(value)
@@ -257,6 +262,16 @@ def test_resume_refuses_a_journal_made_with_other_settings(tmp_path):
     with pytest.raises(RitzlineError, match="without --resume"):
         run_batch(paths, NumberTask(), outdir=out, workers=1, fingerprint={"limit": 2},
                   resume=True)
+
+
+def test_a_dying_worker_stops_the_run_with_an_error_and_keeps_the_journal(tmp_path):
+    paths = write_numbers(tmp_path / "in", 40)
+    for p in paths[5:]:
+        p.write_text(json.dumps({"value": "die"}))
+    out = tmp_path / "out"
+    with pytest.raises(RitzlineError, match="worker process died"):
+        run_batch(paths, NumberTask(), outdir=out, workers=2, chunksize=2)
+    assert len(read_journal(out / "journal.jsonl")[1]) >= 1
 
 
 def test_read_journal_ignores_a_torn_last_line(tmp_path):

@@ -920,7 +920,8 @@ def _results_pool(task, items, workers: int, chunksize: int):
     The parent checks exposures too (between collecting the helpers' results), so
     ``workers=2`` is two processes, not three: the scientific stack is loaded once less.
     The parent checks the first exposure before the helpers start, so they inherit its
-    imports.
+    imports.  A helper that dies (killed, out of memory) stops the run with an error
+    instead of leaving it waiting; the journal keeps what was finished.
     """
     items = list(items)
     if not items:
@@ -933,22 +934,27 @@ def _results_pool(task, items, workers: int, chunksize: int):
         return
     import collections
     import multiprocessing as mp
+    from concurrent.futures import ProcessPoolExecutor
+    from concurrent.futures.process import BrokenProcessPool
 
     chunks = _chunks(rest, chunksize)
     window = 3 * (workers - 1)
-    pool = mp.get_context().Pool(workers - 1, initializer=_init_worker, initargs=(task,))
     pending: collections.deque = collections.deque()
+    executor = ProcessPoolExecutor(workers - 1, mp_context=mp.get_context(),
+                                   initializer=_init_worker, initargs=(task,))
 
     def submit() -> None:
         while len(pending) < window:
             chunk = next(chunks, None)
             if chunk is None:
                 return
-            pending.append(pool.apply_async(_run_chunk_in_worker, (chunk,)))
+            pending.append(executor.submit(_run_chunk_in_worker, chunk))
 
-    def harvest():
-        while pending and pending[0].ready():
-            yield from pending.popleft().get()
+    def harvest(block: bool = False):
+        while pending and (block or pending[0].done()):
+            yield from pending.popleft().result()
+            if block:
+                return
         submit()
 
     try:
@@ -961,13 +967,14 @@ def _results_pool(task, items, workers: int, chunksize: int):
                 yield index, key, task(path)
                 yield from harvest()
         while pending:
-            yield from pending.popleft().get()
-        pool.close()
-    except BaseException:
-        pool.terminate()
-        raise
+            yield from harvest(block=True)
+    except BrokenProcessPool as exc:
+        raise RitzlineError(
+            "a worker process died (killed or out of memory); the exposures finished so far "
+            "are kept: run the same command again with --resume"
+        ) from exc
     finally:
-        pool.join()
+        executor.shutdown(wait=True, cancel_futures=True)
 
 
 def _results_dask(task, items, scheduler: str, chunksize: int, workers: int | None):
