@@ -21,11 +21,15 @@ import time
 from collections.abc import Callable, Iterable, Iterator, Sequence
 from dataclasses import asdict, dataclass, field
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 import numpy as np
 
 from ._io import atomic_write, write_table
 from .errors import RitzlineError
+
+if TYPE_CHECKING:  # pragma: no cover
+    from astropy.table import Table
 
 __all__ = [
     "SUMMARY_COLUMNS",
@@ -176,7 +180,9 @@ class Reference:
         return h.hexdigest()[:16]
 
 
-def reference_from_solution(solution, *, lamp: str | Sequence[str] | None = None, dark=None):
+def reference_from_solution(
+    solution, *, lamp: str | Sequence[str] | None = None, dark=None
+) -> Reference:
     """Build a :class:`Reference` from a ``calibrate.Solution`` (or a path to one).
 
     Parameters
@@ -330,15 +336,15 @@ def _match_nearest(found: np.ndarray, predicted: np.ndarray, tol: float):
 
 
 def fit_drift(
-    found_pixel,
-    found_err,
-    ref_pixel,
-    ref_err,
+    found_pixel: np.ndarray,
+    found_err: np.ndarray,
+    ref_pixel: np.ndarray,
+    ref_err: np.ndarray,
     centre: float,
     *,
     search_px: float = 25.0,
     match_px: float = 2.0,
-    fit_mask=None,
+    fit_mask: np.ndarray | None = None,
     clip: float = 5.0,
 ) -> DriftFit:
     """Match found lines to reference lines and fit shift + stretch by weighted least squares.
@@ -847,7 +853,7 @@ class _SummaryColumns:
         return table
 
 
-def summary_table(rows: Sequence[dict], meta: dict | None = None):
+def summary_table(rows: Sequence[dict], meta: dict | None = None) -> Table:
     """The summary Table (units, descriptions, meta) from result rows, in the given order.
 
     ``index`` is the row's own ``index`` when set, else its position.
@@ -1200,7 +1206,7 @@ def check_exposures(
     pattern: str | None = None,
     progress: Callable[[int, int], None] | None = None,
     figures: bool = True,
-):
+) -> Table:
     """Check exposures against a reference solution; return the summary table.
 
     Parameters

@@ -9,7 +9,7 @@ import base64
 import html
 import math
 import os
-from collections.abc import Mapping
+from collections.abc import Iterator, Mapping
 from pathlib import Path
 
 from ._io import atomic_write
@@ -143,7 +143,9 @@ def report_html(summary, info: Mapping, figures: Mapping[str, bytes] | None = No
     return "\n".join(report_parts(summary, info, figures))
 
 
-def report_parts(summary, info: Mapping, figures: Mapping[str, bytes] | None = None):
+def report_parts(
+    summary, info: Mapping, figures: Mapping[str, bytes] | None = None
+) -> Iterator[str]:
     """The report page as a sequence of HTML fragments, one table row at a time, so a large
     batch can be written without holding the whole page in memory.
 
