@@ -8,6 +8,7 @@ pixel windows; lines closer than about two FWHM share a window and are fitted jo
 
 from __future__ import annotations
 
+import functools
 import warnings
 from dataclasses import dataclass
 
@@ -335,6 +336,109 @@ def _make_groups(centres, fwhm, n):
     return out
 
 
+def _profile_and_jacobian(edges, b0, c, s, f):
+    """Model counts, Jacobian (G, P, L) and unit profiles (G, K, L) from the pixel edges."""
+    inv_s = 1.0 / s[..., None]
+    u = (edges - c[..., None]) * inv_s
+    cdf = ndtr(u)
+    pdf = np.exp(-0.5 * u * u) * (1.0 / _SQRT2PI)
+    updf = u * pdf
+    frac = cdf[..., 1:] - cdf[..., :-1]  # each edge is shared by two pixels
+    d_c = (pdf[..., :-1] - pdf[..., 1:]) * inv_s
+    d_s = (updf[..., :-1] - updf[..., 1:]) * inv_s
+    n_g, k, length = frac.shape
+    model = b0[:, None] + np.einsum("gk,gkl->gl", f, frac)
+    jac = np.empty((n_g, 1 + 3 * k, length))
+    jac[:, 0, :] = 1.0
+    jac[:, 1::3, :] = f[..., None] * d_c
+    jac[:, 2::3, :] = f[..., None] * d_s
+    jac[:, 3::3, :] = frac
+    return model, jac, frac
+
+
+def _levenberg_marquardt(fixed, b0, c, s, f, noise, s_lo, tol):
+    """Damped Gauss-Newton on a stack of windows, every group with its own damping.
+
+    Groups that have converged drop out of the arrays (so a few slow fits do not keep the
+    whole batch busy); their results are written back at the end.
+    """
+    n_all = b0.size
+    model, jac, frac = _profile_and_jacobian(fixed["edges"], b0, c, s, f)
+    var = noise.variance(fixed["base_level"] + model)
+    w = fixed["valid_f"] / var
+    resid = fixed["y"] - model
+    chi2 = np.sum(w * resid * resid, axis=1)
+    lam = np.full(n_all, 1e-3)
+    active = np.ones(n_all, bool)
+    eye = np.eye(jac.shape[1])
+    names = ("b0", "c", "s", "f", "model", "jac", "frac", "var", "w", "resid", "chi2", "lam")
+    out = None  # full-size results, once the working set has been compressed
+    rows = np.arange(n_all)
+    fx = fixed
+    for it in range(_MAX_ITER):
+        if out is None and np.count_nonzero(active) <= active.size // 2 and active.size > 4:
+            cur = dict(zip(names, (b0, c, s, f, model, jac, frac, var, w, resid, chi2, lam),
+                           strict=True))
+            out = {k: v.copy() for k, v in cur.items()}
+            out["active"] = active.copy()
+            keep = np.flatnonzero(active)
+            rows = rows[keep]
+            fx = {k: v[keep] for k, v in fixed.items()}
+            b0, c, s, f, model, jac, frac, var, w, resid, chi2, lam = (cur[k][keep]
+                                                                      for k in names)
+            active = active[keep]
+        wj = jac * w[:, None, :]
+        hess = wj @ jac.transpose(0, 2, 1)
+        grad = (wj @ resid[:, :, None])[..., 0]
+        diag = np.einsum("gpp->gp", hess)
+        dead = diag <= 0  # no information (e.g. a component over masked pixels only)
+        damp = hess + (lam[:, None] * np.where(dead, 1.0, diag))[:, :, None] * eye
+        damp = np.where(dead[:, :, None] | dead[:, None, :], eye, damp)
+        grad = np.where(dead, 0.0, grad)
+        try:
+            step = np.linalg.solve(damp, grad[..., None])[..., 0]
+        except np.linalg.LinAlgError:
+            step = np.zeros_like(grad)
+        nb0 = b0 + step[:, 0]
+        nc = np.clip(c + step[:, 1::3], fx["c_lo"], fx["c_hi"])
+        ns = np.clip(s + step[:, 2::3], s_lo, fx["s_hi"])
+        nf = f + step[:, 3::3]
+        nmodel, njac, nfrac = _profile_and_jacobian(fx["edges"], nb0, nc, ns, nf)
+        nres = fx["y"] - nmodel
+        nchi2 = np.sum(w * nres * nres, axis=1)
+        better = (nchi2 <= chi2) & active
+        lam = np.where(better, np.maximum(lam / 5.0, 1e-7), np.minimum(lam * 4.0, 1e7))
+        # Converged when the Gauss-Newton step would lower chi2 by a negligible amount.
+        predicted = np.einsum("gp,gp->g", step, grad)
+        # Ill-conditioned fits (weak candidates with a flat width direction) creep along a
+        # valley; after a few steps, a possible gain below one unit of chi2 is good enough.
+        done = active & ((predicted < tol) | ((it >= 5) & (predicted < 1.0)) | (lam >= 1e7))
+        bsel = better[:, None]
+        b0 = np.where(better, nb0, b0)
+        c = np.where(bsel, nc, c)
+        s = np.where(bsel, ns, s)
+        f = np.where(bsel, nf, f)
+        model = np.where(bsel, nmodel, model)
+        jac = np.where(better[:, None, None], njac, jac)
+        frac = np.where(better[:, None, None], nfrac, frac)
+        # Variance from the model at the accepted point (not from the data).
+        var = np.where(bsel, noise.variance(fx["base_level"] + model), var)
+        w = fx["valid_f"] / var
+        resid = fx["y"] - model
+        chi2 = np.sum(w * resid * resid, axis=1)
+        active &= ~done
+        if not active.any():
+            break
+    if out is not None:
+        for k, v in zip(names, (b0, c, s, f, model, jac, frac, var, w, resid, chi2, lam),
+                        strict=True):
+            out[k][rows] = v
+        out["active"][rows] = active
+        b0, c, s, f, model, jac, frac, var, w, resid, chi2 = (out[k] for k in names[:-1])
+        active = out["active"]
+    return b0, c, s, f, model, jac, frac, w, resid, chi2, ~active
+
+
 def _fit_batch(groups, state, ctx, noise, neighbours_model, tol):
     """Fit one size class of groups; updates ``state`` (component arrays) in place.
 
@@ -360,80 +464,21 @@ def _fit_batch(groups, state, ctx, noise, neighbours_model, tol):
     y = ctx.excess[xi] - others
     b0 = np.zeros(n_g)
 
-    def evaluate(b0, c, s, f):
-        frac, d_c, d_s = _integrated(xf[:, None, :], c[..., None], s[..., None])
-        model = b0[:, None] + np.einsum("gk,gkl->gl", f, frac)
-        jac = np.empty((n_g, n_par, length))
-        jac[:, 0, :] = 1.0
-        jac[:, 1::3, :] = f[..., None] * d_c
-        jac[:, 2::3, :] = f[..., None] * d_s
-        jac[:, 3::3, :] = frac
-        return model, jac, frac
-
-    def level_of(model):
-        return bg_glob + others + model
-
+    edges = (xf[:, None, :1] - 0.5) + np.arange(length + 1)[None, None, :]
+    base_level = bg_glob + others
     c_lo = groups.lo[:, None] - 0.5
     c_hi = groups.hi[:, None] + 0.5
     s_lo = 0.2 * ctx.sigma_lsf
     s_hi = np.maximum(6.0 * ctx.sigma_lsf, (groups.hi - groups.lo)[:, None] / 4.0)
-
-    model, jac, frac = evaluate(b0, c, s, f)
-    var = noise.variance(level_of(model))
     valid_f = valid.astype(float)
-    w = valid_f / var
-    resid = y - model
-    chi2 = np.sum(w * resid * resid, axis=1)
-    lam = np.full(n_g, 1e-3)
-    active = np.ones(n_g, bool)
+    fixed = {"y": y, "valid_f": valid_f, "edges": edges, "base_level": base_level,
+             "c_lo": c_lo, "c_hi": c_hi, "s_hi": s_hi}
+    b0, c, s, f, model, jac, frac, w, resid, chi2, converged = _levenberg_marquardt(
+        fixed, b0, c, s, f, noise, s_lo, tol)
     eye = np.eye(n_par)
-    for it in range(_MAX_ITER):
-        wj = jac * w[:, None, :]
-        hess = np.einsum("gpl,gql->gpq", wj, jac)
-        grad = np.einsum("gpl,gl->gp", wj, resid)
-        diag = np.einsum("gpp->gp", hess)
-        dead = diag <= 0  # padding components: no information
-        damp = hess + (lam[:, None] * np.where(dead, 1.0, diag))[:, :, None] * eye
-        damp = np.where(dead[:, :, None] | dead[:, None, :], eye, damp)
-        grad = np.where(dead, 0.0, grad)
-        try:
-            step = np.linalg.solve(damp, grad[..., None])[..., 0]
-        except np.linalg.LinAlgError:
-            step = np.zeros_like(grad)
-        nb0 = b0 + step[:, 0]
-        nc = np.clip(c + step[:, 1::3], c_lo, c_hi)
-        ns = np.clip(s + step[:, 2::3], s_lo, s_hi)
-        nf = f + step[:, 3::3]
-        nmodel, njac, nfrac = evaluate(nb0, nc, ns, nf)
-        nres = y - nmodel
-        nchi2 = np.sum(w * nres * nres, axis=1)
-        better = (nchi2 <= chi2) & active
-        lam = np.where(better, np.maximum(lam / 5.0, 1e-7), np.minimum(lam * 4.0, 1e7))
-        # Converged when the Gauss-Newton step would lower chi2 by a negligible amount.
-        predicted = np.einsum("gp,gp->g", step, grad)
-        # Ill-conditioned fits (weak candidates with a flat width direction) creep along a
-        # valley; after a few steps, a possible gain below one unit of chi2 is good enough.
-        done = active & ((predicted < tol) | ((it >= 5) & (predicted < 1.0)) | (lam >= 1e7))
-        bsel = better[:, None]
-        b0 = np.where(better, nb0, b0)
-        c = np.where(bsel, nc, c)
-        s = np.where(bsel, ns, s)
-        f = np.where(bsel, nf, f)
-        model = np.where(bsel, nmodel, model)
-        jac = np.where(better[:, None, None], njac, jac)
-        frac = np.where(better[:, None, None], nfrac, frac)
-        # Variance from the model at the accepted point (not from the data).
-        var = np.where(bsel, noise.variance(level_of(model)), var)
-        w = valid_f / var
-        resid = y - model
-        chi2 = np.sum(w * resid * resid, axis=1)
-        active &= ~done
-        if not active.any():
-            break
-    converged = ~active
     # Covariance from the Jacobian at the solution.
     wj = jac * w[:, None, :]
-    hess = np.einsum("gpl,gql->gpq", wj, jac)
+    hess = wj @ jac.transpose(0, 2, 1)
     diag = np.einsum("gpp->gp", hess)
     dead = diag <= 0
     hess = np.where(dead[:, :, None] | dead[:, None, :], eye, hess)
@@ -445,7 +490,7 @@ def _fit_batch(groups, state, ctx, noise, neighbours_model, tol):
     n_free = np.count_nonzero(~dead, axis=1)
     dof = np.count_nonzero(valid, axis=1) - n_free
     # Leverage of each pixel (for the noise re-estimate).
-    lev = np.einsum("gpl,gpq,gql->gl", jac, cov, jac) * w
+    lev = np.einsum("gpl,gpl->gl", cov @ jac, jac) * w
     # Detection significance: the matched filter (LSF-shaped, known background) applied at
     # the fitted centre to the data minus every other component -- a statistic with unit
     # spread under noise, unlike the flux over its free-shape error.
@@ -471,7 +516,7 @@ def _fit_batch(groups, state, ctx, noise, neighbours_model, tol):
     lsf_like = np.all((np.abs(s / ctx.sigma_lsf - 1.0) < 0.25) | (m < 0), axis=1)
     use = valid & lsf_like[:, None]
     return {
-        "x": xi[use], "resid": resid[use], "lev": lev[use], "level": level_of(model)[use],
+        "x": xi[use], "resid": resid[use], "lev": lev[use], "level": (base_level + model)[use],
         "chi2": chi2, "dof": dof,
     }
 
@@ -569,16 +614,22 @@ def _variance_slope_from_background(counts, bg, quiet, ref, block=64):
     good = quiet.copy()
     good[0] = good[-1] = False
     good[1:-1] &= quiet[:-2] & quiet[2:]
-    d = np.where(good, d2, np.nan)[: nb * block].reshape(nb, block)
-    lv = bg[: nb * block].reshape(nb, block)
-    n_q = np.count_nonzero(np.isfinite(d), axis=1)
+    good = good[: nb * block].reshape(nb, block)
+    n_q = np.count_nonzero(good, axis=1)
     use = n_q >= 16
     if np.count_nonzero(use) < 4:
         return None
-    d, lv, n_q = d[use], lv[use], n_q[use]
-    med = np.nanmedian(d, axis=1)
-    var = (1.4826 * np.nanmedian(np.abs(d - med[:, None]), axis=1)) ** 2 / 1.5
-    x = np.median(lv, axis=1) - ref
+    good, n_q = good[use], n_q[use]
+    d = d2[: nb * block].reshape(nb, block)[use]
+    x = bg[: nb * block].reshape(nb, block)[use, block // 2] - ref
+    rows = np.arange(n_q.size)
+
+    def masked_median(v):
+        srt = np.sort(np.where(good, v, np.inf), axis=1)
+        return 0.5 * (srt[rows, (n_q - 1) // 2] + srt[rows, n_q // 2])
+
+    med = masked_median(d)
+    var = (1.4826 * masked_median(np.abs(d - med[:, None]))) ** 2 / 1.5
     # Weighted least squares; the relative error of a MAD variance is about 2.3/sqrt(n).
     design = np.stack([np.ones_like(x), x], axis=1)
     model = np.full(x.size, max(float(np.median(var)), 1e-12))
@@ -657,18 +708,22 @@ _COLUMNS = {
 }
 
 
-def _build_table(cols, flags, meta):
-    from astropy.table import Table
+@functools.cache
+def _column_units():
+    import astropy.units as u
 
-    names = [*_COLUMNS, "flags"]
-    data = [np.asarray(cols[name], float) for name in _COLUMNS]
-    data.append(np.asarray(flags, dtype=str))
-    units = [unit or None for unit, _ in _COLUMNS.values()] + [None]
-    descriptions = [desc for _, desc in _COLUMNS.values()]
-    descriptions.append("comma-separated: saturated, blended, blend_suspect, edge; "
-                        "empty when clean")
-    return Table(data, names=names, units=units, descriptions=descriptions, meta=meta,
-                 copy=False)
+    return {name: (u.Unit(unit) if unit else None) for name, (unit, _) in _COLUMNS.items()}
+
+
+def _build_table(cols, flags, meta):
+    from astropy.table import Column, Table
+
+    units = _column_units()
+    columns = [Column(np.asarray(cols[name], float), name=name, unit=units[name],
+                      description=desc, copy=False) for name, (_, desc) in _COLUMNS.items()]
+    columns.append(Column(np.asarray(flags, dtype=str), name="flags", description=(
+        "comma-separated: saturated, blended, blend_suspect, edge; empty when clean")))
+    return Table(columns, meta=meta, copy=False)
 
 
 class _AxisSolution:
@@ -968,14 +1023,12 @@ def find_lines(
     if extra.size:
         state = state.extend(extra.astype(float), np.full(extra.size, sigma_lsf), f_r[extra])
     # Pass 2, neighbours from pass 1.
-    diag = _fit_all(state, ctx, noise)
-    if gain is None and "fit residuals" in noise.method:
-        noise = _reestimate_slope(noise, diag)
-    before = state.centre
+    _fit_all(state, ctx, noise)
+    before = state
     state, rejected = _prune(state, ctx, fwhm, min_snr, rejected, final=True)
-    if state.centre.size and state.centre.size < before.size:
-        # Something was dropped: refit its neighbours so they no longer share flux with it.
-        gone = np.setdiff1d(before, state.centre)
+    # A component dropped from a joint fit shared flux with its partners: refit those.
+    gone = np.setdiff1d(before.centre[before.group_size > 1], state.centre)
+    if state.centre.size and gone.size:
         _fit_all(state, ctx, noise, near=gone)
         state, rejected = _prune(state, ctx, fwhm, min_snr, rejected, final=True)
 
