@@ -796,7 +796,6 @@ def find_lines(
     gain: float | None = None,
     read_noise: float | None = None,
     dark=None,
-    _rerun: bool = False,
 ):
     """Find the emission lines of a spectrum and fit each with a pixel-integrated Gaussian.
 
@@ -805,8 +804,8 @@ def find_lines(
     spectrum : specutils.Spectrum or array
         Counts (ADU) on a pixel or wavelength axis; masked samples are left out of every fit.
     min_snr : float
-        Significance threshold: a line is reported when its flux over its (shape-fixed)
-        uncertainty reaches this.
+        Significance threshold: a line is reported when its matched-filter significance
+        (the ``snr`` column) reaches this.
     fwhm_guess : float, optional
         Line-spread FWHM in pixels; estimated from the brightest isolated lines if omitted.
     saturation : float, optional
@@ -836,11 +835,30 @@ def find_lines(
     Gaussian at the LSF width); single-pixel spikes far sharper than the LSF are masked
     first.  Lines closer than two FWHM are fitted together with one constant background
     offset; after a first fit the residuals are searched for missed components and every
-    line is refitted with its neighbours' models held fixed.  Errors come from the inverse
-    Fisher matrix at the solution, inflated by the reduced chi-square when the fit is
-    significantly poor (p < 0.01).  Saturated pixels (and their neighbours) are excluded; the
-    centroid error of a saturated line includes an allowance of 0.15 px per clipped pixel.
+    line is refitted with its neighbours' models held fixed.  Each window spans the group
+    plus four FWHM on either side; the variance of every pixel comes from the model.  Errors
+    come from the inverse Fisher matrix at the solution, inflated by the reduced chi-square
+    when the fit is significantly poor (p < 0.01).  ``snr`` is the matched-filter
+    significance (LSF-shaped profile at the fitted centre, other lines removed), the
+    statistic ``min_snr`` is compared with.
+
+    The noise model is ``var = a + b (level - background_level)``: ``a`` and, when the
+    background spans enough levels, ``b`` from second differences of quiet pixels in
+    blocks; otherwise ``b`` (1/gain) from the fit residuals of lines as wide as the LSF.
+    When the LSF had to be guessed and the fitted widths disagree by more than 10 %, the
+    whole search runs once more with the measured width.
+
+    Pixels within 3 % of the saturation level (and their neighbours) form clipped runs; each
+    run is one ``saturated`` line measured from the run itself (centre from its ends, error
+    0.25 px + 0.05 px per clipped pixel, flux a lower bound with 50 % error), and pixels
+    within 2.5 FWHM of a run are left out of other fits.
     """
+    return _find_lines(spectrum, min_snr=min_snr, fwhm_guess=fwhm_guess,
+                       saturation=saturation, gain=gain, read_noise=read_noise, dark=dark,
+                       rerun=False)
+
+
+def _find_lines(spectrum, *, min_snr, fwhm_guess, saturation, gain, read_noise, dark, rerun):
     from . import __version__
 
     arr = spectrum_arrays(spectrum)
@@ -890,11 +908,13 @@ def find_lines(
 
     def empty(reason):
         meta["warning"] = reason
-        warnings.warn(f"find_lines: {reason}; returning an empty line table", stacklevel=3)
+        warnings.warn(f"find_lines: {reason}; returning an empty line table", stacklevel=4)
         return _empty_table(meta, has_wavelength)
 
     if not valid.any():
         return empty("every sample is masked")
+    if not np.any(counts[valid]):
+        return empty("every sample is zero")
     if np.ptp(counts[valid]) == 0:
         return empty("the spectrum is constant (all samples equal)")
 
@@ -1042,12 +1062,12 @@ def find_lines(
     if np.count_nonzero(clean) >= 3:
         lsf_fit = float(np.median(fw[clean]))
         if fwhm_guess is None:
-            if abs(lsf_fit / fwhm - 1.0) > 0.1 and not _rerun:
+            if abs(lsf_fit / fwhm - 1.0) > 0.1 and not rerun:
                 # The width used for detection was far off: detect and fit again with the
                 # measured one (matched filter, grouping and significance depend on it).
-                again = find_lines(spectrum, min_snr=min_snr, fwhm_guess=lsf_fit,
-                                   saturation=saturation, gain=gain, read_noise=read_noise,
-                                   dark=dark, _rerun=True)
+                again = _find_lines(spectrum, min_snr=min_snr, fwhm_guess=lsf_fit,
+                                    saturation=saturation, gain=gain, read_noise=read_noise,
+                                    dark=dark, rerun=True)
                 again.meta["lsf_method"] = (
                     f"{lsf_method}; refitted with the median fitted FWHM of "
                     f"{np.count_nonzero(clean)} lines")
