@@ -658,3 +658,14 @@ def test_an_unexpected_reader_exception_becomes_an_error_row(bench, monkeypatch)
     row = checker("odd.fits")
     assert row["status"] == "error"
     assert "odd.fits" in row["reasons"] and "KeyError" in row["reasons"]
+
+
+def test_resume_redoes_an_exposure_whose_file_changed(tmp_path):
+    paths = write_numbers(tmp_path / "in", 4)
+    out = tmp_path / "out"
+    run_batch(paths, NumberTask(), outdir=out, workers=1)
+    paths[2].write_text(json.dumps({"value": 42}))
+    os.utime(paths[2], ns=(1, 10**18))  # a different modification time, whatever the clock
+    result = run_batch(paths, NumberTask(), outdir=out, workers=1, resume=True)
+    assert result.n_skipped == 3 and result.n_run == 1
+    assert [r["shift_px"] for r in result.rows] == [0.0, 1.0, 42.0, 3.0]

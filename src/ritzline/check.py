@@ -754,12 +754,13 @@ def read_journal(path: str | os.PathLike) -> tuple[dict | None, dict[str, dict]]
 class _Journal:
     """Append-only JSON-lines record of finished exposures; flushed after every row.
 
-    Only the keys of finished exposures stay in memory; the rows live in the file.
+    Only the keys of finished exposures (with the size and modification time their file
+    had) stay in memory; the rows live in the file.
     """
 
     def __init__(self, path: Path, fingerprint: dict, *, resume: bool) -> None:
         self.path = path
-        self.done: set[str] = set()
+        self.done: dict[str, list | None] = {}
         last: dict[str, int] = {}
         config = None
         if resume and path.exists():
@@ -768,6 +769,7 @@ class _Journal:
                     config = obj.get("config")
                 elif "key" in obj:
                     last[obj["key"]] = number
+                    self.done[obj["key"]] = obj.get("file_stat")
             if last and config != json.loads(json.dumps(fingerprint)):
                 raise RitzlineError(
                     f"{path}: the finished exposures were checked with another reference "
@@ -781,7 +783,6 @@ class _Journal:
                 for number, line, _ in _iter_journal(path):
                     if number in keep:
                         fh.write(line)
-        self.done = set(last)
         self._fh = open(path, "a", encoding="utf-8")
         self._last_sync = time.monotonic()
 
@@ -1029,6 +1030,15 @@ def _results_dask(task, items, scheduler: str, chunksize: int, workers: int | No
             cluster.close()
 
 
+def _file_stat(path: str) -> list | None:
+    """[size, mtime in ns] of a file (None when it cannot be stat'ed), as JSON stores it."""
+    try:
+        st = os.stat(path)
+    except OSError:
+        return None
+    return [st.st_size, st.st_mtime_ns]
+
+
 OUTPUT_NAMES = (JOURNAL_NAME, "summary.ecsv", "summary.json", "report.html", "drift.png",
                 "fwhm.png", "status.png")
 
@@ -1122,7 +1132,7 @@ def run_batch(
         raise RitzlineError("the same exposure file is listed twice")
     workers = int(workers or os.cpu_count() or 1)
     journal = None
-    done: set[str] = set()
+    done: dict[str, list | None] = {}
     in_memory: dict[int, dict] = {}
     out = Path(outdir) if outdir is not None else None
     if out is not None:
@@ -1130,7 +1140,12 @@ def run_batch(
         _remove_stale_temporaries(out)
         journal = _Journal(out / JOURNAL_NAME, fingerprint or {}, resume=resume)
         done = journal.done
-    todo = [(i, k, f) for i, (k, f) in enumerate(zip(keys, files, strict=True)) if k not in done]
+    # a finished exposure whose file changed since (size or modification time) is redone
+    todo = [
+        (i, k, f)
+        for i, (k, f) in enumerate(zip(keys, files, strict=True))
+        if k not in done or done[k] != _file_stat(f)
+    ]
     n_skipped = len(keys) - len(todo)
     chunksize = chunksize or max(1, min(16, len(todo) // (8 * workers) or 1))
 
@@ -1166,7 +1181,7 @@ def run_batch(
             progress(n_skipped, total)
         for index, key, row in results:
             if journal is not None:
-                journal.append(dict(row, key=key))
+                journal.append(dict(row, key=key, file_stat=_file_stat(files[index])))
             else:
                 in_memory[index] = row
             n_run += 1
