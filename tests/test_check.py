@@ -669,3 +669,12 @@ def test_resume_redoes_an_exposure_whose_file_changed(tmp_path):
     result = run_batch(paths, NumberTask(), outdir=out, workers=1, resume=True)
     assert result.n_skipped == 3 and result.n_run == 1
     assert [r["shift_px"] for r in result.rows] == [0.0, 1.0, 42.0, 3.0]
+
+
+def test_cli_pattern_and_resume(bench, tmp_path):
+    out = tmp_path / "o"
+    args = ["--solution", bench["solution_path"], "-o", out]
+    r = run_cli("check", bench["folder"], "--pattern", "lamp_0000[0-2].txt", *args)
+    assert r.exit_code == 0 and "3 exposures: 3 pass" in r.output, r.output
+    r = run_cli("check", bench["folder"], "--pattern", "lamp_0000[0-3].txt", "--resume", *args)
+    assert "4 exposures:" in r.output and "(3 from the interrupted run)" in r.output

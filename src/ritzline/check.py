@@ -1294,6 +1294,7 @@ def check_exposures(
     totals = _totals(table["status"])
     table.meta["totals"] = totals
     table.meta["complete"] = result.complete
+    table.meta["resumed_exposures"] = result.n_skipped
     if outdir is not None:
         out = Path(outdir)
         write_table(table, out / "summary.ecsv")

@@ -664,9 +664,11 @@ def check(inputs, solution_path, lamp, dark, outdir, workers, dask_scheduler, ma
         if progress_cm is not None:
             progress_cm.stop()
     totals = table.meta["totals"]
+    resumed = table.meta.get("resumed_exposures", 0)
     click.echo(
         f"{totals['exposures']} exposures: {totals['pass']} pass, {totals['warn']} warn, "
         f"{totals['fail']} fail, {totals['error']} error"
+        + (f" ({resumed} from the interrupted run)" if resumed else "")
     )
     shown = 0
     for row in table:
