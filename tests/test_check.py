@@ -677,4 +677,4 @@ def test_cli_pattern_and_resume(bench, tmp_path):
     r = run_cli("check", bench["folder"], "--pattern", "lamp_0000[0-2].txt", *args)
     assert r.exit_code == 0 and "3 exposures: 3 pass" in r.output, r.output
     r = run_cli("check", bench["folder"], "--pattern", "lamp_0000[0-3].txt", "--resume", *args)
-    assert "4 exposures:" in r.output and "(3 from the interrupted run)" in r.output
+    assert "4 exposures:" in r.output and "(3 already checked in" in r.output

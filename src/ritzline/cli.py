@@ -668,7 +668,7 @@ def check(inputs, solution_path, lamp, dark, outdir, workers, dask_scheduler, ma
     click.echo(
         f"{totals['exposures']} exposures: {totals['pass']} pass, {totals['warn']} warn, "
         f"{totals['fail']} fail, {totals['error']} error"
-        + (f" ({resumed} from the interrupted run)" if resumed else "")
+        + (f" ({resumed} already checked in {outdir})" if resumed else "")
     )
     shown = 0
     for row in table:
