@@ -476,17 +476,28 @@ def _fit_batch(groups, state, ctx, noise, neighbours_model, tol):
     b0, c, s, f, model, jac, frac, w, resid, chi2, converged = _levenberg_marquardt(
         fixed, b0, c, s, f, noise, s_lo, tol)
     eye = np.eye(n_par)
-    # Covariance from the Jacobian at the solution.
-    wj = jac * w[:, None, :]
-    hess = wj @ jac.transpose(0, 2, 1)
-    diag = np.einsum("gpp->gp", hess)
-    dead = diag <= 0
-    hess = np.where(dead[:, :, None] | dead[:, None, :], eye, hess)
-    try:
-        cov = np.linalg.inv(hess)
-    except np.linalg.LinAlgError:
-        cov = np.linalg.pinv(hess)
-    cov = np.where(dead[:, :, None] | dead[:, None, :], 0.0, cov)
+
+    def covariance(jac):
+        wj = jac * w[:, None, :]
+        hess = wj @ jac.transpose(0, 2, 1)
+        dead = np.einsum("gpp->gp", hess) <= 0
+        off = dead[:, :, None] | dead[:, None, :]
+        try:
+            cov = np.linalg.inv(np.where(off, eye, hess))
+        except np.linalg.LinAlgError:
+            cov = np.linalg.pinv(np.where(off, eye, hess))
+        return np.where(off, 0.0, cov), dead
+
+    # Covariance from the Jacobian at the solution -- with the width of a component that is
+    # consistent with the LSF taken at the LSF: noise in the fitted width would otherwise
+    # scatter the error bars themselves (too small for lines that came out narrow).
+    cov, dead = covariance(jac)
+    s_err = np.sqrt(np.maximum(cov[:, 2::3, 2::3].diagonal(axis1=1, axis2=2), 0))
+    lsf_consistent = np.abs(s - ctx.sigma_lsf) < 2.0 * s_err
+    if lsf_consistent.any():
+        s_eval = np.where(lsf_consistent, ctx.sigma_lsf, s)
+        _, jac_eval, _ = _profile_and_jacobian(edges, b0, c, s_eval, f)
+        cov, dead = covariance(jac_eval)
     n_free = np.count_nonzero(~dead, axis=1)
     dof = np.count_nonzero(valid, axis=1) - n_free
     # Leverage of each pixel (for the noise re-estimate).
@@ -659,7 +670,9 @@ def _reestimate_slope(noise, diag):
     lev = np.concatenate([d["lev"] for d in diag])
     level = np.concatenate([d["level"] for d in diag])
     delta = level - noise.ref
-    bright = delta > 5.0 * np.sqrt(noise.a)
+    # Only pixels where the line's own photon noise (by the current slope) at least equals
+    # the background noise can tell the slope; faint lines keep the prior.
+    bright = (delta > 5.0 * np.sqrt(noise.a)) & (noise.b * delta > noise.a)
     if np.count_nonzero(bright) < 30:
         return noise
     e2 = (x_res * x_res / np.clip(1.0 - lev, 0.2, 1.0))[bright]
