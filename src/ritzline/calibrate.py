@@ -1217,13 +1217,17 @@ def _guess_fit(det: _Lines, ref: _Refs, guess: Solution, max_shift: float):
     n_hyp = int(near.sum())
     shift, stretch = shift0, 0.0
     tol_px = 2.0
+    # where the earlier solution itself was extrapolating, its own band widens the window
+    # (and the ambiguity test then keeps doubtful lines out)
+    old_band_px = guess.wavelength_err(det.pixel) / np.abs(guess.dispersion(det.pixel))
     for _ in range(6):
         pred_new = p_old[ref_idx] + shift + stretch * (p_old[ref_idx] - c)
         # nearest prediction to each detection (one-to-one via _associate on pixels)
         order = np.argsort(pred_new)
         fake = _Refs(pred_new[order], np.zeros(order.size), np.zeros(order.size),
                      np.zeros(order.size, str), np.zeros(order.size, str))
-        di, k = _associate(det, fake, det.pixel, np.full(det.pixel.size, tol_px))
+        tol = np.hypot(tol_px, _MATCH_NSIGMA * old_band_px)
+        di, k = _associate(det, fake, det.pixel, tol)
         ri = ref_idx[order][k]
         ok = ~det.bad[di] & ref.fit_ok(ri)
         if ok.sum() < 3:
@@ -1509,9 +1513,10 @@ def _calibrate_from_guess(det, ref, guess: Solution, degree, max_shift) -> _Fit 
     ok = ~det.bad[di] & ref.fit_ok(ri)
     free_needed = (degree if degree is not None else guess.degree) + 5
     if degree is not None or ok.sum() >= free_needed:
+        # the lines are those the earlier solution predicts (its band sets the windows);
+        # no re-association, which would forget what the earlier solution knew
         fit = _final_fit(det, ref, di, ri, degree)
         if fit is not None:
-            fit = _refine(det, ref, fit, degree)
             fit.n_hyp, fit.method = n_hyp, "guess, free refit"
             fit.log10_p = _log10_chance(det, ref, fit, n_hyp, 2)
             return fit
