@@ -11,6 +11,7 @@ from __future__ import annotations
 import functools
 import warnings
 from dataclasses import dataclass
+from typing import TYPE_CHECKING
 
 import numpy as np
 from scipy.special import chdtrc, ndtr
@@ -19,13 +20,16 @@ from .errors import RitzlineError, SpectrumFormatError
 from .spectrum import spectrum_arrays
 from .synthetic import FWHM_PER_SIGMA
 
+if TYPE_CHECKING:  # pragma: no cover
+    from astropy.table import Table
+
 __all__ = ["attach_wavelengths", "centroid_crlb", "find_lines", "line_background", "line_crlb"]
 
 _SQRT2PI = np.sqrt(2.0 * np.pi)
 _DEFAULT_FWHM = 2.5  # px, used only when no line is bright enough to measure the LSF
 _GROUP_SEPARATION = 2.0  # lines closer than this many FWHM are fitted jointly
 _WINDOW_HALF = 4.0  # fit window half-width beyond the outer lines, in FWHM
-_MAX_COMPONENTS = 8  # a group larger than this is split at its widest gaps
+_MAX_COMPONENTS = 8  # larger groups are cut into runs of this many components
 _MAX_ITER = 20
 _WING_REACH = 2.5  # FWHM beyond a clipped run whose pixels are left out of fits
 _MAX_WIDTH = 3.5  # components wider than this many LSF FWHM are rejected
@@ -304,9 +308,9 @@ def _half_max_widths(excess, ok, peaks, max_half=15):
 
 @dataclass
 class _Groups:
-    """Components arranged in padded groups: arrays of shape (G, K) and windows (G, L)."""
+    """Groups of K components each (one size class): members (G, K) and pixel windows."""
 
-    member: np.ndarray  # (G, K) index into the component list, -1 for padding
+    member: np.ndarray  # (G, K) index into the component list
     lo: np.ndarray  # (G,) first pixel of each window
     hi: np.ndarray  # (G,) last pixel of each window
 
@@ -442,7 +446,8 @@ def _levenberg_marquardt(fixed, b0, c, s, f, noise, s_lo, tol):
 def _fit_batch(groups, state, ctx, noise, neighbours_model, tol):
     """Fit one size class of groups; updates ``state`` (component arrays) in place.
 
-    Returns per-group chi2, dof, and per-component covariance pieces.
+    Returns the residuals, leverages and model levels of the pixels of LSF-width groups
+    (for the noise re-estimate) and each group's chi2 and degrees of freedom.
     """
     m = groups.member
     n_g, k = m.shape
@@ -573,11 +578,9 @@ class _Context:
     sigma_lsf: float
 
 
-def _lines_model(state, n, keep=None):
-    """Noise-free counts of all (kept) components on the full pixel grid."""
+def _lines_model(state, n):
+    """Noise-free counts of all components on the full pixel grid."""
     c, s, f = state.centre, state.sigma, state.flux
-    if keep is not None:
-        c, s, f = c[keep], s[keep], f[keep]
     out = np.zeros(n)
     if c.size == 0:
         return out
@@ -697,14 +700,11 @@ def _reestimate_slope(noise, diag):
 
 
 def _empty_table(meta, has_wavelength):
-    from astropy.table import Table
-
     t = _build_table({k: np.zeros(0) for k in _COLUMNS}, np.zeros(0, dtype="U1"), meta)
     if has_wavelength:
         for name in ("wavelength", "wavelength_err", "fwhm"):
             t[name] = np.zeros(0)
             t[name].unit = "nm"
-    assert isinstance(t, Table)
     return t
 
 
@@ -762,7 +762,7 @@ class _AxisSolution:
         return np.interp(np.asarray(p, float), self._pix, self._disp)
 
 
-def attach_wavelengths(lines, solution):
+def attach_wavelengths(lines: Table, solution) -> Table:
     """Add ``wavelength``, ``wavelength_err`` and ``fwhm`` (nm) to a line table.
 
     Parameters
@@ -809,7 +809,7 @@ def find_lines(
     gain: float | None = None,
     read_noise: float | None = None,
     dark=None,
-):
+) -> Table:
     """Find the emission lines of a spectrum and fit each with a pixel-integrated Gaussian.
 
     Parameters
@@ -1241,7 +1241,7 @@ def _table_from_state(state, ctx, fwhm, clipped, meta, n):
     return _build_table(cols, flags[order] if flags.size else np.zeros(0, "U1"), meta)
 
 
-def line_background(spectrum, lines, *, dark=None) -> np.ndarray:
+def line_background(spectrum, lines: Table, *, dark=None) -> np.ndarray:
     """The background under a spectrum's lines, for display: counts minus the fitted lines.
 
     A block median (blocks of 8 LSF FWHM, from ``lines.meta``) of the (dark-subtracted)
