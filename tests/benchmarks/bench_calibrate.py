@@ -68,7 +68,7 @@ def drifted(ins: Instrument, rng) -> Instrument:
                       read_noise=ins.read_noise, background=ins.background)
 
 
-def main(n_exposures: int = 120, seed: int = 2026) -> None:
+def main(n_exposures: int = 200, seed: int = 2026) -> None:
     rng = np.random.default_rng(seed)
     outcome, times, rms_ratio, err_in_ok, first = [], [], [], [], []
     for k in range(n_exposures):
@@ -96,7 +96,7 @@ def main(n_exposures: int = 120, seed: int = 2026) -> None:
     from ritzline.peaks import find_lines
 
     g_times, g_out, g_fit_times = [], [], []
-    for ins, lamp, sol in first[:40]:
+    for ins, lamp, sol in first[:100]:
         later = drifted(ins, rng)
         counts, truth = lamp_exposure(later, lamp, rng)
         if truth.n_usable < 3:
