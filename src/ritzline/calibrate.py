@@ -4,8 +4,9 @@ versioned JSON).
 
 How a lamp exposure is solved
 -----------------------------
-1. Lines are found (``peaks.find_lines``) and the lamp's reference lines are taken from
-   ``levels.lamp_lines`` (usable lines only, inside the allowed wavelength range).
+1. Lines are found (``peaks.find_lines``) and every listed line of the lamps is taken from
+   ``levels.lamp_lines`` inside the allowed range: all of them take part in the matching
+   (a real lamp emits them all), only those the list calls usable are fitted.
 2. *Invariants.*  For every detected line and three of its next few neighbours, the two
    ratios ``(p_j - p_i)/(p_l - p_i)`` and ``(p_k - p_i)/(p_l - p_i)`` do not depend on the
    (locally linear) dispersion, its offset or its sign.  The same ratios are computed for
@@ -13,19 +14,28 @@ How a lamp exposure is solved
    k-d tree finds every pair of quadruplets whose ratios agree within the centroid noise.
 3. *Votes.*  Each agreeing pair implies a direction, a dispersion and a central wavelength;
    these are histogrammed, and the strongest few cells (the true one collects votes from all
-   over the detector) give candidate sets of line correspondences.
+   over the detector) give candidate sets of line correspondences.  A cell's dispersion
+   times the measured LSF width gives the resolution in nm, so reference lines blended at
+   that resolution (``levels.blends``, closer than one FWHM) are no longer fitted.
 4. *Grow.*  From each candidate, a robust low-degree Chebyshev fit predicts where every other
-   reference line should fall, lines within the prediction band are added, and the fit is
-   repeated until nothing changes: the solution widens to the whole detector.
+   reference line should fall; a detection joins when its nearest listed line lies inside
+   the prediction window, no other listed line does, and the window is small against the
+   local line spacing.  Windows use leave-one-out bands (a line that alone pins the fit
+   somewhere does not vouch for itself) and, beyond the outermost lines, a curvature prior.
+   The fit is repeated until nothing changes: the solution widens to the whole detector.
 5. *Fit and trust.*  The final weighted Chebyshev fit (degree by BIC, capped by the number and
-   spread of lines) rejects outliers iteratively, with a reason per line, and keeps the full
-   covariance.  The confidence is one minus the chance that a list of lines at the same
-   density would match this many detections this well by accident, multiplied by the number
-   of hypotheses searched (a look-elsewhere correction).  Below the threshold,
-   :class:`~ritzline.errors.CalibrationError` says what was tried and what is missing.
+   spread of lines) rejects outliers on leave-one-out residuals, with a reason per line.
+   Its covariance is the chi-square-scaled formal one plus the jackknife one; the band adds
+   the spread to the next degree and, beyond the lines, the curvature prior.  The confidence
+   is one minus the chance that a list of lines at the same local density fits the
+   detections this well by accident (a Gamma-distributed sum of log distances), times the
+   number of distinct candidate solutions tested.  Too few lines, residuals far above the
+   centroid errors, or a chance above ``CONFIDENT_P`` raise
+   :class:`~ritzline.errors.CalibrationError`, saying what was tried and what is missing.
 
-With ``guess=`` (an earlier Solution) the search is a vote over the shift only, and the fit
-is the earlier shape moved by a shift and a small stretch when few lines are found.
+With ``guess=`` (an earlier Solution) the search is a vote over the shift only, with windows
+widened by the earlier solution's own band; the fit is the earlier shape moved by a shift
+and a small stretch when few lines are found, a free refit of those lines otherwise.
 
 The solution file (schema ``ritzline.wavelength-solution``, version 1)
 -----------------------------------------------------------------------
