@@ -260,3 +260,13 @@ def test_guess_from_another_detector_size_is_refused():
     sol = calibrate(counts, "Ne")
     with pytest.raises(CalibrationError, match="pixels"):
         calibrate(counts[:2000], "Ne", guess=sol)
+
+
+def test_lamps_given_one_by_one_match_the_mixed_lamp():
+    ins = _instrument()
+    counts, _ = _exposure(ins, "Hg+Ar")
+    mixed = calibrate(counts, "Hg+Ar")
+    separate = calibrate(counts, ("Hg", "Ar"))
+    grid = np.linspace(0, ins.n_pixels - 1, 50)
+    np.testing.assert_allclose(separate.wavelength(grid), mixed.wavelength(grid), atol=2e-3)
+    assert separate.lamps == ("Hg", "Ar")

@@ -645,54 +645,47 @@ def _detections(spectrum, n_pixels: int | None) -> tuple[_Lines, dict]:
 
 
 def _references(lamps, wavelength_range, medium: str, fwhm_nm: float | None = None) -> _Refs:
+    """The lamps' listed lines, sorted by wavelength.  Every listed line takes part in the
+    matching (a real lamp emits them all, so knowing where they are protects the usable
+    ones); only lines the list calls usable are fitted, and with ``fwhm_nm`` not those with
+    another listed line of any of the lamps within one FWHM (``levels.blends``)."""
     from . import levels
 
-    parts = []
-    for name in lamps:
-        t = levels.lamp_lines(name, wavelength_range=wavelength_range, medium=medium,
-                              fwhm_nm=fwhm_nm)
-        # Every listed line is kept for matching (a real lamp emits them all, so knowing
-        # where they are protects the usable ones); only usable lines are fitted.
-        keep = np.asarray(t["usable"], bool) if "usable" in t.colnames else np.ones(len(t), bool)
-        why = (np.asarray(t["reason"], dtype=object) if "reason" in t.colnames
-               else np.full(len(t), "", dtype=object))
-        if fwhm_nm is not None and len(t):
-            # a centroid is only as good as the blend it measures: do not fit a line with
-            # another listed line (usable or not) within one FWHM
-            groups = levels.blends(t, fwhm_nm, fraction=1.0)
-            for n_members, rows in zip(groups["n_members"], groups["member_rows"], strict=True):
-                if n_members > 1:
-                    idx = [int(r) for r in str(rows).split(",")]
-                    fresh = keep[idx]
-                    keep[idx] = False
-                    for i in np.asarray(idx)[fresh]:
-                        why[i] = f"unresolved reference blend at FWHM {fwhm_nm:.3g} nm"
-        t = t.copy(copy_data=False)
-        t["_fit_ok"] = keep
-        t["_why"] = np.array([str(v) for v in why], dtype=str) if len(t) else np.zeros(0, str)
-        parts.append(t)
-    w = np.concatenate([np.asarray(t["wavelength"], float) for t in parts])
-    m = w.size
+    tables = [levels.lamp_lines(name, wavelength_range=wavelength_range, medium=medium)
+              for name in lamps]
 
-    def cat(name, default):
-        vals = [
-            np.asarray(t[name]) if name in t.colnames else np.full(len(t), default)
-            for t in parts
-        ]
-        return np.concatenate(vals) if vals else np.zeros(0)
+    def cat(name, default, dtype):
+        vals = [np.asarray(t[name], dtype=dtype) if name in t.colnames
+                else np.full(len(t), default, dtype=dtype) for t in tables]
+        return np.concatenate(vals) if vals else np.zeros(0, dtype)
 
-    werr = cat("wavelength_err", 0.001).astype(float)
+    wl = cat("wavelength", np.nan, float)
+    werr = cat("wavelength_err", 0.001, float)
     werr = np.where(np.isfinite(werr) & (werr >= 0), werr, 0.001)
-    order = np.argsort(w, kind="stable")
-    des = cat("designation", "").astype(str) if m else np.zeros(0, str)
+    inten = cat("intensity", np.nan, float)
+    species = cat("species", "", str)
+    usable = cat("usable", True, bool)
+    reason = cat("reason", "", object)
+    if fwhm_nm is not None and wl.size:
+        from astropy.table import Table
+
+        probe = Table({"wavelength": wl, "intensity": inten, "species": species})
+        groups = levels.blends(probe, fwhm_nm, fraction=1.0)
+        for n_members, rows in zip(groups["n_members"], groups["member_rows"], strict=True):
+            if n_members > 1:
+                idx = np.array([int(r) for r in str(rows).split(",")])
+                fresh = idx[usable[idx]]
+                usable[idx] = False
+                reason[fresh] = f"unresolved reference blend at FWHM {fwhm_nm:.3g} nm"
+    order = np.argsort(wl, kind="stable")
     return _Refs(
-        wavelength=w[order],
+        wavelength=wl[order],
         wavelength_err=werr[order],
-        intensity=cat("intensity", np.nan).astype(float)[order],
-        species=cat("species", "").astype(str)[order],
-        designation=des[order],
-        usable=cat("_fit_ok", True).astype(bool)[order],
-        reason=cat("_why", "").astype(str)[order] if m else np.zeros(0, str),
+        intensity=inten[order],
+        species=species[order],
+        designation=cat("designation", "", str)[order],
+        usable=usable[order],
+        reason=reason[order].astype(str),
     )
 
 
