@@ -270,7 +270,7 @@ def test_a_dying_worker_stops_the_run_with_an_error_and_keeps_the_journal(tmp_pa
         p.write_text(json.dumps({"value": "die"}))
     out = tmp_path / "out"
     with pytest.raises(RitzlineError, match="worker process died"):
-        run_batch(paths, NumberTask(), outdir=out, workers=2, chunksize=2)
+        run_batch(paths, NumberTask(delay=0.01), outdir=out, workers=2, chunksize=2)
     assert len(read_journal(out / "journal.jsonl")[1]) >= 1
 
 

@@ -945,7 +945,7 @@ def _results_pool(task, items, workers: int, chunksize: int):
     from concurrent.futures.process import BrokenProcessPool
 
     chunks = _chunks(rest, chunksize)
-    window = 3 * (workers - 1)
+    window = 2 * (workers - 1)  # chunks queued per helper: enough to keep it busy
     pending: collections.deque = collections.deque()
     executor = ProcessPoolExecutor(workers - 1, mp_context=mp.get_context(),
                                    initializer=_init_worker, initargs=(task,))
@@ -1147,7 +1147,7 @@ def run_batch(
         if k not in done or done[k] != _file_stat(f)
     ]
     n_skipped = len(keys) - len(todo)
-    chunksize = chunksize or max(1, min(16, len(todo) // (8 * workers) or 1))
+    chunksize = chunksize or max(1, min(8, len(todo) // (8 * workers) or 1))
 
     def build_table():
         cols = _SummaryColumns(len(keys))
