@@ -114,7 +114,8 @@ def run_demo(
     say("checking the series of lamp frames ...")
     check_dir = folders["check"]
     summary = check_exposures(
-        [data_path("examples", "series")], solution, outdir=check_dir, workers=workers,
+        [data_path("examples", "series")], cal / "solution.json", outdir=check_dir,
+        workers=workers,
     )
     files["check"] = sorted(p for p in check_dir.iterdir() if not p.name.startswith("."))
     shifts = np.asarray(summary["shift_px"], float)
