@@ -448,7 +448,7 @@ def _levenberg_marquardt(fixed, b0, c, s, f, noise, s_lo, tol):
     return b0, c, s, f, model, jac, frac, w, resid, chi2, ~active
 
 
-def _fit_batch(groups, state, ctx, noise, neighbours_model, tol):
+def _fit_batch(groups, state, ctx, noise, neighbours_model, tol, final):
     """Fit one size class of groups; updates ``state`` (component arrays) in place.
 
     Returns the residuals, leverages and model levels of the pixels of LSF-width groups
@@ -504,7 +504,7 @@ def _fit_batch(groups, state, ctx, noise, neighbours_model, tol):
     cov, dead = covariance(jac)
     s_err = np.sqrt(np.maximum(cov[:, 2::3, 2::3].diagonal(axis1=1, axis2=2), 0))
     lsf_consistent = np.abs(s - ctx.sigma_lsf) < 2.0 * s_err
-    if lsf_consistent.any():
+    if final and lsf_consistent.any():
         s_eval = np.where(lsf_consistent, ctx.sigma_lsf, s)
         _, jac_eval, _ = _profile_and_jacobian(edges, b0, c, s_eval, f)
         cov, dead = covariance(jac_eval)
@@ -596,7 +596,7 @@ def _lines_model(state, n):
     return np.bincount(pix[ok], weights=(f[:, None] * frac)[ok], minlength=n)
 
 
-def _fit_all(state, ctx, noise, near=None, tol=1e-2):
+def _fit_all(state, ctx, noise, near=None, tol=1e-2, final=True):
     """Fit every component (grouped jointly), other lines' models held fixed.
 
     With ``near`` (pixel positions), only the groups within reach of those are refitted.
@@ -614,7 +614,7 @@ def _fit_all(state, ctx, noise, near=None, tol=1e-2):
             if not hit.any():
                 continue
             groups = _Groups(member=groups.member[hit], lo=groups.lo[hit], hi=groups.hi[hit])
-        diag.append(_fit_batch(groups, state, ctx, noise, everything, tol))
+        diag.append(_fit_batch(groups, state, ctx, noise, everything, tol, final))
     return diag
 
 
@@ -1006,8 +1006,9 @@ def _find_lines(spectrum, *, min_snr, fwhm_guess, saturation, gain, read_noise, 
         else:
             fwhm = _DEFAULT_FWHM
             lsf_method = "default (no bright isolated line)"
-        bg = _block_background(counts, ok, max(12.0, 8.0 * fwhm), q=0.25, sigma=sig_bg)
-        excess = counts - bg
+        if abs(max(12.0, 8.0 * fwhm) / max(12.0, width_block) - 1.0) > 0.25:
+            bg = _block_background(counts, ok, max(12.0, 8.0 * fwhm), q=0.25, sigma=sig_bg)
+            excess = counts - bg
     if n < 2 * int(np.ceil(_WINDOW_HALF * fwhm)) + 1:
         raise RitzlineError(
             f"the spectrum has {n} samples, shorter than one line-fit window for a "
@@ -1043,7 +1044,7 @@ def _find_lines(spectrum, *, min_snr, fwhm_guess, saturation, gain, read_noise, 
     ctx = _Context(n=n, excess=excess, background=bg, ok=ok, sigma_lsf=sigma_lsf)
 
     # Pass 1 (a loose tolerance: pass 2 refines every line).
-    diag = _fit_all(state, ctx, noise, tol=0.5)
+    diag = _fit_all(state, ctx, noise, tol=0.5, final=False)
     if gain is None and "fit residuals" in noise.method:
         noise = _reestimate_slope(noise, diag)
     state, rejected = _prune(state, ctx, fwhm, 0.5 * min_snr, rejected, final=False)
