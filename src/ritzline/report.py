@@ -28,6 +28,7 @@ _TABLE_COLUMNS = (
     ("index", "#"),
     ("file", "file"),
     ("status", "status"),
+    ("reasons", "reasons"),
     ("timestamp", "time stamp"),
     ("shift_px", "shift (px)"),
     ("shift_err_px", "± (px)"),
@@ -40,7 +41,6 @@ _TABLE_COLUMNS = (
     ("n_expected", "expected"),
     ("saturated_pixels", "saturated px"),
     ("snr_median", "median SNR"),
-    ("reasons", "reasons"),
 )
 
 _FORMATS = {
@@ -64,10 +64,11 @@ h1{font-size:1.4em;margin-bottom:.2em} h2{font-size:1.1em;margin-top:1.6em}
 table.meta td{padding:.1em .8em .1em 0;vertical-align:top}
 figure{display:inline-block;margin:.5em 1em .5em 0} figure img{max-width:100%;height:auto}
 figcaption{font-size:.85em;color:#555}
-#rows{border-collapse:collapse;font-size:.82em;width:100%}
+.scroll{overflow-x:auto} #rows{border-collapse:collapse;font-size:.82em}
 #rows th,#rows td{border-bottom:1px solid #ddd;padding:.25em .5em;text-align:right;
  white-space:nowrap}
-#rows td.t,#rows th.t{text-align:left} #rows td.r{white-space:normal;text-align:left}
+#rows td.t,#rows th.t{text-align:left}
+#rows td.r{white-space:normal;text-align:left;min-width:28em}
 #rows th{cursor:pointer;position:sticky;top:0;background:#eceff1;user-select:none}
 #rows th[aria-sort=ascending]::after{content:" ▲"}
 #rows th[aria-sort=descending]::after{content:" ▼"}
@@ -125,6 +126,9 @@ def _cell(name: str, value) -> str:
     if isinstance(value, (int, float)) or (hasattr(value, "dtype") and value.dtype.kind in "iuf"):
         return f'<td data-v="{value}">{value}</td>'
     text = html.escape(str(value))
+    if name == "file":  # the name reads at a glance; the full path is in the tooltip
+        base = html.escape(str(value).replace("\\", "/").rsplit("/", 1)[-1])
+        return f'<td class="t" data-v="{text}" title="{text}">{base}</td>'
     cls = "r" if name == "reasons" else "t"
     return f'<td class="{cls}">{text}</td>'
 
@@ -207,7 +211,7 @@ def report_parts(
     parts.append(
         '<input id="filter" type="search" placeholder="filter rows (file, status, reason…)">'
     )
-    parts.append('<table id="rows"><thead><tr>')
+    parts.append('<div class="scroll"><table id="rows"><thead><tr>')
     numeric = {"file": False, "status": False, "timestamp": False, "reasons": False}
     for name, heading in _TABLE_COLUMNS:
         num = "1" if numeric.get(name, True) else "0"
@@ -232,7 +236,7 @@ def report_parts(
             else:
                 cells.append(_cell(name, value))
         yield f'<tr class="s-{status}">' + "".join(cells) + "</tr>"
-    yield "</tbody></table>"
+    yield "</tbody></table></div>"
     yield f"<script>{_JS}</script>"
     yield "</body></html>"
 
