@@ -968,7 +968,11 @@ def _grow(det: _Lines, ref: _Refs, di, ri, *, max_iter=25, max_degree=3):
         coef0, _ = _wls(x, y, np.ones_like(x), 1)
         disp = np.abs(_cheb.chebval(x, _cheb.chebder(coef0))) * 2 / (n - 1)
         sig = np.sqrt(_line_sigma(det, ref, di, ri, disp) ** 2 + (0.02 * disp) ** 2)
-        coef, cov, use, chi2r = _fit_clip(x, y, sig, deg, nsigma=5.0)
+        # fit only what may be fitted (blended references and suspected blends would bend
+        # the curve); the others are carried along as matched
+        clean = ~det.bad[di] & ref.fit_ok(ri)
+        coef, cov, use, chi2r = _fit_clip(x, y, sig, deg, nsigma=5.0,
+                                          keep=clean if clean.sum() >= deg + 2 else None)
         spread_c = None
         if use.sum() >= deg + 4:
             c_hi, _, _, _ = _fit_clip(x, y, sig, deg + 1, keep=use, max_iter=1)
