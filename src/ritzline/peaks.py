@@ -468,13 +468,13 @@ def _fit_batch(groups, state, ctx, noise, neighbours_model, tol, final):
     c = state.centre[m].copy()
     s = state.sigma[m].copy()
     f = state.flux[m].copy()
-    frac0, _, _ = _integrated(xf[:, None, :], c[..., None], s[..., None])
-    own0 = np.einsum("gk,gkl->gl", f, frac0)
+    edges = (xf[:, None, :1] - 0.5) + np.arange(length + 1)[None, None, :]
+    cdf0 = ndtr((edges - c[..., None]) / s[..., None])
+    own0 = np.einsum("gk,gkl->gl", f, cdf0[..., 1:] - cdf0[..., :-1])
     others = neighbours_model[xi] - own0
     y = ctx.excess[xi] - others
     b0 = np.zeros(n_g)
 
-    edges = (xf[:, None, :1] - 0.5) + np.arange(length + 1)[None, None, :]
     base_level = bg_glob + others
     c_lo = groups.lo[:, None] - 0.5
     c_hi = groups.hi[:, None] + 0.5
@@ -515,7 +515,8 @@ def _fit_batch(groups, state, ctx, noise, neighbours_model, tol, final):
     # Detection significance: the matched filter (LSF-shaped, known background) applied at
     # the fitted centre to the data minus every other component -- a statistic with unit
     # spread under noise, unlike the flux over its free-shape error.
-    frac_lsf, _, _ = _integrated(xf[:, None, :], c[..., None], ctx.sigma_lsf)
+    cdf_lsf = ndtr((edges - c[..., None]) / ctx.sigma_lsf)
+    frac_lsf = cdf_lsf[..., 1:] - cdf_lsf[..., :-1]
     alone = resid[:, None, :] + f[..., None] * frac
     info_f = np.einsum("gkl,gl->gk", frac_lsf * frac_lsf, w)
     mf_num = np.einsum("gkl,gl->gk", frac_lsf * alone, w)
@@ -693,7 +694,7 @@ def _reestimate_slope(noise, diag):
     # a fine one inside the bracket.
     base = noise.b if noise.b > 0 else noise.a / max(noise.ref, np.sqrt(noise.a))
     lo_f, hi_f = 0.01, 20.0
-    for n_grid in (17, 17):
+    for n_grid in (11, 11):
         trial = base * np.geomspace(lo_f, hi_f, n_grid)
         stat = np.median(e2[None, :] / (noise.a + trial[:, None] * delta[None, :]), axis=1)
         j = int(np.clip(np.searchsorted(-stat, -median_chi2_1), 1, trial.size - 1))
