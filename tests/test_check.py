@@ -678,3 +678,14 @@ def test_cli_pattern_and_resume(bench, tmp_path):
     assert r.exit_code == 0 and "3 exposures: 3 pass" in r.output, r.output
     r = run_cli("check", bench["folder"], "--pattern", "lamp_0000[0-3].txt", "--resume", *args)
     assert "4 exposures:" in r.output and "(3 already checked in" in r.output
+
+
+def test_a_reference_without_a_line_width_still_measures_the_drift(bench):
+    doc = bench["solution"].to_dict()
+    doc["fwhm_pixel"] = None
+    from ritzline.calibrate import Solution
+
+    solution = Solution.from_dict(doc)
+    table = check.check_exposures(bench["paths"][1:2], solution, workers=1)
+    assert table["shift_px"][0] == pytest.approx(0.12, abs=0.02)
+    assert np.isnan(table["fwhm_change_pct"][0]) and np.isfinite(table["fwhm_px"][0])

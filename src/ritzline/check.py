@@ -576,6 +576,9 @@ class ExposureChecker:
                 f"{ref.n_pixels}; it was taken with another detector setting"
             )
             return
+        # a solution that does not know its line width: the finder estimates it, and the
+        # FWHM change stays unmeasured
+        ref_fwhm = ref.fwhm_px if np.isfinite(ref.fwhm_px) and ref.fwhm_px > 0 else None
         sat_level = meta.get("saturation") or limits.saturation
         if sat_level is not None:
             good = ~arrays.mask
@@ -583,7 +586,7 @@ class ExposureChecker:
         lines = find_lines(
             spectrum,
             min_snr=limits.detect_snr,
-            fwhm_guess=ref.fwhm_px,
+            fwhm_guess=ref_fwhm,
             saturation=sat_level,
             dark=ref.dark,
         )
@@ -598,7 +601,7 @@ class ExposureChecker:
         clean = (np.char.strip(flags, ", ") == "") & np.isfinite(pixel) & np.isfinite(pixel_err)
         row["n_found"] = int(pixel.size)
         search = max(25.0, 3.0 * limits.max_shift_px)
-        match = max(1.5, 0.8 * ref.fwhm_px)
+        match = max(1.5, 0.8 * ref_fwhm) if ref_fwhm else 2.0
         fit = fit_drift(
             pixel, pixel_err, ref.pixel, ref.pixel_err, ref.centre,
             search_px=search, match_px=match, fit_mask=clean,
@@ -606,7 +609,7 @@ class ExposureChecker:
         shift = fit.shift if np.isfinite(fit.shift) else fit.coarse_shift
         stretch = fit.stretch if np.isfinite(fit.stretch) else 0.0
         predicted = ref.pixel + shift + stretch * (ref.pixel - ref.centre)
-        edge = max(1.0, ref.fwhm_px)
+        edge = max(1.0, ref_fwhm or 1.0)
         on_detector = (predicted >= edge) & (predicted <= ref.n_pixels - 1 - edge)
         matched = np.zeros(ref.pixel.size, bool)
         matched[fit.ref_index] = True
@@ -636,7 +639,8 @@ class ExposureChecker:
                 spread = 1.4826 * float(np.median(np.abs(w - med)))
                 n_w = w.size
                 row["fwhm_err_px"] = float(1.2533 * spread / np.sqrt(n_w)) if n_w > 1 else np.nan
-                row["fwhm_change_pct"] = 100.0 * (med / ref.fwhm_px - 1.0)
+                if ref_fwhm:
+                    row["fwhm_change_pct"] = 100.0 * (med / ref_fwhm - 1.0)
                 rp = fit.ref_index[fit.used][ok]
                 lam = ref.wavelength[rp]
                 r = lam / (w * np.abs(ref.dispersion_at(ref.pixel[rp])))
