@@ -681,10 +681,10 @@ def test_cli_pattern_and_resume(bench, tmp_path):
 
 
 def test_a_reference_without_a_line_width_still_measures_the_drift(bench):
-    doc = bench["solution"].to_dict()
-    doc["fwhm_pixel"] = None
     from ritzline.calibrate import Solution
 
+    doc = bench["solution"].to_dict()
+    doc["fwhm_pixel"] = None
     solution = Solution.from_dict(doc)
     table = check.check_exposures(bench["paths"][1:2], solution, workers=1)
     assert table["shift_px"][0] == pytest.approx(0.12, abs=0.02)
