@@ -399,16 +399,20 @@ class BusyTruth:
     spike_pixel: np.ndarray
 
 
-def _bloom(expected: np.ndarray, level: float) -> np.ndarray:
-    """Spill charge above ``level`` evenly into the neighbouring pixels until none is left."""
+def _bloom(expected: np.ndarray, level: float, right: float = 0.5) -> np.ndarray:
+    """Spill charge above ``level`` into the neighbouring pixels until none is left.
+
+    A fraction ``right`` of each pixel's excess goes to the next pixel, the rest to the
+    previous one (0.5: symmetric blooming).
+    """
     out = expected.copy()
     for _ in range(10 * out.size):
         over = np.clip(out - level, 0, None)
         if not over.any():
             break
         out -= over
-        out[:-1] += 0.5 * over[1:]
-        out[1:] += 0.5 * over[:-1]
+        out[:-1] += (1.0 - right) * over[1:]
+        out[1:] += right * over[:-1]
     return out
 
 
@@ -422,12 +426,14 @@ def busy_spectrum(
     n_hot: int = 8,
     n_spikes: int = 6,
     fwhm: tuple[float, float] = (2.2, 3.5),
+    bloom_asymmetry: float = 0.0,
 ) -> tuple[np.ndarray, np.ndarray, BusyTruth]:
     """A dense emission spectrum with the artefacts of a real exposure, plus a master dark.
 
     Lines have log-uniform fluxes (from below the detection limit to far above saturation),
     some close pairs (0.8-2.5 FWHM apart), a few lines bright enough to saturate and bloom
-    (charge above full well spills into the neighbours), a smooth continuum, a fixed dark
+    (charge above full well spills into the neighbours; ``bloom_asymmetry`` up to 0.5 makes
+    it favour one side by a random amount up to that), a smooth continuum, a fixed dark
     pattern with hot pixels, and single-pixel cosmic-ray spikes that are not in the dark.
 
     Returns
@@ -465,7 +471,8 @@ def busy_spectrum(
     inside = (centre > 0) & (centre < n - 1)
     centre, flux = centre[inside], flux[inside]
     lines = integrated_gaussians(n, centre, flux, fw)
-    expected = _bloom(lines + continuum + dark, sat)
+    right = 0.5 + bloom_asymmetry * rng.uniform(-1.0, 1.0) if bloom_asymmetry else 0.5
+    expected = _bloom(lines + continuum + dark, sat, right)
     saturated = flux * peak_frac + np.interp(centre, np.arange(n), continuum + dark) > sat
     counts = observe(expected, rng, gain=gain, read_noise=rn, saturation=sat)
     spikes = rng.choice(np.arange(n), size=n_spikes, replace=False)

@@ -173,15 +173,15 @@ def recall_and_false(rng):
 
 
 def busy(rng):
-    print("\n== Busy synthetic spectra (dense lines, close pairs, saturated + bloomed lines, hot "
-          "pixels, spikes, dark pattern; master dark given) ==")
+    print("\n== Busy synthetic spectra (dense lines, close pairs, saturated + bloomed lines with "
+          "a 35/65-65/35 bloom split, hot pixels, spikes, dark pattern; master dark given) ==")
     print("   resolved = no line with >= 20% of its flux within 1.5 FWHM, and its core not "
           "buried in another line's clipped run; SNR >= 5 (matched-filter definition)")
     n_spec = 6 if QUICK else 30
     res = {"ours": [], "hand-written": []}
     sat_pull, busy_pull, alone_pull = [], [], []
     for _ in range(n_spec):
-        y, dark, tr = busy_spectrum(rng)
+        y, dark, tr = busy_spectrum(rng, bloom_asymmetry=0.15)
         yd = y - dark
         c, f, fw = tr.centre, tr.flux, tr.fwhm
         level = np.interp(c, np.arange(y.size), tr.background + tr.dark)
