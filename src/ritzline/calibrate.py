@@ -1085,27 +1085,43 @@ def _jackknife_cov(x, y, sig, coef) -> np.ndarray:
 
 def _refine(det: _Lines, ref: _Refs, fit: _Fit, degree, *, force=False) -> _Fit | None:
     """Re-associate every detection with the fitted model and refit, until stable
-    (``force``: the reference list changed, so always refit at least once)."""
-    n = det.n_pixels
-    xall = _xnorm(det.pixel, n)
+    (``force``: the reference list changed, so always refit at least once).  The result
+    keeps only lines its own leave-one-out windows accept, so a pair of lines pinning the
+    fit at a far end cannot vouch for each other."""
     for it in range(4):
-        pred = _cheb.chebval(xall, fit.coef)
-        dall = np.abs(_cheb.chebval(xall, _cheb.chebder(fit.coef))) * 2 / (n - 1)
-        band = _loo_band(xall, fit.coef, fit.cov, fit.spread, fit.di[fit.used],
-                         fit.sig[fit.used] ** 2 * max(1.0, fit.chi2r))
-        tol = _MATCH_NSIGMA * np.sqrt(
-            band**2 + max(1.0, fit.chi2r) * ((det.pixel_err * dall) ** 2
-                                             + np.median(ref.wavelength_err) ** 2)
-        )
-        xf = _xnorm(det.pixel[fit.di[fit.used]], n)
-        di, ri = _associate(det, ref, pred, tol, (xall >= xf.min()) & (xall <= xf.max()))
+        di, ri = _associate_with(det, ref, fit)
         if np.array_equal(di, fit.di) and np.array_equal(ri, fit.ri) and not (force and it == 0):
             break
         new = _final_fit(det, ref, di, ri, degree)
         if new is None:
             break
         fit = new
+    for _ in range(4):
+        di, ri = _associate_with(det, ref, fit)
+        keep = np.isin(fit.di, di) & np.isin(fit.ri, ri)
+        if keep.all():
+            break
+        new = _final_fit(det, ref, fit.di[keep], fit.ri[keep], degree)
+        if new is None:
+            return None
+        fit = new
     return fit
+
+
+def _associate_with(det: _Lines, ref: _Refs, fit: _Fit):
+    """The associations a fit's own prediction windows accept."""
+    n = det.n_pixels
+    xall = _xnorm(det.pixel, n)
+    pred = _cheb.chebval(xall, fit.coef)
+    dall = np.abs(_cheb.chebval(xall, _cheb.chebder(fit.coef))) * 2 / (n - 1)
+    band = _loo_band(xall, fit.coef, fit.cov, fit.spread, fit.di[fit.used],
+                     fit.sig[fit.used] ** 2 * max(1.0, fit.chi2r))
+    tol = _MATCH_NSIGMA * np.sqrt(
+        band**2 + max(1.0, fit.chi2r) * ((det.pixel_err * dall) ** 2
+                                         + np.median(ref.wavelength_err) ** 2)
+    )
+    xf = _xnorm(det.pixel[fit.di[fit.used]], n)
+    return _associate(det, ref, pred, tol, (xall >= xf.min()) & (xall <= xf.max()))
 
 
 def _log10_chance(det: _Lines, ref: _Refs, fit: _Fit, n_hyp: int, n_free: int) -> float:
