@@ -446,6 +446,7 @@ class Solution:
             "wavelength_limits_nm": self.wavelength_limits,
             "direction": "increasing" if self.dispersion(self.n_pixels / 2) > 0 else "decreasing",
             "confidence": self.confidence,
+            "p_chance": float(self.meta.get("p_chance", 1.0 - self.confidence)),
             "verdict": self.verdict,
             "medium": self.medium,
             "lamps": list(self.lamps),

@@ -458,7 +458,8 @@ def calibrate_cmd(lamp_file, lamps, wrange, degree, guess_path, medium, column, 
     click.echo(f"degree        {info['degree']}")
     click.echo(f"dispersion    {lo:.5f} - {hi:.5f} nm/px ({info['direction']})")
     click.echo(f"coverage      {wl_lo:.3f} - {wl_hi:.3f} nm")
-    click.echo(f"confidence    {info['confidence']:.6f} ({info['verdict']})")
+    click.echo(f"confidence    {info['confidence']:.6f} ({info['verdict']}; chance of a match "
+               f"this good by accident {info['p_chance']:.1e})")
     click.echo(f"solution      {output}")
 
 
