@@ -270,3 +270,18 @@ def test_lamps_given_one_by_one_match_the_mixed_lamp():
     grid = np.linspace(0, ins.n_pixels - 1, 50)
     np.testing.assert_allclose(separate.wavelength(grid), mixed.wavelength(grid), atol=2e-3)
     assert separate.lamps == ("Hg", "Ar")
+
+
+def test_vacuum_solution_is_the_air_solution_converted():
+    from ritzline.airvac import air_to_vacuum
+
+    ins = _instrument()
+    counts, _ = _exposure(ins, "Ne")
+    air = calibrate(counts, "Ne")
+    vac = calibrate(counts, "Ne", medium="vacuum")
+    assert vac.medium == "vacuum"
+    grid = np.linspace(200, 2800, 20)
+    # standard-air dispersion (Peck & Reeder 1972) moves 600 nm lines by ~0.17 nm; the two
+    # solutions must differ by exactly that conversion
+    np.testing.assert_allclose(vac.wavelength(grid), air_to_vacuum(air.wavelength(grid)),
+                               atol=2e-3)
