@@ -958,8 +958,7 @@ def _grow(det: _Lines, ref: _Refs, di, ri, *, max_iter=25, max_degree=3):
     """Widen a set of correspondences to the whole detector by match-and-refit."""
     n = det.n_pixels
     xall = _xnorm(det.pixel, n)
-    state = None
-    for _ in range(max_iter):
+    for it in range(max_iter):
         if di.size < 3:
             return None
         x = xall[di]
@@ -985,9 +984,8 @@ def _grow(det: _Lines, ref: _Refs, di, ri, *, max_iter=25, max_degree=3):
         tol = _MATCH_NSIGMA * np.sqrt(band**2 + meas**2 + np.median(ref.wavelength_err) ** 2)
         xf = x[use]
         new_di, new_ri = _associate(det, ref, pred, tol, (xall >= xf.min()) & (xall <= xf.max()))
-        if state is not None and np.array_equal(new_di, di) and np.array_equal(new_ri, ri):
+        if it > 0 and np.array_equal(new_di, di) and np.array_equal(new_ri, ri):
             break
-        state = (coef, cov)
         di, ri = new_di, new_ri
     return di, ri
 
