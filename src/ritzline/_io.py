@@ -14,6 +14,12 @@ from typing import IO
 __all__ = ["atomic_write", "write_table"]
 
 
+def _umask() -> int:
+    mask = os.umask(0)
+    os.umask(mask)
+    return mask
+
+
 @contextlib.contextmanager
 def atomic_write(path: str | os.PathLike, mode: str = "w", **open_kw) -> Iterator[IO]:
     """Open a temporary file next to ``path``; on clean exit rename it over ``path``.
@@ -24,6 +30,8 @@ def atomic_write(path: str | os.PathLike, mode: str = "w", **open_kw) -> Iterato
     path.parent.mkdir(parents=True, exist_ok=True)
     fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
     try:
+        # mkstemp makes the file private (0600); give it the permissions a plain open would.
+        os.chmod(tmp, 0o666 & ~_umask())
         with os.fdopen(fd, mode, **open_kw) as fh:
             yield fh
             fh.flush()
