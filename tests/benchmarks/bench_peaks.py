@@ -201,7 +201,8 @@ def busy(rng):
             d = np.abs(p[:, None] - c[None, :])
             tol = np.maximum(0.6 * fw, 3 * err)[:, None] if err is not None else 0.6 * fw
             found = (d < tol).any(axis=0)
-            false = ~(d < fw).any(axis=1)
+            # False: no true line (of any brightness) within 1 FWHM or 3 reported sigma.
+            false = ~(d < np.maximum(fw, tol)).any(axis=1)
             res[name].append((np.count_nonzero(found & need) / max(np.count_nonzero(need), 1),
                               np.count_nonzero(false)))
         # Pulls of the resolved, unsaturated lines with SNR >= 10 (honest error bars?).
