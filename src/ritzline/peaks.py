@@ -536,7 +536,7 @@ def _fit_batch(groups, state, ctx, noise, neighbours_model, tol, final):
     state.converged[comp] = converged[:, None]
     state.group_size[comp] = k
     # Groups whose widths all match the LSF (no unresolved blend) inform the noise estimate.
-    lsf_like = np.all((np.abs(s / ctx.sigma_lsf - 1.0) < 0.25) | (m < 0), axis=1)
+    lsf_like = (k == 1) & np.all(np.abs(s / ctx.sigma_lsf - 1.0) < 0.15, axis=1)
     use = valid & lsf_like[:, None]
     return {
         "x": xi[use], "resid": resid[use], "lev": lev[use], "level": (base_level + model)[use],
@@ -671,38 +671,45 @@ def _variance_slope_from_background(counts, bg, quiet, ref, block=64):
 def _reestimate_slope(noise, diag):
     """Re-estimate the variance slope b (1/gain) from fit residuals (leverage-corrected).
 
-    Robust to misfit lines: b is chosen so that the median of the normalised squared
-    residuals of bright pixels equals that of a chi-square with one degree of freedom.
+    Only pixels where the line's own photon noise is at least the background noise are used
+    (fainter ones cannot tell the slope).  b is chosen so that the 30 % quantile of the
+    normalised squared residuals equals that of chi-square with one degree of freedom: a low
+    quantile, because profile mismatches (faint unresolved companions in a lamp spectrum)
+    only ever inflate residuals.  Estimated on the converged second pass; on dense lamp
+    spectra it still tends to overestimate b (errors on the safe side).
     """
     if not diag:
         return noise
     x_res = np.concatenate([d["resid"] for d in diag])
     lev = np.concatenate([d["lev"] for d in diag])
     level = np.concatenate([d["level"] for d in diag])
-    delta = level - noise.ref
-    # Only pixels where the line's own photon noise (by the current slope) at least equals
-    # the background noise can tell the slope; faint lines keep the prior.
-    bright = (delta > 5.0 * np.sqrt(noise.a)) & (noise.b * delta > noise.a)
-    if np.count_nonzero(bright) < 30:
-        return noise
-    e2 = (x_res * x_res / np.clip(1.0 - lev, 0.2, 1.0))[bright]
-    delta = delta[bright]
-    if e2.size > 600:  # a median of 600 pixels pins the slope to a few per cent
-        take = np.linspace(0, e2.size - 1, 600).astype(int)
-        e2, delta = e2[take], delta[take]
-    median_chi2_1 = 0.45493642311957283  # median of chi-square, 1 dof (common practice)
-    # stat(b) decreases with b: bracket its crossing of the median on a coarse grid, then on
-    # a fine one inside the bracket.
-    base = noise.b if noise.b > 0 else noise.a / max(noise.ref, np.sqrt(noise.a))
-    lo_f, hi_f = 0.01, 20.0
-    for n_grid in (11, 11):
-        trial = base * np.geomspace(lo_f, hi_f, n_grid)
-        stat = np.median(e2[None, :] / (noise.a + trial[:, None] * delta[None, :]), axis=1)
-        j = int(np.clip(np.searchsorted(-stat, -median_chi2_1), 1, trial.size - 1))
-        lo_f, hi_f = trial[j - 1] / base, trial[j] / base
-    t0, t1, s0, s1 = trial[j - 1], trial[j], stat[j - 1], stat[j]
-    b = t0 + (t1 - t0) * (s0 - median_chi2_1) / (s0 - s1) if s0 != s1 else t0
-    return _Noise(a=noise.a, b=float(max(b, 0.0)), ref=noise.ref, method=noise.method)
+    e2_all = x_res * x_res / np.clip(1.0 - lev, 0.2, 1.0)
+    delta_all = level - noise.ref
+    q_level, q_chi2_1 = 0.30, 0.14847186183254  # 30 % point of chi2(1) (common practice)
+    b = noise.b if noise.b > 0 else noise.a / max(noise.ref, np.sqrt(noise.a))
+    for _ in range(3):
+        use = (delta_all > 5.0 * np.sqrt(noise.a)) & (b * delta_all > noise.a)
+        if np.count_nonzero(use) < 30:
+            return noise
+        e2, delta = e2_all[use], delta_all[use]
+        if e2.size > 600:  # 600 pixels pin the slope to a few per cent
+            take = np.linspace(0, e2.size - 1, 600).astype(int)
+            e2, delta = e2[take], delta[take]
+        # stat(b) decreases with b: bracket its crossing on a coarse grid, then a finer one.
+        lo_f, hi_f = 0.05, 20.0
+        for n_grid in (11, 11):
+            trial = b * np.geomspace(lo_f, hi_f, n_grid)
+            ratio = e2[None, :] / (noise.a + trial[:, None] * delta[None, :])
+            stat = np.quantile(ratio, q_level, axis=1)
+            j = int(np.clip(np.searchsorted(-stat, -q_chi2_1), 1, trial.size - 1))
+            lo_f, hi_f = trial[j - 1] / b, trial[j] / b
+        t0, t1, s0, s1 = trial[j - 1], trial[j], stat[j - 1], stat[j]
+        b_new = t0 + (t1 - t0) * (s0 - q_chi2_1) / (s0 - s1) if s0 != s1 else t0
+        converged = abs(b_new / b - 1.0) < 0.03
+        b = max(float(b_new), 1e-6 * b)
+        if converged:
+            break
+    return _Noise(a=noise.a, b=float(b), ref=noise.ref, method=noise.method)
 
 
 # ---------------------------------------------------------------------------------------
@@ -1047,9 +1054,7 @@ def _find_lines(spectrum, *, min_snr, fwhm_guess, saturation, gain, read_noise, 
     ctx = _Context(n=n, excess=excess, background=bg, ok=ok, sigma_lsf=sigma_lsf)
 
     # Pass 1 (a loose tolerance: pass 2 refines every line).
-    diag = _fit_all(state, ctx, noise, tol=0.5, final=False)
-    if gain is None and "fit residuals" in noise.method:
-        noise = _reestimate_slope(noise, diag)
+    _fit_all(state, ctx, noise, tol=0.5, final=False)
     state, rejected = _prune(state, ctx, fwhm, 0.5 * min_snr, rejected, final=False)
     # Background again, from the spectrum minus the fitted lines.
     lines_now = _lines_model(state, n)
@@ -1068,7 +1073,13 @@ def _find_lines(spectrum, *, min_snr, fwhm_guess, saturation, gain, read_noise, 
     if extra.size:
         state = state.extend(extra.astype(float), np.full(extra.size, sigma_lsf), f_r[extra])
     # Pass 2, neighbours from pass 1.
-    _fit_all(state, ctx, noise)
+    diag = _fit_all(state, ctx, noise)
+    if gain is None and "fit residuals" in noise.method:
+        # The slope (1/gain) from the converged fits; refit with it when it moved.
+        new_noise = _reestimate_slope(noise, diag)
+        if abs(new_noise.b / noise.b - 1.0) > 0.05:
+            noise = new_noise
+            _fit_all(state, ctx, noise, tol=0.5)
     before = state
     state, rejected = _prune(state, ctx, fwhm, min_snr, rejected, final=True)
     # A component dropped from a joint fit shared flux with its partners: refit those.
