@@ -687,20 +687,21 @@ def _reestimate_slope(noise, diag):
     delta_all = level - noise.ref
     q_level, q_chi2_1 = 0.30, 0.14847186183254  # 30 % point of chi2(1) (common practice)
     b = noise.b if noise.b > 0 else noise.a / max(noise.ref, np.sqrt(noise.a))
-    for _ in range(3):
+    for _ in range(2):
         use = (delta_all > 5.0 * np.sqrt(noise.a)) & (b * delta_all > noise.a)
         if np.count_nonzero(use) < 30:
             return noise
         e2, delta = e2_all[use], delta_all[use]
-        if e2.size > 600:  # 600 pixels pin the slope to a few per cent
-            take = np.linspace(0, e2.size - 1, 600).astype(int)
+        if e2.size > 400:  # 400 pixels pin the slope to a few per cent
+            take = np.linspace(0, e2.size - 1, 400).astype(int)
             e2, delta = e2[take], delta[take]
         # stat(b) decreases with b: bracket its crossing on a coarse grid, then a finer one.
         lo_f, hi_f = 0.05, 20.0
-        for n_grid in (11, 11):
+        for n_grid in (13, 7):
             trial = b * np.geomspace(lo_f, hi_f, n_grid)
             ratio = e2[None, :] / (noise.a + trial[:, None] * delta[None, :])
-            stat = np.quantile(ratio, q_level, axis=1)
+            kth = int(q_level * (e2.size - 1))
+            stat = np.partition(ratio, kth, axis=1)[:, kth]
             j = int(np.clip(np.searchsorted(-stat, -q_chi2_1), 1, trial.size - 1))
             lo_f, hi_f = trial[j - 1] / b, trial[j] / b
         t0, t1, s0, s1 = trial[j - 1], trial[j], stat[j - 1], stat[j]
@@ -1053,8 +1054,11 @@ def _find_lines(spectrum, *, min_snr, fwhm_guess, saturation, gain, read_noise, 
     n_candidates = int(cand_c.size + clipped["pixel"].size)
     ctx = _Context(n=n, excess=excess, background=bg, ok=ok, sigma_lsf=sigma_lsf)
 
-    # Pass 1 (a loose tolerance: pass 2 refines every line).
-    _fit_all(state, ctx, noise, tol=0.5, final=False)
+    # Pass 1; in an uncrowded spectrum its residuals already give the slope (1/gain).
+    diag = _fit_all(state, ctx, noise, final=False)
+    estimate_slope = gain is None and "fit residuals" in noise.method
+    if estimate_slope:
+        noise = _reestimate_slope(noise, diag)
     state, rejected = _prune(state, ctx, fwhm, 0.5 * min_snr, rejected, final=False)
     # Background again, from the spectrum minus the fitted lines.
     lines_now = _lines_model(state, n)
@@ -1074,10 +1078,11 @@ def _find_lines(spectrum, *, min_snr, fwhm_guess, saturation, gain, read_noise, 
         state = state.extend(extra.astype(float), np.full(extra.size, sigma_lsf), f_r[extra])
     # Pass 2, neighbours from pass 1.
     diag = _fit_all(state, ctx, noise)
-    if gain is None and "fit residuals" in noise.method:
-        # The slope (1/gain) from the converged fits; refit with it when it moved.
+    if estimate_slope:
+        # The slope again from the converged fits (neighbours and background settled); refit
+        # with it when it moved (crowded spectra).
         new_noise = _reestimate_slope(noise, diag)
-        if abs(new_noise.b / noise.b - 1.0) > 0.05:
+        if abs(new_noise.b / noise.b - 1.0) > 0.1:
             noise = new_noise
             _fit_all(state, ctx, noise, tol=0.5)
     before = state
