@@ -1095,6 +1095,11 @@ def _refine(det: _Lines, ref: _Refs, fit: _Fit, degree, *, force=False) -> _Fit 
         if new is None:
             break
         fit = new
+    return _prune(det, ref, fit, degree)
+
+
+def _prune(det: _Lines, ref: _Refs, fit: _Fit, degree) -> _Fit | None:
+    """Drop, and refit without, the lines the fit's own leave-one-out windows reject."""
     for _ in range(4):
         di, ri = _associate_with(det, ref, fit)
         keep = np.isin(fit.di, di) & np.isin(fit.ri, ri)
@@ -1538,6 +1543,8 @@ def _calibrate_from_guess(det, ref, guess: Solution, degree, max_shift) -> _Fit 
         # the lines are those the earlier solution predicts (its band sets the windows);
         # no re-association, which would forget what the earlier solution knew
         fit = _final_fit(det, ref, di, ri, degree)
+        if fit is not None:
+            fit = _prune(det, ref, fit, degree)
         if fit is not None:
             fit.n_hyp, fit.method = n_hyp, "guess, free refit"
             fit.log10_p = _log10_chance(det, ref, fit, n_hyp, 2)
