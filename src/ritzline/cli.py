@@ -313,7 +313,11 @@ def _peaks_print(lines) -> None:
         cells += [f"{row['fwhm_pixel']:.2f}", f"{row['flux']:.4g}", f"{row['flux_err']:.2g}",
                   f"{row['snr']:.1f}", str(row["flags"])]
         tab.add_row(*cells)
-    Console(highlight=False, soft_wrap=True).print(tab)
+    import shutil
+
+    # Wide enough for every column even when the output is not a terminal (no truncation).
+    width = max(shutil.get_terminal_size((140, 24)).columns, 120)
+    Console(highlight=False, soft_wrap=True, width=width).print(tab)
     meta = lines.meta
     noise = meta.get("noise_model", {})
     gain = noise.get("gain")
