@@ -124,6 +124,7 @@ NONLINEARITY_PRIOR = 0.01
 MAX_CHI2 = 25.0  # a solution whose residuals exceed 5x the centroid errors is not returned
 MIN_LINES_BLIND = 6  # fewer fitted lines than this never make a solution without a guess
 _MATCH_NSIGMA = 4.0  # a detection belongs to a reference line within this many sigma
+_ISOLATED = 0.5  # an end line further than this (normalised pixel) from the next is alone
 _WINDOW_FRACTION_INSIDE = 0.3  # the same between fitted lines
 _WINDOW_FRACTION = 0.2  # a match window must be smaller than this x the line spacing
 _CLIP_NSIGMA = 4.0  # rejection threshold of the final fit
@@ -1124,8 +1125,15 @@ def _associate_with(det: _Lines, ref: _Refs, fit: _Fit):
         band**2 + max(1.0, fit.chi2r) * ((det.pixel_err * dall) ** 2
                                          + np.median(ref.wavelength_err) ** 2)
     )
-    xf = _xnorm(det.pixel[fit.di[fit.used]], n)
-    return _associate(det, ref, pred, tol, (xall >= xf.min()) & (xall <= xf.max()))
+    xf = np.sort(_xnorm(det.pixel[fit.di[fit.used]], n))
+    lo, hi = xf[0], xf[-1]
+    # an outermost line far from all the others has nothing beyond it and nothing near it
+    # to vouch for it: it must pass the stricter test of the lines beyond the fit
+    if xf.size > 2 and xf[1] - xf[0] > _ISOLATED:
+        lo = xf[1]
+    if xf.size > 2 and xf[-1] - xf[-2] > _ISOLATED:
+        hi = xf[-2]
+    return _associate(det, ref, pred, tol, (xall >= lo) & (xall <= hi))
 
 
 def _log10_chance(det: _Lines, ref: _Refs, fit: _Fit, n_hyp: int, n_free: int) -> float:
