@@ -732,7 +732,7 @@ def demo(outdir: str, workers: int | None) -> None:
     click.echo("")
     click.echo("files:")
     for stage, paths in result.files.items():
-        click.echo(f"  {stage}:")
-        for path in paths:
-            click.echo(f"    {path}")
+        if paths:
+            names = [paths[0].as_posix()] + [p.name for p in paths[1:]]
+            click.echo(f"  {stage + ':':16s} {', '.join(names)}")
     click.echo(f"open {outdir}/check/report.html in a browser for the batch report")

@@ -117,7 +117,11 @@ def run_demo(
         [data_path("examples", "series")], cal / "solution.json", outdir=check_dir,
         workers=workers,
     )
-    files["check"] = sorted(p for p in check_dir.iterdir() if not p.name.startswith("."))
+    first = ("summary.ecsv", "summary.json", "report.html")
+    files["check"] = sorted(
+        (p for p in check_dir.iterdir() if not p.name.startswith(".")),
+        key=lambda p: (first.index(p.name) if p.name in first else len(first), p.name),
+    )
     shifts = np.asarray(summary["shift_px"], float)
     facts["check"] = {
         **summary.meta["totals"],
