@@ -94,7 +94,7 @@ def reference_solution(inst: Instrument, lines: dict, rng: np.random.Generator):
     """A reference Solution as a calibration would make it: the lines of one exposure of the
     undrifted instrument measured with ``find_lines``, paired with their wavelengths; the
     pixel -> wavelength map is the instrument's own (exact, as a Chebyshev series)."""
-    from ritzline.calibrate import Solution
+    from ritzline.calibration import Solution
     from ritzline.peaks import find_lines
 
     counts, truth = clean_exposure(inst, lines, rng)

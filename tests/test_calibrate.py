@@ -7,7 +7,7 @@ import numpy as np
 import pytest
 from click.testing import CliRunner
 
-from ritzline.calibrate import Solution, calibrate, calibrated_spectrum
+from ritzline.calibration import Solution, calibrate, calibrated_spectrum
 from ritzline.cli import main
 from ritzline.errors import CalibrationError
 from ritzline.synthetic import Instrument, lamp_exposure

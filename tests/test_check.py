@@ -681,7 +681,7 @@ def test_cli_pattern_and_resume(bench, tmp_path):
 
 
 def test_a_reference_without_a_line_width_still_measures_the_drift(bench):
-    from ritzline.calibrate import Solution
+    from ritzline.calibration import Solution
 
     doc = bench["solution"].to_dict()
     doc["fwhm_pixel"] = None

@@ -372,7 +372,7 @@ def test_a_wavelength_axis_spectrum_is_measured_and_identified():
 def demo_solution(tmp_path_factory):
     from ritzline import read_spectrum
     from ritzline._resources import data_path
-    from ritzline.calibrate import calibrate
+    from ritzline.calibration import calibrate
 
     lamp_path = data_path("examples", "hgar_lamp.csv")
     sol = calibrate(read_spectrum(lamp_path), lamps=("Hg", "Ar"))

@@ -61,3 +61,14 @@ def test_built_wheel_contains_line_lists_and_calibration(tmp_path):
         rel = path.relative_to(ROOT / "examples" / "data").as_posix()
         assert f"ritzline/_data/examples/{rel}" in names
     assert "ritzline/cli.py" in names
+
+
+def test_public_names_stay_functions_after_their_modules_are_imported():
+    import types
+
+    import ritzline.calibration  # importing a stage module must not shadow a public name
+    from ritzline import calibrate, check_exposures, find_lines, identify_lines, transitions
+
+    assert ritzline.calibration.calibrate is calibrate
+    for func in (calibrate, check_exposures, find_lines, identify_lines, transitions):
+        assert callable(func) and not isinstance(func, types.ModuleType)

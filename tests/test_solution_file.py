@@ -6,7 +6,7 @@ import json
 import numpy as np
 import pytest
 
-from ritzline.calibrate import SCHEMA_VERSION, Solution, calibrate
+from ritzline.calibration import SCHEMA_VERSION, Solution, calibrate
 from ritzline.errors import SolutionFormatError
 from ritzline.synthetic import Instrument, lamp_exposure
 

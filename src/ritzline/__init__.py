@@ -18,8 +18,8 @@ _LAZY = {
     "find_lines": "peaks",
     "transitions": "levels",
     "blends": "levels",
-    "calibrate": "calibrate",
-    "Solution": "calibrate",
+    "calibrate": "calibration",
+    "Solution": "calibration",
     "identify_lines": "identify",
     "Identification": "identify",
     "check_exposures": "check",
@@ -35,7 +35,7 @@ __all__ = [
 ]
 
 if TYPE_CHECKING:  # pragma: no cover
-    from .calibrate import Solution, calibrate  # noqa: F401
+    from .calibration import Solution, calibrate  # noqa: F401
     from .check import check_exposures  # noqa: F401
     from .identify import Identification, identify_lines  # noqa: F401
     from .levels import blends, transitions  # noqa: F401

@@ -200,7 +200,7 @@ def reference_from_solution(
     -------
     Reference
     """
-    from .calibrate import Solution
+    from .calibration import Solution
 
     source = ""
     if isinstance(solution, (str, os.PathLike)):

@@ -373,7 +373,7 @@ def peaks_cmd(file, solution_path, dark_path, min_snr, fwhm_guess, saturation, g
     for w in caught:
         click.echo(f"warning: {w.message}", err=True)
     if solution_path:
-        from .calibrate import Solution
+        from .calibration import Solution
 
         lines = attach_wavelengths(lines, Solution.load(solution_path))
     lines.meta["input"] = str(file)
@@ -435,7 +435,7 @@ def calibrate_cmd(lamp_file, lamps, wrange, degree, guess_path, medium, column, 
     wavelengths automatically.  Safety: lamps run at high voltage and some emit UV-C or
     contain mercury; follow the lamp maker's instructions and your local safety rules.
     """
-    from .calibrate import Solution, calibrate, with_input, write_calibrated
+    from .calibration import Solution, calibrate, with_input, write_calibrated
     from .spectrum import read_spectrum
 
     spectrum = read_spectrum(lamp_file, column=column)
@@ -562,7 +562,7 @@ def match(file, species, solution_path, medium, max_energy, response, column, ou
     spectrum = read_spectrum(file, column=column)
     solution = None
     if solution_path:
-        from .calibrate import Solution
+        from .calibration import Solution
 
         solution = Solution.load(solution_path)
     medium = (medium or getattr(solution, "medium", None)

@@ -48,7 +48,7 @@ def run_demo(
         Called with a one-line progress message before each stage.
     """
     from . import plots
-    from .calibrate import calibrate, with_input
+    from .calibration import calibrate, with_input
     from .check import check_exposures
     from .identify import identify_lines, read_response
     from .spectrum import read_spectrum

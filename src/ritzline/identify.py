@@ -902,7 +902,7 @@ def identify_lines(
         is given.
     species : str, sequence of str, or None
         Species to consider ("Ne I", "Ar", "Ne,Ar"); None = detect among every shipped one.
-    solution : ritzline.calibrate.Solution, optional
+    solution : ritzline.calibration.Solution, optional
         Wavelength solution: gives wavelengths to pixel-axis lines and the calibration
         uncertainty band ``solution.wavelength_err(pixel)``.
     medium : {"air", "vacuum"}

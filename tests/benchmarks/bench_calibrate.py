@@ -13,7 +13,7 @@ import time
 
 import numpy as np
 
-from ritzline.calibrate import calibrate
+from ritzline.calibration import calibrate
 from ritzline.errors import CalibrationError
 from ritzline.synthetic import Instrument, lamp_exposure, random_instrument
 
