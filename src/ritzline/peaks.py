@@ -42,6 +42,19 @@ def _cat(*parts):
     return np.concatenate([np.atleast_1d(p) for p in parts])
 
 
+def _median(x):
+    """Median of a non-empty 1-D array of finite values.
+
+    The same value as ``np.median``, without its general-axis machinery (several times its
+    partition cost on the short arrays of the hot path).
+    """
+    k = x.size // 2
+    if x.size % 2:
+        return np.partition(x, k)[k]
+    part = np.partition(x, (k - 1, k))
+    return 0.5 * (part[k - 1] + part[k])
+
+
 # ---------------------------------------------------------------------------------------
 # The pixel-integrated Gaussian and its derivatives
 
@@ -191,7 +204,7 @@ def _second_diff_sigma(y, ok):
     if np.count_nonzero(good) < 8:
         return None
     d = d2[good]
-    mad = np.median(np.abs(d - np.median(d)))
+    mad = _median(np.abs(d - _median(d)))
     return 1.4826 * mad / np.sqrt(1.5)
 
 
@@ -228,7 +241,7 @@ def _block_background(y, ok, width, q=None, sigma=0.0):
         stat = stat - ndtri(q) * sigma
     centres = 0.5 * (edges[:-1] + edges[1:] - 1)
     if not np.any(has):
-        level = np.median(y[ok]) if ok.any() else 0.0
+        level = _median(y[ok]) if ok.any() else 0.0
         return np.full(n, level)
     return np.interp(np.arange(n), centres[has], stat[has])
 
@@ -653,19 +666,20 @@ def _variance_slope_from_background(counts, bg, quiet, ref, block=64):
 
     med = masked_median(d)
     var = (1.4826 * masked_median(np.abs(d - med[:, None]))) ** 2 / 1.5
-    # Weighted least squares; the relative error of a MAD variance is about 2.3/sqrt(n).
-    design = np.stack([np.ones_like(x), x], axis=1)
-    model = np.full(x.size, max(float(np.median(var)), 1e-12))
+    # Weighted least squares (a straight line: normal equations solved in closed form); the
+    # relative error of a MAD variance is about 2.3/sqrt(n).
+    model = np.full(x.size, max(float(_median(var)), 1e-12))
     for _ in range(2):
         w = n_q / (2.3 * model) ** 2
-        try:
-            cov = np.linalg.inv(design.T @ (design * w[:, None]))
-        except np.linalg.LinAlgError:
+        s0, s1, s2 = float(np.sum(w)), float(w @ x), float(w @ (x * x))
+        t0, t1 = float(w @ var), float(w @ (x * var))
+        det = s0 * s2 - s1 * s1
+        if not det > 0:
             return None
-        coef = cov @ (design.T @ (w * var))
-        model = np.maximum(coef[0] + coef[1] * x, 1e-12)
-    a, b = float(coef[0]), float(coef[1])
-    if not (a > 0 and b > 0 and np.sqrt(cov[1, 1]) < 0.25 * b):
+        a, b = (s2 * t0 - s1 * t1) / det, (s0 * t1 - s1 * t0) / det
+        model = np.maximum(a + b * x, 1e-12)
+    b_var = s0 / det
+    if not (a > 0 and b > 0 and np.sqrt(b_var) < 0.25 * b):
         return None
     return a, b
 
@@ -675,10 +689,11 @@ def _slope_for_quantile(e2, delta, a, b0, q, chi2_q):
     kth = int(q * (e2.size - 1))
     lo_f, hi_f = 0.05, 20.0
     for n_grid in (13, 9):  # the statistic falls with b: a coarse bracket, then a fine one
-        trial = b0 * np.geomspace(lo_f, hi_f, n_grid)
+        # Geometric grid (np.geomspace costs more than the partition on this hot path).
+        trial = b0 * lo_f * (hi_f / lo_f) ** (np.arange(n_grid) / (n_grid - 1))
         stat = np.partition(e2[None, :] / (a + trial[:, None] * delta[None, :]), kth,
                             axis=1)[:, kth]
-        j = int(np.clip(np.searchsorted(-stat, -chi2_q), 1, trial.size - 1))
+        j = min(max(int(np.searchsorted(-stat, -chi2_q)), 1), n_grid - 1)
         lo_f, hi_f = trial[j - 1] / b0, trial[j] / b0
     t0, t1, s0, s1 = trial[j - 1], trial[j], stat[j - 1], stat[j]
     b = t0 + (t1 - t0) * (s0 - chi2_q) / (s0 - s1) if s0 != s1 else t0
@@ -745,22 +760,30 @@ _COLUMNS = {
 }
 
 
+_FLAGS_DESCRIPTION = "comma-separated: saturated, blended, blend_suspect, edge; empty when clean"
+
+
 @functools.cache
 def _column_units():
     import astropy.units as u
 
-    return {name: (u.Unit(unit) if unit else None) for name, (unit, _) in _COLUMNS.items()}
+    return {name: u.Unit(unit) for name, (unit, _) in _COLUMNS.items() if unit}
+
+
+@functools.cache
+def _column_descriptions():
+    return {**{name: desc for name, (_, desc) in _COLUMNS.items()}, "flags": _FLAGS_DESCRIPTION}
 
 
 def _build_table(cols, flags, meta):
-    from astropy.table import Column, Table
+    from astropy.table import Table
 
-    units = _column_units()
-    columns = [Column(np.asarray(cols[name], float), name=name, unit=units[name],
-                      description=desc, copy=False) for name, (_, desc) in _COLUMNS.items()]
-    columns.append(Column(np.asarray(flags, dtype=str), name="flags", description=(
-        "comma-separated: saturated, blended, blend_suspect, edge; empty when clean")))
-    return Table(columns, meta=meta, copy=False)
+    # One Table call from plain arrays: handing it ready-made Columns makes it build every
+    # column a second time (about half the cost of the table).
+    data = {name: np.asarray(cols[name], float) for name in _COLUMNS}
+    data["flags"] = np.asarray(flags, dtype=str)
+    return Table(data, meta=meta, copy=False, units=_column_units(),
+                 descriptions=_column_descriptions())
 
 
 class _AxisSolution:
@@ -969,7 +992,7 @@ def _find_lines(spectrum, *, min_snr, fwhm_guess, saturation, gain, read_noise, 
     width_block = 8.0 * (fwhm or _DEFAULT_FWHM)
     bg = _block_background(counts, ok, max(12.0, width_block), q=0.25, sigma=sigma0)
     excess = counts - bg
-    ref = float(np.median(bg[valid]))
+    ref = float(_median(bg[valid]))
     # Noise model at the background: second differences on pixels away from any bright line.
     quiet = ok & (np.abs(excess) < 4.0 * sigma0)
     quiet = quiet & _cat(quiet[1:], True) & _cat(True, quiet[:-1])
@@ -1018,7 +1041,7 @@ def _find_lines(spectrum, *, min_snr, fwhm_guess, saturation, gain, read_noise, 
         widths = widths[np.isfinite(widths) & (widths > 0.8)]
         if widths.size >= 1:
             # Pixel integration adds 1/12 px^2 to the profile variance.
-            fwhm = float(np.sqrt(max(np.median(widths) ** 2 - FWHM_PER_SIGMA**2 / 12, 0.64)))
+            fwhm = float(np.sqrt(max(_median(widths) ** 2 - FWHM_PER_SIGMA**2 / 12, 0.64)))
             lsf_method = f"half-maximum widths of {widths.size} bright peaks, then fits"
         else:
             fwhm = _DEFAULT_FWHM
@@ -1107,7 +1130,7 @@ def _find_lines(spectrum, *, min_snr, fwhm_guess, saturation, gain, read_noise, 
         clean = single & (state.snr >= min_snr)  # a faint spectrum: use what there is
     lsf_fit = None
     if np.count_nonzero(clean) >= 3:
-        lsf_fit = float(np.median(fw[clean]))
+        lsf_fit = float(_median(fw[clean]))
         if fwhm_guess is None:
             if abs(lsf_fit / fwhm - 1.0) > 0.1 and not rerun:
                 # The width used for detection was far off: detect and fit again with the
@@ -1240,6 +1263,14 @@ def _prune(state, ctx, fwhm, snr_cut, rejected, *, final):
     return state.subset(~drop), rejected
 
 
+@functools.cache
+def _flag_combinations():
+    """The ``flags`` string of each bit code (1 saturated, 2 blended, 4 blend_suspect, 8 edge)."""
+    names = ("saturated", "blended", "blend_suspect", "edge")
+    words = [",".join(w for j, w in enumerate(names) if code >> j & 1) for code in range(16)]
+    return np.array(words), np.array([len(w) for w in words])
+
+
 def _table_from_state(state, ctx, fwhm, clipped, meta, n):
     st = state
     dof = np.maximum(st.dof, 1)
@@ -1267,9 +1298,10 @@ def _table_from_state(state, ctx, fwhm, clipped, meta, n):
     blended = _cat(st.group_size > 1, np.zeros(n_sat, bool))
     suspect = _cat((fw > 1.1 * fwhm) & ((fw - fwhm) > 3.0 * fw_err), np.zeros(n_sat, bool))
     edge = (c < 1.5 * fwhm - 0.5) | (c > n - 0.5 - 1.5 * fwhm)
-    words = np.array(["saturated", "blended", "blend_suspect", "edge"])
-    bits = np.stack([sat_line, blended, suspect, edge], axis=1)
-    flags = np.array([",".join(words[b]) for b in bits], dtype=str)
+    # Every combination of the four words is one of 16 strings: look them up by bit code.
+    code = sat_line * 1 + blended * 2 + suspect * 4 + edge * 8
+    words, lengths = _flag_combinations()
+    flags = words[code].astype(f"U{max(1, int(lengths[code].max(initial=0)))}")
     order = np.argsort(c, kind="stable")
     cols = {k: np.asarray(v, float)[order] for k, v in cols.items()}
     meta["n_lines"] = int(c.size)
