@@ -29,6 +29,7 @@ from astropy import units as u
 from astropy.table import Table
 
 from ritzline._io import write_table
+from ritzline.levels import j_value
 
 SPECIES = ("H", "He", "Ne", "Ar", "Kr", "Xe", "Hg", "Na")
 COMPILED = "2026-12-01"
@@ -70,16 +71,6 @@ def _float(text: str) -> float:
     return float(text) if text.strip() else np.nan
 
 
-def _j_value(text: str) -> float:
-    text = text.strip()
-    if not text:
-        return np.nan
-    if "/" in text:
-        num, den = text.split("/")
-        return float(num) / float(den)
-    return float(text)
-
-
 def _meta(species: str, kind: str, header: list[str]) -> dict:
     return {
         "species": f"{species} I",
@@ -110,7 +101,7 @@ def build_levels(species: str, path: Path) -> Table:
             "config": [r["config"] for r in levels],
             "term": [r["term"] for r in levels],
             "j": [r["j"] for r in levels],
-            "j_value": [_j_value(r["j"]) for r in levels],
+            "j_value": [j_value(r["j"]) for r in levels],
             "parity": [r["parity"] for r in levels],
             "memory": ["memory" in r["note"] for r in levels],
             "derived": ["derived" in r["note"] for r in levels],

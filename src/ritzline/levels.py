@@ -54,6 +54,7 @@ __all__ = [
     "UnreliableLine",
     "allowed_pairs",
     "blends",
+    "j_value",
     "lamp_lines",
     "load_lamp",
     "species_label",
@@ -159,7 +160,8 @@ def allowed_pairs(
     return lower, upper
 
 
-def _j_value(text: str) -> float:
+def j_value(text: str) -> float:
+    """J as a number from its table text ("2", "3/2"); NaN when blank."""
     text = str(text).strip()
     if not text:
         return np.nan
@@ -232,7 +234,7 @@ class _Levels:
 
 def _make_levels(energy, energy_err, config, term, j_text, parity, memory) -> _Levels:
     energy = np.asarray(energy, dtype=float)
-    j = np.array([_j_value(x) for x in j_text])
+    j = np.array([j_value(x) for x in j_text])
     ranges = np.array([_j_range(jv, t) for jv, t in zip(j, term, strict=True)]).reshape(-1, 2)
     ls = [_term_ls(t) for t in term]
     odd = np.array([p == "odd" for p in parity])
@@ -468,7 +470,7 @@ def _match_level(levels: _Levels, energy: float, j_text: str) -> int:
     if not np.isfinite(energy):
         return -1
     hit = np.abs(levels.energy - energy) < _LEVEL_MATCH_CM1
-    j = _j_value(j_text)
+    j = j_value(j_text)
     if np.isfinite(j):
         hit &= ~np.isfinite(levels.j) | (levels.j == j)
     idx = np.flatnonzero(hit)
@@ -498,8 +500,8 @@ def _observed_only_columns(obs: Table, rows: list[int], levels: _Levels | None) 
         cols["upper"][k] = _designation(r["upper_config"], r["upper_term"], r["upper_j"])
         cols["lower_cm1"][k] = r["lower_cm1"]
         cols["upper_cm1"][k] = r["upper_cm1"]
-        cols["lower_j"][k] = _j_value(r["lower_j"])
-        cols["upper_j"][k] = _j_value(r["upper_j"])
+        cols["lower_j"][k] = j_value(r["lower_j"])
+        cols["upper_j"][k] = j_value(r["upper_j"])
         cols["g_upper"][k] = _g_of(cols["upper_j"][k], r["upper_term"])
         lo_ls, up_ls = _term_ls(r["lower_term"]), _term_ls(r["upper_term"])
         cols["intercombination"][k] = bool(lo_ls and up_ls and lo_ls[0] != up_ls[0])
