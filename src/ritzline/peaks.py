@@ -360,104 +360,139 @@ def _make_groups(centres, fwhm, n):
 
 
 def _profile_and_jacobian(edges, b0, c, s, f):
-    """Model counts, Jacobian (G, P, L) and unit profiles (G, K, L) from the pixel edges."""
+    """Model counts, Jacobian (G, P, L) and unit profiles (G, K, L) from the pixel edges.
+
+    The unit profiles are a view into the Jacobian (its flux rows); the derivatives are
+    written straight into it, since on windows this small every array pass costs about as
+    much as the arithmetic.
+    """
     inv_s = 1.0 / s[..., None]
     u = (edges - c[..., None]) * inv_s
     cdf = ndtr(u)
-    pdf = np.exp(-0.5 * u * u) * (1.0 / _SQRT2PI)
-    updf = u * pdf
-    frac = cdf[..., 1:] - cdf[..., :-1]  # each edge is shared by two pixels
-    d_c = (pdf[..., :-1] - pdf[..., 1:]) * inv_s
-    d_s = (updf[..., :-1] - updf[..., 1:]) * inv_s
-    n_g, k, length = frac.shape
-    model = b0[:, None] + np.einsum("gk,gkl->gl", f, frac)
-    jac = np.empty((n_g, 1 + 3 * k, length))
+    pdf = np.exp(-0.5 * u * u)
+    n_g, k, n_edges = u.shape
+    jac = np.empty((n_g, 1 + 3 * k, n_edges - 1))
     jac[:, 0, :] = 1.0
-    jac[:, 1::3, :] = f[..., None] * d_c
-    jac[:, 2::3, :] = f[..., None] * d_s
-    jac[:, 3::3, :] = frac
+    frac = jac[:, 3::3, :]
+    np.subtract(cdf[..., 1:], cdf[..., :-1], out=frac)  # each edge is shared by two pixels
+    scale = f[..., None] * inv_s * (1.0 / _SQRT2PI)
+    d_c = jac[:, 1::3, :]
+    np.subtract(pdf[..., :-1], pdf[..., 1:], out=d_c)
+    d_c *= scale
+    updf = np.multiply(u, pdf, out=u)
+    d_s = jac[:, 2::3, :]
+    np.subtract(updf[..., :-1], updf[..., 1:], out=d_s)
+    d_s *= scale
+    if k == 1:
+        model = b0[:, None] + f * frac[:, 0, :]
+    else:
+        model = b0[:, None] + np.einsum("gk,gkl->gl", f, frac)
     return model, jac, frac
 
 
-def _levenberg_marquardt(fixed, b0, c, s, f, noise, s_lo, tol):
+def _weights(noise, level, valid_f):
+    """Fit weights: 1 / variance of the noise model at the expected counts (0 when masked)."""
+    return valid_f / noise.variance(level)
+
+
+def _levenberg_marquardt(fixed, b0, c, s, f, noise, s_lo, tol, start=None):
     """Damped Gauss-Newton on a stack of windows, every group with its own damping.
 
+    ``start`` is the model, Jacobian and unit profiles at the starting point when the caller
+    has them already.  A group has converged when the Gauss-Newton step it just took
+    promised to lower chi2 by less than ``tol``, or when the chi2 it actually gained matched
+    the promise closely: what is left to gain after such a step is at most about
+    ``2.25 (gain - promise)**2 / promise`` (a wrong curvature gives factor 1, a cubic term
+    2.25), so when that is below ``tol`` the confirming step is skipped.  That test is used
+    for steps within 5 sigma (a promise below 25) taken with little damping.
     Groups that have converged drop out of the arrays (so a few slow fits do not keep the
     whole batch busy); their results are written back at the end.
     """
     n_all = b0.size
-    model, jac, frac = _profile_and_jacobian(fixed["edges"], b0, c, s, f)
-    var = noise.variance(fixed["base_level"] + model)
-    w = fixed["valid_f"] / var
+    if start is None:
+        start = _profile_and_jacobian(fixed["edges"], b0, c, s, f)
+    model, jac, frac = start
+    w = _weights(noise, fixed["base_level"] + model, fixed["valid_f"])
     resid = fixed["y"] - model
-    chi2 = np.sum(w * resid * resid, axis=1)
+    chi2 = np.einsum("gl,gl->g", w * resid, resid)
     lam = np.full(n_all, 1e-3)
     active = np.ones(n_all, bool)
-    eye = np.eye(jac.shape[1])
-    names = ("b0", "c", "s", "f", "model", "jac", "frac", "var", "w", "resid", "chi2", "lam")
+    n_par = jac.shape[1]
+    eye = np.eye(n_par)
+    on_diag = np.arange(n_par)
+    names = ("b0", "c", "s", "f", "model", "jac", "w", "resid", "chi2", "lam")
     out = None  # full-size results, once the working set has been compressed
     rows = np.arange(n_all)
     fx = fixed
     for it in range(_MAX_ITER):
         if out is None and np.count_nonzero(active) <= active.size // 2 and active.size > 4:
-            cur = dict(zip(names, (b0, c, s, f, model, jac, frac, var, w, resid, chi2, lam),
+            cur = dict(zip(names, (b0, c, s, f, model, jac, w, resid, chi2, lam),
                            strict=True))
             out = {k: v.copy() for k, v in cur.items()}
             out["active"] = active.copy()
             keep = np.flatnonzero(active)
             rows = rows[keep]
             fx = {k: v[keep] for k, v in fixed.items()}
-            b0, c, s, f, model, jac, frac, var, w, resid, chi2, lam = (cur[k][keep]
-                                                                      for k in names)
+            b0, c, s, f, model, jac, w, resid, chi2, lam = (cur[k][keep] for k in names)
+            frac = jac[:, 3::3, :]
             active = active[keep]
         wj = jac * w[:, None, :]
         hess = wj @ jac.transpose(0, 2, 1)
         grad = (wj @ resid[:, :, None])[..., 0]
-        diag = np.einsum("gpp->gp", hess)
+        diag = hess[:, on_diag, on_diag]
         dead = diag <= 0  # no information (e.g. a component over masked pixels only)
-        damp = hess + (lam[:, None] * np.where(dead, 1.0, diag))[:, :, None] * eye
-        damp = np.where(dead[:, :, None] | dead[:, None, :], eye, damp)
-        grad = np.where(dead, 0.0, grad)
+        if dead.any():
+            damp = hess + (lam[:, None] * np.where(dead, 1.0, diag))[:, :, None] * eye
+            damp = np.where(dead[:, :, None] | dead[:, None, :], eye, damp)
+            grad = np.where(dead, 0.0, grad)
+        else:
+            damp = hess
+            damp[:, on_diag, on_diag] = diag * (1.0 + lam[:, None])
         try:
             step = np.linalg.solve(damp, grad[..., None])[..., 0]
         except np.linalg.LinAlgError:
             step = np.zeros_like(grad)
         nb0 = b0 + step[:, 0]
-        nc = np.clip(c + step[:, 1::3], fx["c_lo"], fx["c_hi"])
-        ns = np.clip(s + step[:, 2::3], s_lo, fx["s_hi"])
+        nc = np.minimum(np.maximum(c + step[:, 1::3], fx["c_lo"]), fx["c_hi"])
+        ns = np.minimum(np.maximum(s + step[:, 2::3], s_lo), fx["s_hi"])
         nf = f + step[:, 3::3]
         nmodel, njac, nfrac = _profile_and_jacobian(fx["edges"], nb0, nc, ns, nf)
         nres = fx["y"] - nmodel
-        nchi2 = np.sum(w * nres * nres, axis=1)
+        nchi2 = np.einsum("gl,gl->g", w * nres, nres)
         better = (nchi2 <= chi2) & active
-        lam = np.where(better, np.maximum(lam / 5.0, 1e-7), np.minimum(lam * 4.0, 1e7))
-        # Converged when the Gauss-Newton step would lower chi2 by a negligible amount.
         predicted = np.einsum("gp,gp->g", step, grad)
+        gain = chi2 - nchi2
+        quadratic = better & (lam <= 1e-2) & (predicted < 25.0) & (
+            2.25 * (gain - predicted) ** 2 < tol * predicted)
+        lam = np.where(better, np.maximum(lam / 5.0, 1e-7), np.minimum(lam * 4.0, 1e7))
         # Ill-conditioned fits (weak candidates with a flat width direction) creep along a
         # valley; after a few steps, a possible gain below one unit of chi2 is good enough.
-        done = active & ((predicted < tol) | ((it >= 5) & (predicted < 1.0)) | (lam >= 1e7))
-        bsel = better[:, None]
-        b0 = np.where(better, nb0, b0)
-        c = np.where(bsel, nc, c)
-        s = np.where(bsel, ns, s)
-        f = np.where(bsel, nf, f)
-        model = np.where(bsel, nmodel, model)
-        jac = np.where(better[:, None, None], njac, jac)
-        frac = np.where(better[:, None, None], nfrac, frac)
+        done = active & ((predicted < tol) | quadratic | ((it >= 5) & (predicted < 1.0))
+                         | (lam >= 1e7))
+        if better.all():
+            b0, c, s, f, model, jac, frac, resid = nb0, nc, ns, nf, nmodel, njac, nfrac, nres
+        else:
+            bsel = better[:, None]
+            b0 = np.where(better, nb0, b0)
+            c = np.where(bsel, nc, c)
+            s = np.where(bsel, ns, s)
+            f = np.where(bsel, nf, f)
+            model = np.where(bsel, nmodel, model)
+            jac = np.where(better[:, None, None], njac, jac)
+            frac = jac[:, 3::3, :]
+            resid = fx["y"] - model
         # Variance from the model at the accepted point (not from the data).
-        var = np.where(bsel, noise.variance(fx["base_level"] + model), var)
-        w = fx["valid_f"] / var
-        resid = fx["y"] - model
-        chi2 = np.sum(w * resid * resid, axis=1)
+        w = _weights(noise, fx["base_level"] + model, fx["valid_f"])
+        chi2 = np.einsum("gl,gl->g", w * resid, resid)
         active &= ~done
         if not active.any():
             break
     if out is not None:
-        for k, v in zip(names, (b0, c, s, f, model, jac, frac, var, w, resid, chi2, lam),
-                        strict=True):
+        for k, v in zip(names, (b0, c, s, f, model, jac, w, resid, chi2, lam), strict=True):
             out[k][rows] = v
         out["active"][rows] = active
-        b0, c, s, f, model, jac, frac, var, w, resid, chi2 = (out[k] for k in names[:-1])
+        b0, c, s, f, model, jac, w, resid, chi2 = (out[k] for k in names[:-1])
+        frac = jac[:, 3::3, :]
         active = out["active"]
     return b0, c, s, f, model, jac, frac, w, resid, chi2, ~active
 
@@ -483,11 +518,11 @@ def _fit_batch(groups, state, ctx, noise, neighbours_model, tol, final):
     s = state.sigma[m].copy()
     f = state.flux[m].copy()
     edges = (xf[:, None, :1] - 0.5) + np.arange(length + 1)[None, None, :]
-    cdf0 = ndtr((edges - c[..., None]) / s[..., None])
-    own0 = np.einsum("gk,gkl->gl", f, cdf0[..., 1:] - cdf0[..., :-1])
-    others = neighbours_model[xi] - own0
-    y = ctx.excess[xi] - others
     b0 = np.zeros(n_g)
+    # The groups' own current models (b0 = 0) also start the fit.
+    start = _profile_and_jacobian(edges, b0, c, s, f)
+    others = neighbours_model[xi] - start[0]
+    y = ctx.excess[xi] - others
 
     base_level = bg_glob + others
     c_lo = groups.lo[:, None] - 0.5
@@ -498,13 +533,19 @@ def _fit_batch(groups, state, ctx, noise, neighbours_model, tol, final):
     fixed = {"y": y, "valid_f": valid_f, "edges": edges, "base_level": base_level,
              "c_lo": c_lo, "c_hi": c_hi, "s_hi": s_hi}
     b0, c, s, f, model, jac, frac, w, resid, chi2, converged = _levenberg_marquardt(
-        fixed, b0, c, s, f, noise, s_lo, tol)
-    eye = np.eye(n_par)
+        fixed, b0, c, s, f, noise, s_lo, tol, start)
+    on_diag = np.arange(n_par)
 
     def covariance(jac):
         wj = jac * w[:, None, :]
         hess = wj @ jac.transpose(0, 2, 1)
-        dead = np.einsum("gpp->gp", hess) <= 0
+        dead = hess[:, on_diag, on_diag] <= 0
+        if not dead.any():
+            try:
+                return np.linalg.inv(hess), dead
+            except np.linalg.LinAlgError:
+                return np.linalg.pinv(hess), dead
+        eye = np.eye(n_par)
         off = dead[:, :, None] | dead[:, None, :]
         try:
             cov = np.linalg.inv(np.where(off, eye, hess))
@@ -516,21 +557,27 @@ def _fit_batch(groups, state, ctx, noise, neighbours_model, tol, final):
     # consistent with the LSF taken at the LSF: noise in the fitted width would otherwise
     # scatter the error bars themselves (too small for lines that came out narrow).
     cov, dead = covariance(jac)
-    s_err = np.sqrt(np.maximum(cov[:, 2::3, 2::3].diagonal(axis1=1, axis2=2), 0))
-    lsf_consistent = np.abs(s - ctx.sigma_lsf) < 2.0 * s_err
+    var_diag = np.maximum(cov[:, on_diag, on_diag], 0)
+    lsf_consistent = np.abs(s - ctx.sigma_lsf) < 2.0 * np.sqrt(var_diag[:, 2::3])
+    # Profiles at the LSF width: the matched-filter significance below and, in the final
+    # pass, the Jacobian rows of the LSF-consistent components.
     if final and lsf_consistent.any():
-        s_eval = np.where(lsf_consistent, ctx.sigma_lsf, s)
-        _, jac_eval, _ = _profile_and_jacobian(edges, b0, c, s_eval, f)
-        cov, dead = covariance(jac_eval)
-    n_free = np.count_nonzero(~dead, axis=1)
+        _, jac_lsf, frac_lsf = _profile_and_jacobian(edges, b0, c, np.full_like(s, ctx.sigma_lsf),
+                                                     f)
+        rows_lsf = np.concatenate([np.zeros((n_g, 1), bool),
+                                   np.repeat(lsf_consistent, 3, axis=1)], axis=1)
+        cov, dead = covariance(np.where(rows_lsf[:, :, None], jac_lsf, jac))
+        var_diag = np.maximum(cov[:, on_diag, on_diag], 0)
+    else:
+        cdf_lsf = ndtr((edges - c[..., None]) / ctx.sigma_lsf)
+        frac_lsf = cdf_lsf[..., 1:] - cdf_lsf[..., :-1]
+    n_free = n_par - np.count_nonzero(dead, axis=1)
     dof = np.count_nonzero(valid, axis=1) - n_free
     # Leverage of each pixel (for the noise re-estimate).
     lev = np.einsum("gpl,gpl->gl", cov @ jac, jac) * w
     # Detection significance: the matched filter (LSF-shaped, known background) applied at
     # the fitted centre to the data minus every other component -- a statistic with unit
     # spread under noise, unlike the flux over its free-shape error.
-    cdf_lsf = ndtr((edges - c[..., None]) / ctx.sigma_lsf)
-    frac_lsf = cdf_lsf[..., 1:] - cdf_lsf[..., :-1]
     alone = resid[:, None, :] + f[..., None] * frac
     info_f = np.einsum("gkl,gl->gk", frac_lsf * frac_lsf, w)
     mf_num = np.einsum("gkl,gl->gk", frac_lsf * alone, w)
@@ -539,9 +586,10 @@ def _fit_batch(groups, state, ctx, noise, neighbours_model, tol, final):
     state.sigma[comp] = s
     state.flux[comp] = f
     state.bg_offset[comp] = b0[:, None]
-    state.centre_err[comp] = np.sqrt(np.maximum(cov[:, 1::3, 1::3].diagonal(axis1=1, axis2=2), 0))
-    state.sigma_err[comp] = np.sqrt(np.maximum(cov[:, 2::3, 2::3].diagonal(axis1=1, axis2=2), 0))
-    state.flux_err[comp] = np.sqrt(np.maximum(cov[:, 3::3, 3::3].diagonal(axis1=1, axis2=2), 0))
+    errors = np.sqrt(var_diag)
+    state.centre_err[comp] = errors[:, 1::3]
+    state.sigma_err[comp] = errors[:, 2::3]
+    state.flux_err[comp] = errors[:, 3::3]
     with np.errstate(divide="ignore", invalid="ignore"):
         state.snr[comp] = np.where(info_f > 0, mf_num / np.sqrt(info_f), 0.0)
     state.chi2[comp] = chi2[:, None]
