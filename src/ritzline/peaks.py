@@ -1324,37 +1324,42 @@ def _table_from_state(state, ctx, fwhm, clipped, meta, n):
     dof = np.maximum(st.dof, 1)
     poor = chdtrc(dof, st.chi2) < 0.01
     scale = np.where(poor, np.sqrt(st.chi2 / dof), 1.0)
-    s = st.sigma
-    fw = FWHM_PER_SIGMA * s
+    fw = FWHM_PER_SIGMA * st.sigma
     fw_err = FWHM_PER_SIGMA * st.sigma_err * scale
-    n_fit = st.centre.size
-    n_sat = clipped["pixel"].size
-    c = _cat(st.centre, clipped["pixel"])
     cols = {
-        "pixel": c,
-        "pixel_err": _cat(st.centre_err * scale, clipped["pixel_err"]),
-        "fwhm_pixel": _cat(fw, clipped["fwhm"]),
-        "fwhm_pixel_err": _cat(fw_err, clipped["fwhm_err"]),
-        "amplitude": _cat(st.flux / (_SQRT2PI * s), np.full(n_sat, np.nan)),
-        "flux": _cat(st.flux, clipped["flux"]),
-        "flux_err": _cat(st.flux_err * scale, clipped["flux_err"]),
-        "background": _cat(np.interp(st.centre, np.arange(n), ctx.background) + st.bg_offset,
-                            clipped["background"]),
-        "snr": _cat(st.snr, clipped["snr"]),
+        "pixel": st.centre,
+        "pixel_err": st.centre_err * scale,
+        "fwhm_pixel": fw,
+        "fwhm_pixel_err": fw_err,
+        "amplitude": st.flux / (_SQRT2PI * st.sigma),
+        "flux": st.flux,
+        "flux_err": st.flux_err * scale,
+        "background": np.interp(st.centre, np.arange(n), ctx.background) + st.bg_offset,
+        "snr": st.snr,
     }
-    sat_line = _cat(np.zeros(n_fit, bool), np.ones(n_sat, bool))
-    blended = _cat(st.group_size > 1, np.zeros(n_sat, bool))
-    suspect = _cat((fw > 1.1 * fwhm) & ((fw - fwhm) > 3.0 * fw_err), np.zeros(n_sat, bool))
-    edge = (c < 1.5 * fwhm - 0.5) | (c > n - 0.5 - 1.5 * fwhm)
+    # Flags as bit codes (1 saturated, 2 blended, 4 blend_suspect, 8 edge).
+    code = 2 * (st.group_size > 1) + 4 * ((fw > 1.1 * fwhm) & ((fw - fwhm) > 3.0 * fw_err))
+    n_sat = clipped["pixel"].size
+    if n_sat:
+        extra = {"pixel": clipped["pixel"], "pixel_err": clipped["pixel_err"],
+                 "fwhm_pixel": clipped["fwhm"], "fwhm_pixel_err": clipped["fwhm_err"],
+                 "amplitude": np.full(n_sat, np.nan), "flux": clipped["flux"],
+                 "flux_err": clipped["flux_err"], "background": clipped["background"],
+                 "snr": clipped["snr"]}
+        cols = {k: np.concatenate([v, extra[k]]) for k, v in cols.items()}
+        code = np.concatenate([code, np.ones(n_sat, code.dtype)])
+    c = cols["pixel"]
+    code = code + 8 * ((c < 1.5 * fwhm - 0.5) | (c > n - 0.5 - 1.5 * fwhm))
     # Every combination of the four words is one of 16 strings: look them up by bit code.
-    code = sat_line * 1 + blended * 2 + suspect * 4 + edge * 8
     words, lengths = _flag_combinations()
     flags = words[code].astype(f"U{max(1, int(lengths[code].max(initial=0)))}")
-    order = np.argsort(c, kind="stable")
-    cols = {k: np.asarray(v, float)[order] for k, v in cols.items()}
+    if c.size > 1 and not np.all(c[1:] >= c[:-1]):  # the fitted lines are mostly in order
+        order = np.argsort(c, kind="stable")
+        cols = {k: v[order] for k, v in cols.items()}
+        flags = flags[order]
     meta["n_lines"] = int(c.size)
     meta["error_scaling"] = "inverse Fisher matrix; x sqrt(chi2/dof) where p(chi2) < 0.01"
-    return _build_table(cols, flags[order] if flags.size else np.zeros(0, "U1"), meta)
+    return _build_table(cols, flags, meta)
 
 
 def line_background(spectrum, lines: Table, *, dark=None) -> np.ndarray:
