@@ -96,6 +96,14 @@ def plot_peaks(counts, lines, path, *, background=None, title: str | None = None
 # ---- calibrate -------------------------------------------------------------------------
 
 
+_REJECTION_LABELS = {
+    "reference": "reference line not reliable",
+    "blend_suspect": "blend suspect",
+    "outlier": "outlier",
+    "edge": "at the detector edge",
+}
+
+
 def calibration_residuals(solution, path, *, title: str | None = None):
     """Residual plot of a wavelength solution: residuals (nm) of the matched lamp lines with
     their 1-sigma error bars against pixel, the solution's 1-sigma band about zero, and the
@@ -118,15 +126,25 @@ def calibration_residuals(solution, path, *, title: str | None = None):
                        np.asarray(m["wavelength_ref_err"], float)) * 1e3
         ax.errorbar(pix[used], res[used], yerr=err[used], fmt="o", ms=4, color="tab:blue",
                     capsize=2, label=f"used ({int(used.sum())})")
-        if (~used).any():
-            ax.errorbar(pix[~used], res[~used], yerr=err[~used], fmt="x", ms=6,
-                        color="tab:red", capsize=2, label=f"rejected ({int((~used).sum())})")
-            for x, y, why in zip(pix[~used], res[~used], np.asarray(m["reason"])[~used],
-                                 strict=True):
-                ax.annotate(str(why), (x, y), textcoords="offset points", xytext=(4, 4),
-                            fontsize=7, color="tab:red")
         lim = np.nanmax(np.abs(np.r_[res[used], band.max()])) if used.any() else band.max()
-        ax.set_ylim(-2.5 * lim, 2.5 * lim)
+        top = 2.5 * lim
+        ax.set_ylim(-top, top)
+        # Rejected lines, one marker per kind of reason (legend counts, no per-point text);
+        # those off the scale sit on its edge as triangles pointing the way they went.
+        reasons = np.array([str(r).split(":")[0].split(" ")[0] or "rejected"
+                            for r in np.asarray(m["reason"])])
+        markers = iter("xsDv^P*")
+        for kind in sorted(set(reasons[~used])):
+            sel = ~used & (reasons == kind)
+            inside = sel & (np.abs(res) <= top)
+            marker = next(markers, "x")
+            colour = "tab:red" if kind.startswith("outlier") else "tab:orange"
+            ax.plot(pix[inside], res[inside], marker, ms=6, color=colour, ls="none",
+                    label=f"not used: {_REJECTION_LABELS.get(kind, kind)} ({int(sel.sum())})")
+            for side, arrow in ((1.0, "^"), (-1.0, "v")):
+                off = sel & ~inside & (np.sign(res) == side)
+                ax.plot(pix[off], np.full(off.sum(), side * 0.97 * top), arrow, ms=6,
+                        color=colour, ls="none")
     ax.set_xlim(-0.5, solution.n_pixels - 0.5)
     ax.set_xlabel("pixel")
     ax.set_ylabel(f"fit − reference ({solution.medium}), pm")
