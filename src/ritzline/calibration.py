@@ -16,7 +16,10 @@ How a lamp exposure is solved
    these are histogrammed, and the strongest few cells (the true one collects votes from all
    over the detector) give candidate sets of line correspondences.  A cell's dispersion
    times the measured LSF width gives the resolution in nm, so reference lines blended at
-   that resolution (``levels.blends``, closer than one FWHM) are no longer fitted.
+   that resolution (``levels.blends``, closer than one FWHM) are no longer fitted, except
+   multiplets spanning less than ``_MERGE_FRACTION`` of the FWHM: whichever members shine,
+   such a group is one line at that resolution, fitted at the middle of its extent with
+   half the extent as its reference uncertainty.
 4. *Grow.*  From each candidate, a robust low-degree Chebyshev fit predicts where every other
    reference line should fall; a detection joins when its nearest listed line lies inside
    the prediction window, no other listed line does, and the window is small against the
@@ -128,6 +131,9 @@ _ISOLATED = 0.5  # an end line further than this (normalised pixel) from the nex
 _WINDOW_FRACTION_INSIDE = 0.3  # the same between fitted lines
 _WINDOW_FRACTION = 0.2  # a match window must be smaller than this x the line spacing
 _CLIP_NSIGMA = 4.0  # rejection threshold of the final fit
+# reference lines closer than one FWHM whose whole extent is below this fraction of it are
+# fitted as one line (their centroid is known to half the extent whatever members shine)
+_MERGE_FRACTION = 0.25
 
 
 # ---- the Solution ---------------------------------------------------------------------
@@ -668,6 +674,8 @@ def _references(lamps, wavelength_range, medium: str, fwhm_nm: float | None = No
     species = cat("species", "", str)
     usable = cat("usable", True, bool)
     reason = cat("reason", "", object)
+    designation = cat("designation", "", str).astype(object)
+    keep = np.ones(wl.size, bool)
     if fwhm_nm is not None and wl.size:
         from astropy.table import Table
 
@@ -676,16 +684,33 @@ def _references(lamps, wavelength_range, medium: str, fwhm_nm: float | None = No
         for n_members, rows in zip(groups["n_members"], groups["member_rows"], strict=True):
             if n_members > 1:
                 idx = np.array([int(r) for r in str(rows).split(",")])
+                lo, hi = wl[idx].min(), wl[idx].max()
+                if hi - lo <= _MERGE_FRACTION * fwhm_nm and usable[idx].any():
+                    # a multiplet this tight is one line at this resolution: whichever of
+                    # its members shine, the centroid lies inside their extent, so it is
+                    # fitted at the middle with half the extent as its uncertainty
+                    head = idx[0]
+                    wl[head] = 0.5 * (lo + hi)
+                    werr[head] = math.hypot(float(werr[idx].max()), 0.5 * (hi - lo))
+                    known = np.isfinite(inten[idx])
+                    inten[head] = np.sum(inten[idx][known]) if known.any() else np.nan
+                    members = np.asarray(probe["wavelength"], float)[idx]
+                    designation[head] = "unresolved: " + " + ".join(
+                        f"{species[i]} {w:.4f}" for i, w in zip(idx, members, strict=True))
+                    usable[head], reason[head] = True, ""
+                    keep[idx[1:]] = False
+                    continue
                 fresh = idx[usable[idx]]
                 usable[idx] = False
                 reason[fresh] = f"unresolved reference blend at FWHM {fwhm_nm:.3g} nm"
     order = np.argsort(wl, kind="stable")
+    order = order[keep[order]]
     return _Refs(
         wavelength=wl[order],
         wavelength_err=werr[order],
         intensity=inten[order],
         species=species[order],
-        designation=cat("designation", "", str)[order],
+        designation=designation[order].astype(str),
         usable=usable[order],
         reason=reason[order].astype(str),
     )
@@ -941,9 +966,10 @@ def _associate(det: _Lines, ref: _Refs, pred, tol, inside=None):
         inside, _WINDOW_FRACTION_INSIDE, _WINDOW_FRACTION
     )
     ok = (dist < tol) & (np.abs(pred - w[other]) >= tol) & (tol < frac * gap)
-    # a line whose centroid is known to worse than a quarter of its width cannot be
-    # identified on its own
-    ok &= _MATCH_NSIGMA * det.pixel_err < _fwhm_px(det)
+    # a line whose centroid is known to worse than an eighth of its width cannot be
+    # identified on its own: its window would admit a noise bump or a neighbour half a
+    # width away from the listed line
+    ok &= _MATCH_NSIGMA * det.pixel_err < 0.5 * _fwhm_px(det)
     di = np.flatnonzero(ok)
     ri = near[ok]
     score = dist[ok] / tol[ok]
