@@ -339,20 +339,18 @@ def _make_groups(centres, fwhm, n):
     order = np.argsort(centres)
     c = centres[order]
     new = _cat(True, np.diff(c) > _GROUP_SEPARATION * fwhm)
-    gid = np.cumsum(new) - 1
-    # Split oversized groups: cut every _MAX_COMPONENTS members (rare: dense forests).
     start = np.flatnonzero(new)
-    rank = np.arange(c.size) - start[gid]
-    gid = gid * (c.size // _MAX_COMPONENTS + 2) + rank // _MAX_COMPONENTS
-    _, gid = np.unique(gid, return_inverse=True)
-    n_groups = gid.max() + 1 if c.size else 0
-    size = np.bincount(gid, minlength=n_groups)
-    first = _cat(0, np.cumsum(size)[:-1])
+    rank = np.arange(c.size) - start[np.cumsum(new) - 1]
+    # Split oversized groups: cut every _MAX_COMPONENTS members (rare: dense forests).
+    first = np.flatnonzero(rank % _MAX_COMPONENTS == 0)
+    size = np.diff(_cat(first, c.size))
     hw = _WINDOW_HALF * fwhm + 1.0
-    lo = np.clip(np.floor(c[first] - hw), 0, n - 1).astype(int)
-    hi = np.clip(np.ceil(c[first + size - 1] + hw), 0, n - 1).astype(int)
+    lo = np.minimum(np.maximum(np.floor(c[first] - hw), 0), n - 1).astype(int)
+    hi = np.minimum(np.maximum(np.ceil(c[first + size - 1] + hw), 0), n - 1).astype(int)
+    k_min, k_max = int(size.min()), int(size.max())
     out = []
-    for k in np.unique(size):  # loop over group sizes (a handful), not over lines
+    # Loop over group sizes (a handful), not over lines.
+    for k in ((k_min,) if k_min == k_max else np.unique(size)):
         sel = np.flatnonzero(size == k)
         member = order[first[sel][:, None] + np.arange(k)[None, :]]
         out.append(_Groups(member=member, lo=lo[sel], hi=hi[sel]))
