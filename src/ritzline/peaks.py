@@ -49,10 +49,11 @@ def _median(x):
     partition cost on the short arrays of the hot path).
     """
     k = x.size // 2
+    part = np.partition(x, k)
     if x.size % 2:
-        return np.partition(x, k)[k]
-    part = np.partition(x, (k - 1, k))
-    return 0.5 * (part[k - 1] + part[k])
+        return part[k]
+    # The lower middle value is the largest of the lower part (cheaper than a second kth).
+    return 0.5 * (part[:k].max() + part[k])
 
 
 # ---------------------------------------------------------------------------------------
@@ -216,7 +217,7 @@ def _block_background(y, ok, width, q=None, sigma=0.0):
     """
     n = y.size
     nb = max(1, round(n / width))
-    edges = np.linspace(0, n, nb + 1).round().astype(int)
+    edges = np.rint(np.arange(nb + 1) * (n / nb)).astype(int)
     w = int(np.max(np.diff(edges)))
     idx = edges[:-1, None] + np.arange(w)[None, :]
     inside = idx < edges[1:, None]
@@ -569,7 +570,7 @@ def _fit_batch(groups, state, ctx, noise, neighbours_model, tol, final):
     else:
         cdf_lsf = ndtr((edges - c[..., None]) / ctx.sigma_lsf)
         frac_lsf = cdf_lsf[..., 1:] - cdf_lsf[..., :-1]
-    n_free = n_par - np.count_nonzero(dead, axis=1)
+    n_free = n_par - np.count_nonzero(dead, axis=1) if dead.any() else n_par
     dof = np.count_nonzero(valid, axis=1) - n_free
     # Leverage of each pixel (for the noise re-estimate).
     lev = np.einsum("gpl,gpl->gl", cov @ jac, jac) * w
@@ -595,7 +596,7 @@ def _fit_batch(groups, state, ctx, noise, neighbours_model, tol, final):
     state.converged[comp] = converged[:, None]
     state.group_size[comp] = k
     # Groups whose widths all match the LSF (no unresolved blend) inform the noise estimate.
-    lsf_like = (k == 1) & np.all(np.abs(s / ctx.sigma_lsf - 1.0) < 0.15, axis=1)
+    lsf_like = (k == 1) & (np.abs(s[:, 0] / ctx.sigma_lsf - 1.0) < 0.15)
     use = valid & lsf_like[:, None]
     return {
         "x": xi[use], "resid": resid[use], "lev": lev[use], "level": (base_level + model)[use],
@@ -651,12 +652,15 @@ def _lines_model(state, n):
     if c.size == 0:
         return out
     half = int(np.ceil(6.0 * float(np.max(s)))) + 1
-    pix = np.rint(c)[:, None].astype(int) + np.arange(-half, half + 1)[None, :]
-    edges = np.rint(c)[:, None] + np.arange(-half - 0.5, half + 1.0)[None, :]
+    near = np.rint(c)
+    pix = near[:, None].astype(int) + np.arange(-half, half + 1)[None, :]
+    edges = near[:, None] + np.arange(-half - 0.5, half + 1.0)[None, :]
     cdf = ndtr((edges - c[:, None]) / s[:, None])
-    frac = cdf[:, 1:] - cdf[:, :-1]
-    ok = (pix >= 0) & (pix < n)
-    return np.bincount(pix[ok], weights=(f[:, None] * frac)[ok], minlength=n)
+    counts = f[:, None] * (cdf[:, 1:] - cdf[:, :-1])
+    if near.min() - half < 0 or near.max() + half >= n:  # a window passes an end
+        ok = (pix >= 0) & (pix < n)
+        pix, counts = pix[ok], counts[ok]
+    return np.bincount(pix.ravel(), weights=counts.ravel(), minlength=n)
 
 
 def _fit_all(state, ctx, noise, near=None, tol=1e-2, final=True):
@@ -1020,7 +1024,7 @@ def _find_lines(spectrum, *, min_snr, fwhm_guess, saturation, gain, read_noise, 
 
     if not valid.any():
         return empty("every sample is masked")
-    if not np.any(counts[valid]):
+    if not np.any(counts):  # masked samples are zero already
         return empty("every sample is zero")
     if np.ptp(counts[valid]) == 0:
         return empty("the spectrum is constant (all samples equal)")
@@ -1081,8 +1085,9 @@ def _find_lines(spectrum, *, min_snr, fwhm_guess, saturation, gain, read_noise, 
         if pk.size:
             gaps = np.diff(pk)
             iso = _cat(True, gaps > 12) & _cat(gaps > 12, True)
-            near_sat = np.convolve(sat_zone, np.ones(9), mode="same")[pk] > 0
-            pk = pk[iso & ~near_sat]
+            if sat_zone.any():
+                iso &= np.convolve(sat_zone, np.ones(9), mode="same")[pk] == 0
+            pk = pk[iso]
         widths = _half_max_widths(excess, ok, pk) if pk.size else np.zeros(0)
         widths = widths[np.isfinite(widths) & (widths > 0.8)]
         if widths.size >= 1:
@@ -1120,7 +1125,7 @@ def _find_lines(spectrum, *, min_snr, fwhm_guess, saturation, gain, read_noise, 
         meta.update(_meta_tail(noise, fwhm, None, lsf_method, rejected, 0, min_snr))
         return empty(f"no line reaches the detection threshold (min_snr={min_snr:g})")
     # Sub-pixel start: parabola through the filter peak.
-    ic = np.clip(cand, 1, n - 2)
+    ic = np.minimum(np.maximum(cand, 1), n - 2)
     zl, z0, zr = snr_mf[ic - 1], snr_mf[ic], snr_mf[ic + 1]
     den = zl - 2 * z0 + zr
     shift = np.where(den < 0, 0.5 * (zl - zr) / np.where(den < 0, den, -1), 0.0)
@@ -1163,7 +1168,8 @@ def _find_lines(spectrum, *, min_snr, fwhm_guess, saturation, gain, read_noise, 
     before = state
     state, rejected = _prune(state, ctx, fwhm, min_snr, rejected, final=True)
     # A component dropped from a joint fit shared flux with its partners: refit those.
-    gone = np.setdiff1d(before.centre[before.group_size > 1], state.centre)
+    joint = before.group_size > 1
+    gone = np.setdiff1d(before.centre[joint], state.centre) if joint.any() else joint[:0]
     if state.centre.size and gone.size:
         _fit_all(state, ctx, noise, near=gone)
         state, rejected = _prune(state, ctx, fwhm, min_snr, rejected, final=True)
