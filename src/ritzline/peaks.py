@@ -9,6 +9,7 @@ pixel windows; lines closer than about two FWHM share a window and are fitted jo
 from __future__ import annotations
 
 import functools
+import math
 import warnings
 from dataclasses import dataclass
 from typing import TYPE_CHECKING
@@ -274,21 +275,29 @@ def _local_maxima(z, threshold):
     return np.flatnonzero(peak) + 1
 
 
+def _neighbours(a, fill=None):
+    """Each pixel's left and right neighbour values; ``fill`` (default: the end value itself)
+    past the ends."""
+    left = np.empty_like(a)
+    left[1:] = a[:-1]
+    left[0] = a[0] if fill is None else fill
+    right = np.empty_like(a)
+    right[:-1] = a[1:]
+    right[-1] = a[-1] if fill is None else fill
+    return left, right
+
+
 def _spike_pixels(excess, var, ok, fwhm, min_snr):
     """Pixels far too sharp for the LSF: single-pixel spikes (hot pixels, cosmic-ray hits)."""
     # Neighbour/centre ratio of the sharpest line still allowed (half the LSF, centred).
-    f_lim = 0.5 * fwhm
-    frac, _, _ = _integrated(np.array([0.0, 1.0]), 0.0, f_lim / FWHM_PER_SIGMA)
-    r = frac[1] / frac[0]
+    scale = np.sqrt(2.0) * 0.5 * fwhm / FWHM_PER_SIGMA
+    r = (math.erf(1.5 / scale) - math.erf(0.5 / scale)) / (2.0 * math.erf(0.5 / scale))
     s = np.where(ok, excess, 0.0)
-    left = _cat(s[0], s[:-1])
-    right = _cat(s[1:], s[-1])
-    ok_l = _cat(False, ok[:-1])
-    ok_r = _cat(ok[1:], False)
+    left, right = _neighbours(s)
+    ok_l, ok_r = _neighbours(ok, False)
     both = ok_l & ok_r
     neigh = np.where(both, 0.5 * (left + right), np.where(ok_l, left, right))
-    v_l = _cat(var[0], var[:-1])
-    v_r = _cat(var[1:], var[-1])
+    v_l, v_r = _neighbours(var)
     v_n = np.where(both, 0.25 * (v_l + v_r), np.where(ok_l, v_l, v_r))
     stat = (r * s - neigh) / np.sqrt(r * r * var + v_n)
     sig = s / np.sqrt(var)
@@ -299,7 +308,7 @@ def _half_max_widths(excess, ok, peaks, max_half=15):
     """Full width at half maximum of the profile around each peak (linear interpolation)."""
     n = excess.size
     off = np.arange(-max_half, max_half + 1)
-    idx = np.clip(peaks[:, None] + off[None, :], 0, n - 1)
+    idx = np.minimum(np.maximum(peaks[:, None] + off[None, :], 0), n - 1)
     prof = np.where(ok[idx], excess[idx], np.nan)
     top = prof[:, max_half]
     half = 0.5 * top
@@ -627,10 +636,9 @@ class _State:
         self.group_size = np.ones(n, int)
 
     def subset(self, keep):
-        new = _State(self.centre[keep].copy(), self.sigma[keep].copy(), self.flux[keep].copy())
-        for name in ("bg_offset", "centre_err", "sigma_err", "flux_err", "snr", "chi2", "dof",
-                     "converged", "group_size"):
-            setattr(new, name, getattr(self, name)[keep].copy())
+        """The components where the boolean mask ``keep`` is True (copies, every attribute)."""
+        new = object.__new__(_State)
+        new.__dict__.update({name: value[keep] for name, value in self.__dict__.items()})
         return new
 
     def extend(self, centre, sigma, flux):
@@ -1294,7 +1302,7 @@ def _prune(state, ctx, fwhm, snr_cut, rejected, *, final):
     # Duplicates: two components within 0.6 FWHM; keep the brighter.
     order = np.argsort(state.centre)
     c = state.centre[order]
-    close = np.flatnonzero(np.diff(c) < 0.6 * fwhm)
+    close = np.flatnonzero(c[1:] - c[:-1] < 0.6 * fwhm)
     dup = np.zeros(state.centre.size, bool)
     for_idx_a, for_idx_b = order[close], order[close + 1]
     weaker = np.where(state.flux[for_idx_a] < state.flux[for_idx_b], for_idx_a, for_idx_b)
