@@ -674,14 +674,16 @@ def _lines_model(state, n):
     return np.bincount(pix.ravel(), weights=counts.ravel(), minlength=n)
 
 
-def _fit_all(state, ctx, noise, near=None, tol=1e-2, final=True):
+def _fit_all(state, ctx, noise, near=None, tol=1e-2, final=True, lines=None):
     """Fit every component (grouped jointly), other lines' models held fixed.
 
     With ``near`` (pixel positions), only the groups within reach of those are refitted.
+    ``lines`` is the model of all components (``_lines_model(state, n)``) when the caller
+    has it already.
     """
     if state.centre.size == 0:
         return []
-    everything = _lines_model(state, ctx.n)
+    everything = _lines_model(state, ctx.n) if lines is None else lines
     diag = []
     fwhm = ctx.sigma_lsf * FWHM_PER_SIGMA
     for groups in _make_groups(state.centre, fwhm, ctx.n):
@@ -1165,9 +1167,11 @@ def _find_lines(spectrum, *, min_snr, fwhm_guess, saturation, gain, read_noise, 
         extra = extra[(dist > 0.5 * fwhm) & ~_near_saturation(sat_zone, extra, fwhm)]
     n_candidates += int(extra.size)
     if extra.size:
-        state = state.extend(extra.astype(float), np.full(extra.size, sigma_lsf), f_r[extra])
+        extra_state = _State(extra.astype(float), np.full(extra.size, sigma_lsf), f_r[extra])
+        lines_now = lines_now + _lines_model(extra_state, n)
+        state = state.extend(extra_state.centre, extra_state.sigma, extra_state.flux)
     # Pass 2, neighbours from pass 1.
-    diag = _fit_all(state, ctx, noise)
+    diag = _fit_all(state, ctx, noise, lines=lines_now)
     if estimate_slope:
         # The slope again from the converged fits (neighbours and background settled); refit
         # with it when it moved (crowded spectra).
