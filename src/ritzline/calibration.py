@@ -17,9 +17,9 @@ How a lamp exposure is solved
    over the detector) give candidate sets of line correspondences.  A cell's dispersion
    times the measured LSF width gives the resolution in nm, so reference lines blended at
    that resolution (``levels.blends``, closer than one FWHM) are no longer fitted, except
-   multiplets spanning less than ``_MERGE_FRACTION`` of the FWHM: whichever members shine,
-   such a group is one line at that resolution, fitted at the middle of its extent with
-   half the extent as its reference uncertainty.
+   multiplets spanning less than ``_MERGE_FRACTION`` of the FWHM and 1.5 FWHM clear of other
+   listed lines: whichever members shine, such a group is one line at that resolution,
+   fitted at the middle of its extent with half the extent as its reference uncertainty.
 4. *Grow.*  From each candidate, a robust low-degree Chebyshev fit predicts where every other
    reference line should fall; a detection joins when its nearest listed line lies inside
    the prediction window, no other listed line does, and the window is small against the
@@ -28,6 +28,9 @@ How a lamp exposure is solved
    The fit is repeated until nothing changes: the solution widens to the whole detector.
 5. *Fit and trust.*  The final weighted Chebyshev fit (degree by BIC, capped by the number and
    spread of lines) rejects outliers on leave-one-out residuals, with a reason per line.
+   When its windows reject lines, a lower degree that fits no significantly worse (F-test)
+   and accepts them all is preferred to dropping them: a lone end line is rejected by a
+   degree high enough to bend to it, not by the curve the other lines define.
    Its covariance is the chi-square-scaled formal one plus the jackknife one; the band adds
    the spread to the next degree and, beyond the lines, the curvature prior.  The confidence
    is one minus the chance that a list of lines at the same local density fits the
@@ -685,7 +688,12 @@ def _references(lamps, wavelength_range, medium: str, fwhm_nm: float | None = No
             if n_members > 1:
                 idx = np.array([int(r) for r in str(rows).split(",")])
                 lo, hi = wl[idx].min(), wl[idx].max()
-                if hi - lo <= _MERGE_FRACTION * fwhm_nm and usable[idx].any():
+                # ... and clear of other listed lines by 1.5 FWHM: its uncertainty is spent
+                # on the extent, a neighbour's pull on the centroid would come on top
+                others = np.delete(wl, idx)
+                clear = others.size == 0 or np.min(np.abs(others - 0.5 * (lo + hi))) > (
+                    0.5 * (hi - lo) + 1.5 * fwhm_nm)
+                if hi - lo <= _MERGE_FRACTION * fwhm_nm and usable[idx].any() and clear:
                     # a multiplet this tight is one line at this resolution: whichever of
                     # its members shine, the centroid lies inside their extent, so it is
                     # fitted at the middle with half the extent as its uncertainty
@@ -1116,7 +1124,15 @@ def _refine(det: _Lines, ref: _Refs, fit: _Fit, degree, *, force=False) -> _Fit 
     fit at a far end cannot vouch for each other."""
     for it in range(4):
         di, ri = _associate_with(det, ref, fit)
-        if np.array_equal(di, fit.di) and np.array_equal(ri, fit.ri) and not (force and it == 0):
+        # (with ``force`` the first fit indexes the previous reference list)
+        fresh = force and it == 0
+        if degree is None and not fresh and not (np.isin(fit.di, di)
+                                                 & np.isin(fit.ri, ri)).all():
+            lower = _lower_degree_keeping_all(det, ref, fit)
+            if lower is not None:
+                fit, degree = lower, len(lower.coef) - 1
+                di, ri = _associate_with(det, ref, fit)
+        if np.array_equal(di, fit.di) and np.array_equal(ri, fit.ri) and not fresh:
             break
         new = _final_fit(det, ref, di, ri, degree)
         if new is None:
@@ -1126,17 +1142,53 @@ def _refine(det: _Lines, ref: _Refs, fit: _Fit, degree, *, force=False) -> _Fit 
 
 
 def _prune(det: _Lines, ref: _Refs, fit: _Fit, degree) -> _Fit | None:
-    """Drop, and refit without, the lines the fit's own leave-one-out windows reject."""
+    """Drop, and refit without, the lines the fit's own leave-one-out windows reject.  With
+    the degree free, a lower degree that the lines do not call inadequate and whose windows
+    accept every line is preferred to dropping: a lone end line is rejected by a degree
+    high enough to bend to it, not by the curve the other lines define."""
     for _ in range(4):
         di, ri = _associate_with(det, ref, fit)
         keep = np.isin(fit.di, di) & np.isin(fit.ri, ri)
         if keep.all():
             break
+        if degree is None:
+            lower = _lower_degree_keeping_all(det, ref, fit)
+            if lower is not None:
+                fit, degree = lower, len(lower.coef) - 1
+                continue
         new = _final_fit(det, ref, fit.di[keep], fit.ri[keep], degree)
         if new is None:
             return None
         fit = new
     return fit
+
+
+def _lower_degree_keeping_all(det: _Lines, ref: _Refs, fit: _Fit) -> _Fit | None:
+    """The highest degree below the fit's whose own windows accept all its lines and
+    whose chi-square is not significantly worse on the fitted lines (F-test, 1 %)."""
+    from scipy.stats import f as f_dist
+
+    deg = len(fit.coef) - 1
+    x = _xnorm(det.pixel[fit.di], det.n_pixels)
+    y = ref.wavelength[fit.ri]
+    u = fit.used
+    m = int(u.sum())
+    chi2_h = float(np.sum(((y[u] - _cheb.chebval(x[u], fit.coef)) / fit.sig[u]) ** 2))
+    dof_h = m - deg - 1
+    if dof_h < 1:
+        return None
+    for d in range(deg - 1, 0, -1):
+        new = _final_fit(det, ref, fit.di, fit.ri, d)
+        if new is None or new.used.sum() < u.sum():
+            return None
+        chi2_d = float(np.sum(((y[u] - _cheb.chebval(x[u], new.coef)) / fit.sig[u]) ** 2))
+        stat = (chi2_d - chi2_h) / (deg - d) / max(chi2_h / dof_h, 1e-12)
+        if stat > f_dist.ppf(0.99, deg - d, dof_h):
+            return None
+        di, ri = _associate_with(det, ref, new)
+        if (np.isin(new.di, di) & np.isin(new.ri, ri)).all():
+            return new
+    return None
 
 
 def _associate_with(det: _Lines, ref: _Refs, fit: _Fit):
