@@ -219,13 +219,14 @@ def _block_background(y, ok, width, q=None, sigma=0.0):
     n = y.size
     nb = max(1, round(n / width))
     edges = np.rint(np.arange(nb + 1) * (n / nb)).astype(int)
-    w = int(np.max(np.diff(edges)))
+    w = int((edges[1:] - edges[:-1]).max())
     idx = edges[:-1, None] + np.arange(w)[None, :]
     inside = idx < edges[1:, None]
     idx = np.minimum(idx, n - 1)
-    vals = np.where(inside & ok[idx], y[idx], np.inf)
+    use = inside & ok[idx]
+    vals = np.where(use, y[idx], np.inf)
     vals.sort(axis=1)
-    nval = np.count_nonzero(np.isfinite(vals), axis=1)
+    nval = np.add.reduce(use, axis=1)
     has = nval >= max(3, w // 4)
     quant = 0.5 if q is None else q
     pos = quant * np.maximum(nval - 1, 0)
@@ -235,8 +236,9 @@ def _block_background(y, ok, width, q=None, sigma=0.0):
     frac = pos - lo
     vlo = vals[rows, lo]
     vhi = vals[rows, hi]
+    # vhi is finite wherever ``has`` (hi < nval); elsewhere the result is NaN anyway.
     with np.errstate(invalid="ignore"):
-        stat = np.where(has, vlo + frac * (np.where(np.isfinite(vhi), vhi, vlo) - vlo), np.nan)
+        stat = np.where(has, vlo + frac * (vhi - vlo), np.nan)
     if q is not None:
         from scipy.special import ndtri
 
@@ -583,7 +585,7 @@ def _fit_batch(groups, state, ctx, noise, neighbours_model, tol, final):
         cdf_lsf = ndtr((edges - c[..., None]) / ctx.sigma_lsf)
         frac_lsf = cdf_lsf[..., 1:] - cdf_lsf[..., :-1]
     n_free = n_par - np.count_nonzero(dead, axis=1) if dead.any() else n_par
-    dof = np.count_nonzero(valid, axis=1) - n_free
+    dof = np.add.reduce(valid, axis=1) - n_free
     # Leverage of each pixel (for the noise re-estimate).
     lev = np.einsum("gpl,gpl->gl", cov @ jac, jac) * w
     # Detection significance: the matched filter (LSF-shaped, known background) applied at
