@@ -190,8 +190,9 @@ def _detect_saturation(counts, valid) -> float | None:
     """The saturation level, if the spectrum shows repeated maximum values (a clipped top)."""
     if not valid.any():
         return None
-    top = counts[valid].max()
-    n_top = int(np.count_nonzero(counts[valid] == top))
+    usable = counts if valid.all() else counts[valid]
+    top = usable.max()
+    n_top = int(np.count_nonzero(usable == top))
     if n_top >= 3:
         return float(top)
     if n_top == 2 and top > 0 and (np.log2(top + 1) % 1 == 0 or np.log2(top) % 1 == 0):
@@ -250,18 +251,25 @@ def _block_background(y, ok, width, q=None, sigma=0.0):
     return np.interp(np.arange(n), centres[has], stat[has])
 
 
+@functools.lru_cache(maxsize=16)
 def _unit_kernel(fwhm):
+    """Matched-filter kernels (reversed for np.convolve): the unit profile and its square.
+
+    Cached: every call of one search uses the same width.  Read-only arrays.
+    """
     sigma = fwhm / FWHM_PER_SIGMA
     half = int(np.ceil(3.0 * sigma)) + 1
     k, _, _ = _integrated(np.arange(-half, half + 1, dtype=float), 0.0, sigma)
-    return k
+    k_rev, k2_rev = k[::-1].copy(), (k * k)[::-1].copy()
+    k_rev.flags.writeable = k2_rev.flags.writeable = False
+    return k_rev, k2_rev
 
 
 def _matched_filter(excess, weight, fwhm):
     """Flux estimate and significance of a line centred on each pixel (known background)."""
-    k = _unit_kernel(fwhm)
-    num = np.convolve(excess * weight, k[::-1], mode="same")
-    den = np.convolve(weight, (k * k)[::-1], mode="same")
+    k_rev, k2_rev = _unit_kernel(float(fwhm))
+    num = np.convolve(excess * weight, k_rev, mode="same")
+    den = np.convolve(weight, k2_rev, mode="same")
     with np.errstate(divide="ignore", invalid="ignore"):
         flux = np.where(den > 0, num / den, 0.0)
         snr = np.where(den > 0, num / np.sqrt(den), 0.0)
@@ -524,13 +532,12 @@ def _fit_batch(groups, state, ctx, noise, neighbours_model, tol, final):
     inside = x <= groups.hi[:, None]
     xi = np.minimum(x, ctx.n - 1)
     valid = inside & ctx.ok[xi]
-    xf = x.astype(float)
     bg_glob = ctx.background[xi]
     # Data minus global background minus the other lines' current models.
-    c = state.centre[m].copy()
-    s = state.sigma[m].copy()
-    f = state.flux[m].copy()
-    edges = (xf[:, None, :1] - 0.5) + np.arange(length + 1)[None, None, :]
+    c = state.centre[m]  # fancy indexing: copies
+    s = state.sigma[m]
+    f = state.flux[m]
+    edges = (groups.lo[:, None, None] - 0.5) + np.arange(length + 1.0)[None, None, :]
     b0 = np.zeros(n_g)
     # The groups' own current models (b0 = 0) also start the fit.
     start = _profile_and_jacobian(edges, b0, c, s, f)
