@@ -7,6 +7,7 @@ import numpy as np
 import pytest
 from click.testing import CliRunner
 
+from ritzline import levels
 from ritzline.calibration import Solution, calibrate, calibrated_spectrum
 from ritzline.cli import main
 from ritzline.errors import CalibrationError
@@ -76,6 +77,34 @@ def test_wavelength_err_band_covers_the_true_error_beyond_the_outermost_lines():
     outside = np.r_[np.linspace(0, used_px.min(), 30), np.linspace(used_px.max(), 2047, 30)]
     z = np.abs(sol.wavelength(outside) - ins.wavelength(outside)) / sol.wavelength_err(outside)
     assert z.max() < 3.0  # issue 5: extrapolation inside 3x the reported band
+
+
+# He I 1s2s 3S1 - 1s2p 3P0,1,2 air wavelengths (nm), Sansonetti & Martin, Handbook of Basic
+# Atomic Spectroscopic Data (2005), as carried in line_lists/He_I.lines.ecsv (memory).
+HE_1083 = (1082.9091, 1083.025, 1083.034)
+
+
+def test_an_unresolved_multiplet_is_fitted_at_its_middle_with_its_extent_as_error():
+    # a lamp where only the weakest component of the 1083 nm triplet shines: the calibrator
+    # cannot tell which members are there, so it must fit the group's middle, not a member
+    he = levels.lamp_lines("He")
+    wl = np.asarray(he["wavelength"], float)
+    keep = np.min(np.abs(wl[:, None] - np.array(HE_1083[1:])[None, :]), axis=1) > 1e-3
+    lamp = {"wavelength": wl[keep], "intensity": np.asarray(he["intensity"], float)[keep],
+            "usable": np.asarray(he["usable"], bool)[keep]}
+    ins = _instrument(lo=390.0, hi=1090.0, n=2048, fwhm=2.0)
+    counts, truth = _exposure(ins, lamp, missing=(0.0, 0.0))
+    sol = calibrate(counts, "He")
+    m = sol.matches
+    ref = np.asarray(m["wavelength_ref"], float)
+    group = np.abs(ref - 1083.0) < 0.2
+    assert group.sum() == 1 and bool(np.asarray(m["used"], bool)[group][0])
+    half = (max(HE_1083) - min(HE_1083)) / 2
+    assert ref[group][0] == pytest.approx((max(HE_1083) + min(HE_1083)) / 2, abs=1e-4)
+    assert float(np.asarray(m["wavelength_ref_err"], float)[group][0]) >= half
+    # the outermost usable line is that component: the map must hold up to it
+    assert truth.pixel[truth.usable].max() > 2000
+    assert _max_error_over_fwhm(sol, ins, truth) < 0.1  # issue 5 success criterion
 
 
 def test_pixel_is_the_inverse_of_wavelength():
