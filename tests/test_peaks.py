@@ -6,7 +6,13 @@ import numpy as np
 import pytest
 
 from ritzline.errors import RitzlineError
-from ritzline.peaks import attach_wavelengths, centroid_crlb, find_lines, line_crlb
+from ritzline.peaks import (
+    BAND_INCLUDED,
+    attach_wavelengths,
+    centroid_crlb,
+    find_lines,
+    line_crlb,
+)
 from ritzline.synthetic import FWHM_PER_SIGMA, busy_spectrum, integrated_gaussians, observe
 
 COLUMNS = ["pixel", "pixel_err", "fwhm_pixel", "fwhm_pixel_err", "amplitude", "flux",
@@ -279,6 +285,7 @@ def test_attach_wavelengths_combines_centroid_error_and_band_in_quadrature():
     np.testing.assert_allclose(t["fwhm"], 0.05 * np.asarray(t["fwhm_pixel"]))
     assert str(t["wavelength"].unit) == "nm"
     assert t.meta["medium"] == "air"
+    assert t.meta[BAND_INCLUDED] is True  # later stages must not add the band again
 
 
 def test_wavelength_axis_adds_wavelength_columns():

@@ -23,6 +23,7 @@ from scipy.special import log_ndtr, ndtr
 
 from .errors import RitzlineError
 from .levels import SPECIES as _SHIPPED
+from .peaks import BAND_INCLUDED
 
 __all__ = [
     "BoltzmannPlot",
@@ -805,8 +806,7 @@ def _line_arrays(table, solution, calibration_err, fwhm_nm, wavelength_range, op
             )
     cal = np.zeros(n)
     # peaks.attach_wavelengths already folds the solution's band into wavelength_err
-    err_doc = table["wavelength_err"].description if "wavelength_err" in table.colnames else ""
-    band_included = "solution band" in str(err_doc or "")
+    band_included = bool((table.meta or {}).get(BAND_INCLUDED))
     if solution is not None and not band_included and "pixel" in table.colnames:
         cal = np.asarray(solution.wavelength_err(_column(table, "pixel")), float)
     elif callable(calibration_err):

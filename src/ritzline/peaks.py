@@ -26,6 +26,10 @@ if TYPE_CHECKING:  # pragma: no cover
 
 __all__ = ["attach_wavelengths", "centroid_crlb", "find_lines", "line_background", "line_crlb"]
 
+#: Table meta key set by :func:`attach_wavelengths`: ``wavelength_err`` already holds the
+#: solution's band, so later stages must not add it again.
+BAND_INCLUDED = "wavelength_err_includes_band"
+
 _SQRT2PI = np.sqrt(2.0 * np.pi)
 _DEFAULT_FWHM = 2.5  # px, used only when no line is bright enough to measure the LSF
 _GROUP_SEPARATION = 2.0  # lines closer than this many FWHM are fitted jointly
@@ -909,6 +913,7 @@ def attach_wavelengths(lines: Table, solution) -> Table:
     out["wavelength_err"] = err
     out["wavelength_err"].unit = "nm"
     out["wavelength_err"].description = "centroid error through the dispersion (+) solution band"
+    out.meta[BAND_INCLUDED] = True
     out["fwhm"] = disp * np.asarray(out["fwhm_pixel"], float)
     out["fwhm"].unit = "nm"
     out["fwhm"].description = "FWHM in wavelength"
