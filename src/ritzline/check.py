@@ -183,7 +183,7 @@ class Reference:
 def reference_from_solution(
     solution, *, lamp: str | Sequence[str] | None = None, dark=None
 ) -> Reference:
-    """Build a :class:`Reference` from a ``calibrate.Solution`` (or a path to one).
+    """Build a :class:`Reference` from a ``calibration.Solution`` (or a path to one).
 
     Parameters
     ----------
@@ -1233,7 +1233,7 @@ def check_exposures(
     paths : iterable of path
         Exposure files and/or folders (folders are expanded with ``pattern``).
     solution : Solution or path
-        The reference wavelength solution (``calibrate.Solution`` or its JSON file).
+        The reference wavelength solution (``calibration.Solution`` or its JSON file).
     lamp : str or sequence of str, optional
         Take the expected lines from this lamp's line list instead of the reference's
         matched lines.

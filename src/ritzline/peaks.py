@@ -893,7 +893,7 @@ def attach_wavelengths(lines: Table, solution) -> Table:
         A table from :func:`find_lines` (needs ``pixel``, ``pixel_err``, ``fwhm_pixel``).
     solution : object
         Anything with ``wavelength(p)``, ``wavelength_err(p)`` and ``dispersion(p)`` (nm per
-        pixel), e.g. a :class:`ritzline.calibrate.Solution`.
+        pixel), e.g. a :class:`ritzline.calibration.Solution`.
 
     Returns
     -------
