@@ -22,9 +22,10 @@ How a lamp exposure is solved
    fitted at the middle of its extent with half the extent as its reference uncertainty.
 4. *Grow.*  From each candidate, a robust low-degree Chebyshev fit predicts where every other
    reference line should fall; a detection joins when its nearest listed line lies inside
-   the prediction window, no other listed line does, and the window is small against the
-   local line spacing.  Windows use leave-one-out bands (a line that alone pins the fit
-   somewhere does not vouch for itself) and, beyond the outermost lines, a curvature prior.
+   the prediction window, no other listed line does, the window is small against the
+   local line spacing, and the centroid is known to better than an eighth of the line
+   width.  Windows use leave-one-out bands (a line that alone pins the fit somewhere does
+   not vouch for itself) and, beyond the outermost lines, a curvature prior.
    The fit is repeated until nothing changes: the solution widens to the whole detector.
 5. *Fit and trust.*  The final weighted Chebyshev fit (degree by BIC, capped by the number and
    spread of lines) rejects outliers on leave-one-out residuals, with a reason per line.
@@ -965,15 +966,20 @@ def _associate(det: _Lines, ref: _Refs, pred, tol, inside=None):
     left, right = w[j - 1], w[j]
     near = np.where(np.abs(pred - left) < np.abs(pred - right), j - 1, j)
     dist = np.abs(pred - w[near])
-    # ambiguous when the other neighbour is inside the window too: leave such lines out
-    other = np.where(near == j - 1, j, j - 1)
+    # ambiguous when another listed line, on either side of the nearest one, is inside the
+    # window too: leave such lines out (when the prediction falls almost on a listed line,
+    # its closest rival may be on the same side as the prediction)
+    below = w[np.clip(near - 1, 0, w.size - 1)]
+    above = w[np.clip(near + 1, 0, w.size - 1)]
+    rival = np.where(near == 0, np.inf, np.abs(pred - below))
+    rival = np.minimum(rival, np.where(near == w.size - 1, np.inf, np.abs(pred - above)))
     # and when the window is not small against the local spacing: an unlisted line would
     # fall into it too often
-    gap = (w[np.clip(near + 1, 0, w.size - 1)] - w[np.clip(near - 1, 0, w.size - 1)]) / 2
+    gap = (above - below) / 2
     frac = _WINDOW_FRACTION if inside is None else np.where(
         inside, _WINDOW_FRACTION_INSIDE, _WINDOW_FRACTION
     )
-    ok = (dist < tol) & (np.abs(pred - w[other]) >= tol) & (tol < frac * gap)
+    ok = (dist < tol) & (rival >= tol) & (tol < frac * gap)
     # a line whose centroid is known to worse than an eighth of its width cannot be
     # identified on its own: its window would admit a noise bump or a neighbour half a
     # width away from the listed line
