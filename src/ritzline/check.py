@@ -464,6 +464,14 @@ def judge(row: dict, limits: CheckLimits, centre: float) -> tuple[str, list[str]
     fail: list[str] = []
     warn: list[str] = []
     wf = limits.warn_fraction
+
+    def grade(value: float, limit: float, fail_text: str, warn_text: str) -> None:
+        """Fail above ``limit``, warn above the warn fraction of it."""
+        if value > limit:
+            fail.append(fail_text)
+        elif value > wf * limit:
+            warn.append(warn_text)
+
     n_lines, n_expected = row["n_lines"], row["n_expected"]
     if n_lines < limits.min_lines:
         fail.append(
@@ -472,27 +480,24 @@ def judge(row: dict, limits: CheckLimits, centre: float) -> tuple[str, list[str]
     shift = row["shift_px"]
     if np.isfinite(shift):
         text = f"shift {shift:+.3f} ± {row['shift_err_px']:.3f} px"
-        if abs(shift) > limits.max_shift_px:
-            fail.append(f"{text} exceeds the limit of {limits.max_shift_px:g} px")
-        elif abs(shift) > wf * limits.max_shift_px:
-            warn.append(f"{text} is above {wf:.0%} of the limit ({limits.max_shift_px:g} px)")
+        grade(abs(shift), limits.max_shift_px,
+              f"{text} exceeds the limit of {limits.max_shift_px:g} px",
+              f"{text} is above {wf:.0%} of the limit ({limits.max_shift_px:g} px)")
     elif n_lines >= limits.min_lines:
         fail.append("drift could not be measured (no clean matched lines)")
     stretch = row["stretch"]
     if np.isfinite(stretch):
         ends = abs(stretch) * centre
         text = f"stretch {stretch:+.2e} moves the detector ends by {ends:.3f} px"
-        if ends > limits.max_shift_px:
-            fail.append(f"{text}, over the limit of {limits.max_shift_px:g} px")
-        elif ends > wf * limits.max_shift_px:
-            warn.append(f"{text}, above {wf:.0%} of the limit ({limits.max_shift_px:g} px)")
+        grade(ends, limits.max_shift_px,
+              f"{text}, over the limit of {limits.max_shift_px:g} px",
+              f"{text}, above {wf:.0%} of the limit ({limits.max_shift_px:g} px)")
     change = row["fwhm_change_pct"]
     if np.isfinite(change):
         text = f"FWHM {row['fwhm_px']:.3f} px is {change:+.1f}% vs the reference"
-        if abs(change) > limits.max_fwhm_change_pct:
-            fail.append(f"{text} (limit ±{limits.max_fwhm_change_pct:g}%)")
-        elif abs(change) > wf * limits.max_fwhm_change_pct:
-            warn.append(f"{text}, above {wf:.0%} of the limit (±{limits.max_fwhm_change_pct:g}%)")
+        grade(abs(change), limits.max_fwhm_change_pct,
+              f"{text} (limit ±{limits.max_fwhm_change_pct:g}%)",
+              f"{text}, above {wf:.0%} of the limit (±{limits.max_fwhm_change_pct:g}%)")
     n_missing = n_expected - n_lines
     if n_expected and n_missing / n_expected > limits.max_missing_fraction:
         listed = row["missing"].split(",")
