@@ -31,7 +31,11 @@ How a lamp exposure is solved
    spread of lines) rejects outliers on leave-one-out residuals, with a reason per line.
    When its windows reject lines, a lower degree that fits no significantly worse (F-test)
    and accepts them all is preferred to dropping them: a lone end line is rejected by a
-   degree high enough to bend to it, not by the curve the other lines define.
+   degree high enough to bend to it, not by the curve the other lines define.  Conversely,
+   an outermost line that pins the fit on its own (leverage above a half) stays only when
+   the fit of the other lines, with its band and the curvature prior beyond them, puts its
+   listed wavelength inside its window: a fit bent to a line predicts that line wherever
+   it sits, so only the others can vouch for it.
    Its covariance is the chi-square-scaled formal one plus the jackknife one; the band adds
    the spread to the next degree and, beyond the lines, the curvature prior.  The confidence
    is one minus the chance that a list of lines at the same local density fits the
@@ -1144,7 +1148,38 @@ def _refine(det: _Lines, ref: _Refs, fit: _Fit, degree, *, force=False) -> _Fit 
         if new is None:
             break
         fit = new
-    return _prune(det, ref, fit, degree)
+    fit = _prune(det, ref, fit, degree)
+    return None if fit is None else _vouched_ends(det, ref, fit, degree)
+
+
+def _vouched_ends(det: _Lines, ref: _Refs, fit: _Fit, degree) -> _Fit:
+    """Drop an outermost fitted line that pins the fit on its own (leverage above a half)
+    unless the fit of the other lines puts its listed wavelength inside that fit's window
+    there (band and curvature prior beyond the lines).  Only the distance is tested: the
+    others' window may well be too wide to identify the line, which is no evidence that
+    it is wrong."""
+    for _ in range(2):
+        u = np.flatnonzero(fit.used)
+        if u.size < 5:
+            return fit
+        x = _xnorm(det.pixel[fit.di], det.n_pixels)
+        scale = fit.sig**2 * max(1.0, fit.chi2r)
+        lev = _band(x, fit.coef, fit.cov) ** 2 / scale
+        ends = [k for k in (u[np.argmin(x[u])], u[np.argmax(x[u])]) if lev[k] > 0.5]
+        dropped = False
+        for k in ends:
+            rest = np.arange(fit.di.size) != k
+            other = _final_fit(det, ref, fit.di[rest], fit.ri[rest], degree)
+            if other is None:
+                continue
+            pred, tol, _ = _windows(det, ref, other)
+            d = fit.di[k]
+            if abs(pred[d] - ref.wavelength[fit.ri[k]]) >= tol[d]:
+                fit, dropped = other, True
+                break
+        if not dropped:
+            return fit
+    return fit
 
 
 def _prune(det: _Lines, ref: _Refs, fit: _Fit, degree) -> _Fit | None:
@@ -1199,6 +1234,12 @@ def _lower_degree_keeping_all(det: _Lines, ref: _Refs, fit: _Fit) -> _Fit | None
 
 def _associate_with(det: _Lines, ref: _Refs, fit: _Fit):
     """The associations a fit's own prediction windows accept."""
+    return _associate(det, ref, *_windows(det, ref, fit))
+
+
+def _windows(det: _Lines, ref: _Refs, fit: _Fit):
+    """A fit's predicted wavelength and match window at every detection, and which
+    detections lie between its fitted lines (see :func:`_associate`)."""
     n = det.n_pixels
     xall = _xnorm(det.pixel, n)
     pred = _cheb.chebval(xall, fit.coef)
@@ -1217,7 +1258,7 @@ def _associate_with(det: _Lines, ref: _Refs, fit: _Fit):
         lo = xf[1]
     if xf.size > 2 and xf[-1] - xf[-2] > _ISOLATED:
         hi = xf[-2]
-    return _associate(det, ref, pred, tol, (xall >= lo) & (xall <= hi))
+    return pred, tol, (xall >= lo) & (xall <= hi)
 
 
 def _log10_chance(det: _Lines, ref: _Refs, fit: _Fit, n_hyp: int, n_free: int) -> float:
