@@ -107,6 +107,31 @@ def test_an_unresolved_multiplet_is_fitted_at_its_middle_with_its_extent_as_erro
     assert _max_error_over_fwhm(sol, ins, truth) < 0.1  # issue 5 success criterion
 
 
+# He I 1s2p 1P1 - 1s3d 1D2, 667.8151 nm in air, Sansonetti & Martin,
+# Handbook of Basic Atomic Spectroscopic Data (2005) (memory).
+HE_667 = 667.8151
+
+
+@pytest.mark.parametrize("seed", [2, 3])
+def test_an_unlisted_line_beyond_the_others_is_not_taken_for_the_listed_one_near_it(seed):
+    # an impurity line 5.8 nm short of He I 667.8 nm, alone near the red end of a detector
+    # that stops before 667.8 nm: a fit bent to it would predict it there, only the other
+    # lines can say it is not He I 667.8 nm
+    he = levels.lamp_lines("He")
+    lamp = {"wavelength": np.r_[np.asarray(he["wavelength"], float), HE_667 - 5.8],
+            "intensity": np.r_[np.asarray(he["intensity"], float), np.nanmax(he["intensity"])],
+            "usable": np.r_[np.asarray(he["usable"], bool), False]}
+    ins = _instrument(lo=340.0, hi=665.0, n=3500, fwhm=2.0)
+    counts, truth = _exposure(ins, lamp, seed=seed, missing=(0.0, 0.0), extra=(0.0, 0.0))
+    sol = calibrate(counts, "He")
+    m = sol.matches[np.asarray(sol.matches["used"], bool)]
+    assert not np.any(np.abs(np.asarray(m["wavelength_ref"], float) - HE_667) < 0.01)
+    true_wl = ins.wavelength(np.asarray(m["pixel"], float))
+    fwhm_nm = ins.fwhm_px * np.abs(ins.dispersion(np.asarray(m["pixel"], float)))
+    assert np.all(np.abs(true_wl - np.asarray(m["wavelength_ref"], float)) < 0.5 * fwhm_nm)
+    assert _max_error_over_fwhm(sol, ins, truth) < 0.1  # issue 5 success criterion
+
+
 def test_pixel_is_the_inverse_of_wavelength():
     ins = _instrument()
     counts, _ = _exposure(ins, "Ne")

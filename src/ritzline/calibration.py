@@ -34,8 +34,9 @@ How a lamp exposure is solved
    degree high enough to bend to it, not by the curve the other lines define.  Conversely,
    an outermost line that pins the fit on its own (leverage above a half) stays only when
    the fit of the other lines, with its band and the curvature prior beyond them, puts its
-   listed wavelength inside its window: a fit bent to a line predicts that line wherever
-   it sits, so only the others can vouch for it.
+   listed wavelength within ``_VOUCH_NSIGMA`` sigma (stricter than joining: it sets the
+   extrapolation alone): a fit bent to a line predicts that line wherever it sits, so only
+   the others can vouch for it.
    Its covariance is the chi-square-scaled formal one plus the jackknife one; the band adds
    the spread to the next degree and, beyond the lines, the curvature prior.  The confidence
    is one minus the chance that a list of lines at the same local density fits the
@@ -135,6 +136,9 @@ NONLINEARITY_PRIOR = 0.01
 MAX_CHI2 = 25.0  # a solution whose residuals exceed 5x the centroid errors is not returned
 MIN_LINES_BLIND = 6  # fewer fitted lines than this never make a solution without a guess
 _MATCH_NSIGMA = 4.0  # a detection belongs to a reference line within this many sigma
+# an outermost line that pins the fit alone must lie within this many sigma of the fit of
+# the other lines (it sets the extrapolation on its own: a stricter test than joining)
+_VOUCH_NSIGMA = 3.0
 _ISOLATED = 0.5  # an end line further than this (normalised pixel) from the next is alone
 _WINDOW_FRACTION_INSIDE = 0.3  # the same between fitted lines
 _WINDOW_FRACTION = 0.2  # a match window must be smaller than this x the line spacing
@@ -1154,10 +1158,10 @@ def _refine(det: _Lines, ref: _Refs, fit: _Fit, degree, *, force=False) -> _Fit 
 
 def _vouched_ends(det: _Lines, ref: _Refs, fit: _Fit, degree) -> _Fit:
     """Drop an outermost fitted line that pins the fit on its own (leverage above a half)
-    unless the fit of the other lines puts its listed wavelength inside that fit's window
-    there (band and curvature prior beyond the lines).  Only the distance is tested: the
-    others' window may well be too wide to identify the line, which is no evidence that
-    it is wrong."""
+    unless the fit of the other lines puts its listed wavelength within ``_VOUCH_NSIGMA``
+    sigma of its prediction (band and curvature prior beyond the lines).  Only the
+    distance is tested: the others' window may well be too wide to identify the line,
+    which is no evidence that it is wrong."""
     for _ in range(2):
         u = np.flatnonzero(fit.used)
         if u.size < 5:
@@ -1174,7 +1178,7 @@ def _vouched_ends(det: _Lines, ref: _Refs, fit: _Fit, degree) -> _Fit:
                 continue
             pred, tol, _ = _windows(det, ref, other)
             d = fit.di[k]
-            if abs(pred[d] - ref.wavelength[fit.ri[k]]) >= tol[d]:
+            if abs(pred[d] - ref.wavelength[fit.ri[k]]) >= _VOUCH_NSIGMA / _MATCH_NSIGMA * tol[d]:
                 fit, dropped = other, True
                 break
         if not dropped:
