@@ -20,8 +20,11 @@ How a lamp exposure is solved
    multiplets spanning less than ``_MERGE_FRACTION`` of the FWHM and 1.5 FWHM clear of other
    listed lines: whichever members shine, such a group is one line at that resolution,
    fitted at the middle of its extent with half the extent as its reference uncertainty.
-4. *Grow.*  From each candidate, a robust low-degree Chebyshev fit predicts where every other
-   reference line should fall; a detection joins when its nearest listed line lies inside
+4. *Grow.*  A candidate starts from its most voted one-to-one pairs or, when those do not
+   grow, from the pairs closest to the cell's linear map (look-alike quadruplets can
+   outvote the true pairs).  From it, a robust low-degree Chebyshev fit predicts where
+   every other reference line should fall; a detection joins when its nearest listed line
+   lies inside
    the prediction window, no other listed line does, the window is small against the
    local line spacing, and the centroid is known to better than an eighth of the line
    width.  Windows use leave-one-out bands (a line that alone pins the fit somewhere does
@@ -965,6 +968,26 @@ def _initial_pairs(pairs: np.ndarray):
     return key[:, 0], key[:, 1]
 
 
+def _pairs_along_cell(det: _Lines, ref: _Refs, pairs: np.ndarray, dispersion: float):
+    """One-to-one pairs closest to a linear map of the given dispersion (nm/px) through
+    the median offset of all the pairs; those further than twice the median distance are
+    left out."""
+    offset = ref.wavelength[pairs[:, 1]] - dispersion * det.pixel[pairs[:, 0]]
+    dist = np.abs(offset - np.median(offset))
+    order = np.argsort(dist, kind="stable")
+    key, dist = pairs[order], dist[order]
+    _, first_d = np.unique(key[:, 0], return_index=True)
+    first_d = np.sort(first_d)
+    key, dist = key[first_d], dist[first_d]
+    _, first_r = np.unique(key[:, 1], return_index=True)
+    first_r = np.sort(first_r)
+    key, dist = key[first_r], dist[first_r]
+    close = dist <= 2.0 * np.median(dist)
+    key = key[close]
+    key = key[np.argsort(key[:, 0])]
+    return key[:, 0], key[:, 1]
+
+
 def _associate(det: _Lines, ref: _Refs, pred, tol, inside=None):
     """Nearest reference line to each predicted wavelength inside ``tol``; one-to-one.
     ``inside`` marks detections between fitted lines (interpolation), which may use a
@@ -1608,7 +1631,7 @@ def _calibrate_blind(det: _Lines, ref: _Refs, wrange, degree, blended_refs):
     fw_px = float(np.median(fw)) if fw.size else float("nan")
     lists: dict[int, _Refs] = {}
     best, best_ref = None, ref
-    for _count, _direction, pairs, d_cell in seeds:
+    for _count, direction, pairs, d_cell in seeds:
         # the cell's dispersion gives the resolution in nm: grow against the list with the
         # lines blended at that resolution left out
         ref_s, pairs_s = ref, pairs
@@ -1625,6 +1648,11 @@ def _calibrate_blind(det: _Lines, ref: _Refs, wrange, degree, blended_refs):
                 continue
         di, ri = _initial_pairs(pairs_s)
         grown = _grow(det, ref_s, di, ri)
+        if grown is None or grown[0].size < 4:
+            # the most voted pairs can be wrong ones from look-alike quadruplets: start
+            # instead from the pairs that agree with the cell's linear map
+            di, ri = _pairs_along_cell(det, ref_s, pairs_s, direction * d_cell)
+            grown = _grow(det, ref_s, di, ri) if di.size >= 3 else None
         if grown is None or grown[0].size < 4:
             continue
         fit = _final_fit(det, ref_s, *grown, degree)
