@@ -132,6 +132,20 @@ def test_an_unlisted_line_beyond_the_others_is_not_taken_for_the_listed_one_near
     assert _max_error_over_fwhm(sol, ins, truth) < 0.1  # issue 5 success criterion
 
 
+def test_a_lamp_frame_whose_most_voted_pairs_are_look_alikes_still_calibrates():
+    # a red Kr frame with a quarter of the lines missing and a quarter extra: the most
+    # voted pairs of the right vote cell do not grow into a solution, the pairs along the
+    # cell's linear map do
+    ins = _instrument(lo=700.0, hi=980.0, n=2669, fwhm=5.4)
+    counts, truth = _exposure(ins, "Kr", seed=6, missing=(0.25, 0.25), extra=(0.25, 0.25))
+    sol = calibrate(counts, "Kr")
+    m = sol.matches[np.asarray(sol.matches["used"], bool)]
+    true_wl = ins.wavelength(np.asarray(m["pixel"], float))
+    fwhm_nm = ins.fwhm_px * np.abs(ins.dispersion(np.asarray(m["pixel"], float)))
+    assert np.all(np.abs(true_wl - np.asarray(m["wavelength_ref"], float)) < 0.5 * fwhm_nm)
+    assert _max_error_over_fwhm(sol, ins, truth) < 0.1  # issue 5 success criterion
+
+
 def test_pixel_is_the_inverse_of_wavelength():
     ins = _instrument()
     counts, _ = _exposure(ins, "Ne")
