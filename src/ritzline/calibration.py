@@ -21,8 +21,9 @@ How a lamp exposure is solved
    listed lines: whichever members shine, such a group is one line at that resolution,
    fitted at the middle of its extent with half the extent as its reference uncertainty.
 4. *Grow.*  A candidate starts from its most voted one-to-one pairs or, when those do not
-   grow, from the pairs closest to the cell's linear map (look-alike quadruplets can
-   outvote the true pairs).  From it, a robust low-degree Chebyshev fit predicts where
+   grow to ``MIN_LINES_BLIND`` lines, also from the pairs closest to the cell's linear map
+   (look-alike quadruplets can outvote the true pairs; both count as tested candidates).
+   From it, a robust low-degree Chebyshev fit predicts where
    every other reference line should fall; a detection joins when its nearest listed line
    lies inside
    the prediction window, no other listed line does, the window is small against the
@@ -1646,26 +1647,21 @@ def _calibrate_blind(det: _Lines, ref: _Refs, wrange, degree, blended_refs):
             pairs_s = np.stack([pairs[keep, 0], pos[keep]], 1)
             if ref_s.wavelength.size < 4 or pairs_s.shape[0] < 3:
                 continue
-        di, ri = _initial_pairs(pairs_s)
-        grown = _grow(det, ref_s, di, ri)
-        if grown is None or grown[0].size < 4:
+        fit = _grown_fit(det, ref_s, *_initial_pairs(pairs_s), degree)
+        if fit is None or fit.used.sum() < MIN_LINES_BLIND:
             # the most voted pairs can be wrong ones from look-alike quadruplets: start
-            # instead from the pairs that agree with the cell's linear map
-            di, ri = _pairs_along_cell(det, ref_s, pairs_s, direction * d_cell)
-            grown = _grow(det, ref_s, di, ri) if di.size >= 3 else None
-        if grown is None or grown[0].size < 4:
-            continue
-        fit = _final_fit(det, ref_s, *grown, degree)
+            # again from the pairs that agree with the cell's linear map
+            alt = _grown_fit(det, ref_s, *_pairs_along_cell(det, ref_s, pairs_s,
+                                                             direction * d_cell), degree)
+            if alt is not None:
+                distinct.add(_signature(ref_s, alt))
+                if fit is None or alt.used.sum() > fit.used.sum():
+                    fit = alt
         if fit is None:
-            continue
-        fit = _refine(det, ref_s, fit, degree)
-        if fit is None or fit.used.sum() < 4:
             continue
         fit.n_votes = n_votes
         fit.log10_p = _log10_chance(det, ref_s, fit, 1, len(fit.coef))
-        distinct.add(tuple(zip(fit.di[fit.used].tolist(),
-                               np.round(ref_s.wavelength[fit.ri[fit.used]], 4).tolist(),
-                               strict=True)))
+        distinct.add(_signature(ref_s, fit))
         if best is None or fit.log10_p < best.log10_p:
             best, best_ref = fit, ref_s
     if best is None:
@@ -1683,6 +1679,26 @@ def _calibrate_blind(det: _Lines, ref: _Refs, wrange, degree, blended_refs):
                 fit2.log10_p = _log10_chance(det, ref2, fit2, fit2.n_hyp, len(fit2.coef))
                 return fit2, ref2
     return best, ref
+
+
+def _signature(ref: _Refs, fit: _Fit) -> tuple:
+    """What makes two candidate solutions the same: their fitted correspondences."""
+    return tuple(zip(fit.di[fit.used].tolist(),
+                     np.round(ref.wavelength[fit.ri[fit.used]], 4).tolist(), strict=True))
+
+
+def _grown_fit(det: _Lines, ref: _Refs, di, ri, degree) -> _Fit | None:
+    """Grow a start of correspondences, fit and refine it; None when under four lines."""
+    if di.size < 3:
+        return None
+    grown = _grow(det, ref, di, ri)
+    if grown is None or grown[0].size < 4:
+        return None
+    fit = _final_fit(det, ref, *grown, degree)
+    if fit is None:
+        return None
+    fit = _refine(det, ref, fit, degree)
+    return None if fit is None or fit.used.sum() < 4 else fit
 
 
 def _fwhm_nm(det: _Lines, fit: _Fit) -> float:
