@@ -23,13 +23,12 @@ How a lamp exposure is solved
 4. *Grow.*  A candidate starts from its most voted one-to-one pairs or, when those do not
    grow to ``MIN_LINES_BLIND`` lines, also from the pairs closest to the cell's linear map
    (look-alike quadruplets can outvote the true pairs; both count as tested candidates).
-   From it, a robust low-degree Chebyshev fit predicts where
-   every other reference line should fall; a detection joins when its nearest listed line
-   lies inside
-   the prediction window, no other listed line does, the window is small against the
-   local line spacing, and the centroid is known to better than an eighth of the line
-   width.  Windows use leave-one-out bands (a line that alone pins the fit somewhere does
-   not vouch for itself) and, beyond the outermost lines, a curvature prior.
+   From it, a robust low-degree Chebyshev fit predicts where every other reference line
+   should fall; a detection joins when its nearest listed line lies inside the prediction
+   window, no other listed line does, the window is small against the local line spacing,
+   and the centroid is known to better than an eighth of the line width.  Windows use
+   leave-one-out bands (a line that alone pins the fit somewhere does not vouch for
+   itself) and, beyond the outermost lines, a curvature prior.
    The fit is repeated until nothing changes: the solution widens to the whole detector.
 5. *Fit and trust.*  The final weighted Chebyshev fit (degree by BIC, capped by the number and
    spread of lines) rejects outliers on leave-one-out residuals, with a reason per line.
