@@ -553,11 +553,10 @@ def match(file, species, solution_path, medium, max_energy, response, column, ou
     Prints each line's assignment with its probability, the species judged present, and the
     excited upper levels in order of energy.  Exit 0 on success, 2 on bad input.
     """
-    import numpy as np
 
     from ._io import write_table
     from .identify import identify_lines, read_response
-    from .spectrum import read_spectrum, spectrum_arrays
+    from .spectrum import read_spectrum
 
     spectrum = read_spectrum(file, column=column)
     solution = None
@@ -580,10 +579,8 @@ def match(file, species, solution_path, medium, max_energy, response, column, ou
         from . import plots
 
         if plot:
-            arrays = spectrum_arrays(spectrum)
-            wl = arrays.axis if arrays.unit == "nm" else solution.wavelength(arrays.axis)
-            counts = np.where(arrays.mask, np.nan, arrays.counts)
-            written = plots.plot_identify_spectrum(result, plot, wavelength=wl, counts=counts)
+            written = plots.plot_identify_spectrum(result, plot, spectrum=spectrum,
+                                                   solution=solution)
             click.echo(f"wrote {written}")
         if diagram:
             click.echo(f"wrote {plots.plot_identify_levels(result, diagram)}")

@@ -83,14 +83,12 @@ def run_demo(
     write_table(result.lines, ident / "lines.ecsv")
     write_table(result.levels, ident / "levels.ecsv")
     write_table(result.species, ident / "species.ecsv")
-    wavelength = solution.wavelength(np.arange(len(glow.flux), dtype=float))
-    counts = np.where(glow.mask, np.nan, glow.flux.value)
     files["identification"] = [
         ident / "lines.ecsv",
         ident / "levels.ecsv",
         ident / "species.ecsv",
-        plots.plot_identify_spectrum(result, ident / "spectrum.png", wavelength=wavelength,
-                                     counts=counts),
+        plots.plot_identify_spectrum(result, ident / "spectrum.png", spectrum=glow,
+                                     solution=solution),
         plots.plot_identify_levels(result, ident / "level_diagram.png"),
     ]
     if result.boltzmann:

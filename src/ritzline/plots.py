@@ -259,15 +259,22 @@ def plot_identify_levels(identification, path, *, max_species: int = 3) -> Path:
     return save_figure(fig, path)
 
 
-def plot_identify_spectrum(identification, path, *, wavelength=None, counts=None,
-                           max_labels: int = 60) -> Path:
+def plot_identify_spectrum(identification, path, *, spectrum=None, solution=None,
+                           wavelength=None, counts=None, max_labels: int = 60) -> Path:
     """Spectrum with every identified line labelled by species and listed wavelength.
 
-    ``wavelength``/``counts`` are the spectrum's arrays; without them the measured lines are
-    drawn as sticks at their fluxes.  Unidentified lines are marked with a grey "?".
+    Pass the ``spectrum`` (with the ``solution`` when its axis is in pixels), or its
+    ``wavelength``/``counts`` arrays; with neither, the measured lines are drawn as sticks
+    at their fluxes.  Unidentified lines are marked with a grey "?".
     """
     import numpy as np
 
+    if spectrum is not None:
+        from .spectrum import spectrum_arrays
+
+        arrays = spectrum_arrays(spectrum)
+        wavelength = arrays.axis if arrays.unit == "nm" else solution.wavelength(arrays.axis)
+        counts = np.where(arrays.mask, np.nan, arrays.counts)
     t = identification.lines
     fig, ax = new_figure(figsize=(12, 4.5))
     wl = np.asarray(t["wavelength"], float)
