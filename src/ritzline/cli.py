@@ -553,7 +553,6 @@ def match(file, species, solution_path, medium, max_energy, response, column, ou
     Prints each line's assignment with its probability, the species judged present, and the
     excited upper levels in order of energy.  Exit 0 on success, 2 on bad input.
     """
-
     from ._io import write_table
     from .identify import identify_lines, read_response
     from .spectrum import read_spectrum
