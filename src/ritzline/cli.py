@@ -41,6 +41,19 @@ def handle_errors(func):
     return wrapper
 
 
+def parse_wavelength_range(_ctx, _param, value: str | None):
+    """Click callback: parse "400:700" into (400.0, 700.0) nm (None when not given)."""
+    if value is None:
+        return None
+    try:
+        lo, hi = (float(x) for x in value.split(":"))
+    except ValueError:
+        raise click.BadParameter(f"expected MIN:MAX in nm, e.g. 400:700, not {value!r}") from None
+    if not lo < hi:
+        raise click.BadParameter(f"MIN must be below MAX, got {value!r}")
+    return lo, hi
+
+
 def echo_json(data) -> None:
     click.echo(json.dumps(data, indent=2, default=str))
 
@@ -133,19 +146,6 @@ def info(files: tuple[str, ...], column: str | None, as_json: bool) -> None:
 # ---- transitions -----------------------------------------------------------------------
 
 
-def _transitions_range(_ctx, _param, value: str | None):
-    """Parse "400:700" into (400.0, 700.0) nm."""
-    if value is None:
-        return None
-    try:
-        lo, hi = (float(x) for x in value.split(":"))
-    except ValueError:
-        raise click.BadParameter(f"expected MIN:MAX in nm, e.g. 400:700, not {value!r}") from None
-    if not lo < hi:
-        raise click.BadParameter(f"MIN must be below MAX, got {value!r}")
-    return lo, hi
-
-
 def _transitions_flags(row, blend_label: str) -> str:
     flags = []
     if row["observed"]:
@@ -214,7 +214,7 @@ def _transitions_print(table, medium: str, blend_of: dict[int, str]) -> None:
 @click.option(
     "--range",
     "wavelength_range",
-    callback=_transitions_range,
+    callback=parse_wavelength_range,
     metavar="MIN:MAX",
     help="Wavelength range in nm (in the chosen medium), e.g. 400:700.",
 )
@@ -396,21 +396,12 @@ def peaks_cmd(file, solution_path, dark_path, min_snr, fwhm_guess, saturation, g
 # ---- calibrate -------------------------------------------------------------------------
 
 
-def _parse_range(text: str | None):
-    if text is None:
-        return None
-    try:
-        lo, hi = (float(v) for v in text.split(":"))
-    except ValueError:
-        raise click.BadParameter(f"expected LOW:HIGH in nm, got {text!r}") from None
-    return lo, hi
-
-
 @main.command("calibrate")
 @click.argument("lamp_file", type=click.Path(exists=True, dir_okay=False))
 @click.option("--lamp", "lamps", multiple=True, required=True,
               help="Lamp species (repeat for mixed lamps: --lamp Hg --lamp Ar).")
-@click.option("--range", "wrange", default=None, metavar="LOW:HIGH",
+@click.option("--range", "wrange", default=None, metavar="MIN:MAX",
+              callback=parse_wavelength_range,
               help="Coarse wavelength range of the detector in nm (default 200:1100).")
 @click.option("--degree", type=click.IntRange(1, 7), default=None,
               help="Chebyshev degree (default: chosen from the data).")
@@ -440,7 +431,7 @@ def calibrate_cmd(lamp_file, lamps, wrange, degree, guess_path, medium, column, 
 
     spectrum = read_spectrum(lamp_file, column=column)
     guess = Solution.load(guess_path) if guess_path else None
-    solution = calibrate(spectrum, tuple(lamps), wavelength_range=_parse_range(wrange),
+    solution = calibrate(spectrum, tuple(lamps), wavelength_range=wrange,
                          degree=degree, guess=guess, medium=medium)
     solution = with_input(solution, lamp_file)
     solution.save(output)
