@@ -5,13 +5,14 @@ renamed over the destination, so a crash or Ctrl-C never leaves a half-written f
 """
 
 import contextlib
+import hashlib
 import os
 import tempfile
 from collections.abc import Iterator
 from pathlib import Path
 from typing import IO
 
-__all__ = ["atomic_write", "write_table"]
+__all__ = ["atomic_write", "file_sha256", "write_table"]
 
 
 def _umask() -> int:
@@ -53,3 +54,12 @@ def write_table(table, path: str | os.PathLike, format: str | None = None) -> No
     else:
         with atomic_write(path, "w", encoding="utf-8", newline="") as fh:
             table.write(fh, format=fmt)
+
+
+def file_sha256(path: str | os.PathLike) -> str:
+    """Hex SHA-256 of a file, read in 1 MiB chunks (solutions record their input's)."""
+    h = hashlib.sha256()
+    with open(path, "rb") as fh:
+        for chunk in iter(lambda: fh.read(1 << 20), b""):
+            h.update(chunk)
+    return h.hexdigest()

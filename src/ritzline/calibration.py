@@ -97,7 +97,6 @@ outermost used lines, a curvature prior of ``NONLINEARITY_PRIOR`` x half-span x 
 
 from __future__ import annotations
 
-import hashlib
 import json
 import math
 import os
@@ -110,7 +109,7 @@ from typing import Any
 import numpy as np
 from numpy.polynomial import chebyshev as _cheb
 
-from ._io import atomic_write, write_table
+from ._io import atomic_write, file_sha256, write_table
 from .errors import CalibrationError, SolutionFormatError
 
 __all__ = [
@@ -119,7 +118,6 @@ __all__ = [
     "Solution",
     "calibrate",
     "calibrated_spectrum",
-    "file_sha256",
     "with_input",
     "write_calibrated",
 ]
@@ -1810,15 +1808,6 @@ def write_calibrated(spectrum, solution: Solution, path: str | os.PathLike) -> P
     path = Path(path)
     write_table(calibrated_spectrum(spectrum, solution), path)
     return path
-
-
-def file_sha256(path: str | os.PathLike) -> str:
-    """Hex SHA-256 of a file (the solution records the checksum of its input)."""
-    h = hashlib.sha256()
-    with open(path, "rb") as fh:
-        for chunk in iter(lambda: fh.read(1 << 20), b""):
-            h.update(chunk)
-    return h.hexdigest()
 
 
 def with_input(solution: Solution, path: str | os.PathLike) -> Solution:
