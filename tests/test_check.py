@@ -5,6 +5,7 @@ Reference values for the drift model are synthetic truths (known shifts put into
 data); everything else checks our own bookkeeping against what was put in.
 """
 
+import contextlib
 import json
 import multiprocessing
 import os
@@ -264,14 +265,140 @@ def test_resume_refuses_a_journal_made_with_other_settings(tmp_path):
                   resume=True)
 
 
-def test_a_dying_worker_stops_the_run_with_an_error_and_keeps_the_journal(tmp_path):
+def test_a_dying_worker_stops_the_run_incomplete_and_keeps_the_journal(tmp_path):
     paths = write_numbers(tmp_path / "in", 40)
     for p in paths[5:]:
         p.write_text(json.dumps({"value": "die"}))
     out = tmp_path / "out"
-    with pytest.raises(RitzlineError, match="worker process died"):
-        run_batch(paths, NumberTask(delay=0.01), outdir=out, workers=2, chunksize=2)
-    assert len(read_journal(out / "journal.jsonl")[1]) >= 1
+    result = run_batch(paths, NumberTask(delay=0.01), outdir=out, workers=2, chunksize=2)
+    assert not result.complete and "worker process died" in result.stopped
+    assert "--resume" in result.stopped
+    done = len(read_journal(out / "journal.jsonl")[1])
+    assert 1 <= done < 40 and len(result.rows) == done
+
+
+# ---- one owner per output folder -----------------------------------------------------------
+
+
+def test_a_second_run_into_a_busy_output_folder_is_refused(tmp_path):
+    out = tmp_path / "out"
+    paths = write_numbers(tmp_path / "in", 3)
+    with check.OutputLock(out):
+        with pytest.raises(RitzlineError, match=r"in use by another check run \(pid \d+ on host"):
+            run_batch(paths, NumberTask(), outdir=out, workers=1)
+    # the owner's journal was never touched by the refused run
+    assert not (out / "journal.jsonl").exists()
+    assert run_batch(paths, NumberTask(), outdir=out, workers=1).complete
+    assert not (out / check.LOCK_NAME).exists()
+
+
+def test_the_lock_file_names_pid_host_and_start_time(tmp_path):
+    import socket
+
+    with check.OutputLock(tmp_path) as lock:
+        info = json.loads(lock.path.read_text())
+    assert info["pid"] == os.getpid() and info["host"] == socket.gethostname()
+    assert info["started"][:4].isdigit()
+
+
+def test_a_busy_folder_is_refused_across_processes(tmp_path):
+    holder = subprocess.Popen(
+        [sys.executable, "-c", "import sys, time; from ritzline.check import OutputLock; "
+         f"l = OutputLock({str(tmp_path)!r}).acquire(); print('held', flush=True); "
+         "time.sleep(60)"], stdout=subprocess.PIPE, text=True)  # fmt: skip
+    try:
+        assert holder.stdout.readline().strip() == "held"
+        with pytest.raises(RitzlineError, match=f"pid {holder.pid} "):
+            check.OutputLock(tmp_path).acquire()
+    finally:
+        holder.kill()
+        holder.wait()
+    # its process is gone: the lock is stale and taken over with a warning
+    with pytest.warns(check.OutputLockWarning, match=f"stale lock.*pid {holder.pid}"):
+        check.OutputLock(tmp_path).acquire().release()
+
+
+def test_a_stale_lock_from_a_dead_process_is_taken_over_with_a_warning(tmp_path):
+    import socket
+
+    dead = subprocess.Popen([sys.executable, "-c", "pass"])
+    dead.wait()  # a pid that no longer runs
+    (tmp_path / check.LOCK_NAME).write_text(json.dumps(
+        {"pid": dead.pid, "host": socket.gethostname(), "started": "2026-01-01T00:00:00"}))
+    paths = write_numbers(tmp_path / "in", 2)
+    with pytest.warns(check.OutputLockWarning, match="no longer running"):
+        result = run_batch(paths, NumberTask(), outdir=tmp_path, workers=1)
+    assert result.complete
+
+
+def test_a_lock_from_another_host_is_refused(tmp_path):
+    (tmp_path / check.LOCK_NAME).write_text(json.dumps(
+        {"pid": 1, "host": "some-other-host.invalid", "started": "2026-01-01T00:00:00"}))
+    with pytest.raises(RitzlineError, match="another host"):
+        check.OutputLock(tmp_path).acquire()
+
+
+ORPHAN_SCRIPT = textwrap.dedent(
+    """
+    import sys
+    from pathlib import Path
+    sys.path.insert(0, {tests!r})
+    from test_check import NumberTask
+    from ritzline.check import run_batch
+    paths = sorted(Path({indir!r}).glob("*.json"), key=lambda p: int(p.stem[3:]))
+    run_batch(paths, NumberTask(delay=0.2), outdir={outdir!r}, workers=3, chunksize=1)
+    """
+)
+
+
+def _children(pid):
+    try:
+        return [int(k) for k in Path(f"/proc/{pid}/task/{pid}/children").read_text().split()]
+    except OSError:
+        return []
+
+
+def _alive(pid):
+    try:
+        state = Path(f"/proc/{pid}/stat").read_text().rsplit(")", 1)[1].split()[0]
+    except (OSError, IndexError):
+        return False
+    return state != "Z"
+
+
+@pytest.mark.skipif(not Path("/proc/self/task").exists(), reason="needs Linux /proc")
+def test_workers_die_with_their_parent_after_sigkill(tmp_path):
+    paths = write_numbers(tmp_path / "in", 200)
+    out = tmp_path / "out"
+    script = ORPHAN_SCRIPT.format(tests=str(Path(__file__).parent), indir=str(tmp_path / "in"),
+                                  outdir=str(out))
+    proc = subprocess.Popen([sys.executable, "-c", script], start_new_session=True)
+    deadline = time.monotonic() + 30
+    workers = []
+    while time.monotonic() < deadline and len(workers) < 2:
+        workers = _children(proc.pid)
+        time.sleep(0.05)
+    assert len(workers) >= 2, "the pool did not start"
+    journal = out / "journal.jsonl"
+    while time.monotonic() < deadline and not (journal.exists() and
+                                               journal.read_text().count("\n") > 3):
+        time.sleep(0.05)
+    os.kill(proc.pid, signal.SIGKILL)  # the parent only, not its process group
+    proc.wait(timeout=10)
+    deadline = time.monotonic() + 5
+    while time.monotonic() < deadline and any(_alive(w) for w in workers):
+        time.sleep(0.05)
+    try:
+        assert not [w for w in workers if _alive(w)], "a worker outlived its parent"
+    finally:
+        for w in workers:
+            with contextlib.suppress(OSError):
+                os.kill(w, signal.SIGKILL)
+    # and the folder's lock went with them: a new run takes it over
+    with pytest.warns(check.OutputLockWarning):
+        result = run_batch(sorted((tmp_path / "in").glob("*.json")), NumberTask(),
+                           outdir=out, workers=1, resume=True)
+    assert result.complete
 
 
 def test_read_journal_ignores_a_torn_last_line(tmp_path):

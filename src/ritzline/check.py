@@ -17,7 +17,11 @@ import json
 import os
 import re
 import signal
+import socket
+import sys
+import threading
 import time
+import warnings
 from collections.abc import Callable, Iterable, Iterator, Sequence
 from dataclasses import asdict, dataclass, field
 from pathlib import Path
@@ -36,9 +40,13 @@ __all__ = [
     "CheckLimits",
     "DriftFit",
     "ExposureChecker",
+    "Inputs",
+    "OutputLock",
+    "OutputLockWarning",
     "Reference",
     "check_exposures",
     "collect_exposures",
+    "find_exposures",
     "fit_drift",
     "judge",
     "read_journal",
@@ -48,8 +56,18 @@ __all__ = [
 ]
 
 JOURNAL_NAME = "journal.jsonl"
+LOCK_NAME = ".ritzline-check.lock"
 JOURNAL_SCHEMA = 1
 SPECTRUM_SUFFIXES = (".fits", ".fit", ".fts", ".fits.gz", ".ecsv", ".txt", ".csv", ".dat", ".tsv")
+# Files that travel with data but are not spectra: skipped (and listed once), not errors.
+# A name counts when its suffix is one of these, or its stem is one of the usual notes.
+NOT_SPECTRUM_SUFFIXES = (
+    ".json", ".png", ".jpg", ".jpeg", ".gif", ".svg", ".pdf", ".md", ".rst", ".html", ".htm",
+    ".log", ".xml", ".yaml", ".yml", ".toml", ".ini", ".cfg", ".py", ".ipynb", ".sh", ".bat",
+    ".zip", ".tar", ".tgz", ".doc", ".docx", ".xls", ".xlsx", ".odt", ".ods", ".jsonl",
+)  # fmt: skip
+NOT_SPECTRUM_STEMS = ("readme", "license", "licence", "notes", "changelog", "changes",
+                      "authors", "copying", "todo", "manifest")  # fmt: skip
 
 # (name, kind, unit, description): the summary table, one row per exposure.
 SUMMARY_COLUMNS: tuple[tuple[str, str, str | None, str], ...] = (
@@ -74,6 +92,7 @@ SUMMARY_COLUMNS: tuple[tuple[str, str, str | None, str], ...] = (
     ("n_fit", "int", None, "lines used in the drift fit"),
     ("missing", "str", None, "reference wavelengths (nm) of expected lines not found"),
     ("saturated_pixels", "int", None, "pixels at or above the saturation level"),
+    ("masked_samples", "int", None, "samples that are not numbers (NaN, inf) or masked"),
     ("snr_median", "float", None, "median signal-to-noise ratio of the matched lines"),
     ("fit_rms_px", "float", "pix", "RMS residual of the drift fit"),
 )
@@ -100,6 +119,9 @@ class CheckLimits:
         Fail when fewer expected lines than this are found (the drift is then unmeasured).
     max_missing_fraction : float
         Warn when more than this fraction of the expected lines is missing.
+    max_masked_samples : int
+        Warn when an exposure has more masked samples (NaN, inf, or masked by the file)
+        than this.
     min_snr : float
         Warn when the median line SNR is below this.
     detect_snr : float
@@ -114,6 +136,7 @@ class CheckLimits:
     max_fwhm_change_pct: float = 15.0
     min_lines: int = 5
     max_missing_fraction: float = 0.2
+    max_masked_samples: int = 0
     min_snr: float = 10.0
     detect_snr: float = 5.0
     warn_fraction: float = 0.5
@@ -124,6 +147,10 @@ class CheckLimits:
             raise RitzlineError("max shift and max FWHM change must be positive")
         if self.min_lines < 1:
             raise RitzlineError(f"min_lines must be at least 1, got {self.min_lines}")
+        if self.max_masked_samples < 0:
+            raise RitzlineError(
+                f"max_masked_samples must be 0 or more, got {self.max_masked_samples}"
+            )
         if not 0 < self.warn_fraction <= 1:
             raise RitzlineError(f"warn_fraction must be in (0, 1], got {self.warn_fraction}")
 
@@ -149,6 +176,7 @@ class Reference:
     source: str = ""
     lamps: tuple[str, ...] = ()
     dark: np.ndarray | None = field(default=None, repr=False)
+    instrument: object | None = field(default=None, repr=False)
 
     @property
     def centre(self) -> float:
@@ -175,6 +203,9 @@ class Reference:
         for a in (self.pixel, self.pixel_err, self.wavelength, self.wavelength_grid):
             h.update(np.ascontiguousarray(a, float).tobytes())
         h.update(f"{self.n_pixels}|{self.fwhm_px!r}|{self.medium}".encode())
+        if self.instrument is not None and hasattr(self.instrument, "to_dict"):
+            h.update(json.dumps(self.instrument.to_dict(), sort_keys=True,
+                                default=str).encode())
         if self.dark is not None:
             h.update(np.ascontiguousarray(self.dark, float).tobytes())
         return h.hexdigest()[:16]
@@ -257,6 +288,9 @@ def reference_from_solution(
         source=source,
         lamps=lamps,
         dark=dark_counts,
+        # the instrument model the solution was made with (noise, line shape), when the
+        # solution carries one: exposures then need no fresh noise or width estimate
+        instrument=getattr(solution, "instrument", None),
     )
 
 
@@ -293,6 +327,9 @@ class DriftFit:
     @property
     def n_used(self) -> int:
         return int(np.count_nonzero(self.used))
+
+
+HUBER_K = 1.345  # Huber's tuning constant: 95 % efficiency for Gaussian errors (common practice)
 
 
 def _coarse_shift(found: np.ndarray, ref: np.ndarray, search: float, bin_px: float) -> float:
@@ -347,7 +384,7 @@ def fit_drift(
     fit_mask: np.ndarray | None = None,
     clip: float = 5.0,
 ) -> DriftFit:
-    """Match found lines to reference lines and fit shift + stretch by weighted least squares.
+    """Match found lines to reference lines and fit shift + stretch, robustly.
 
     Parameters
     ----------
@@ -366,7 +403,7 @@ def fit_drift(
         Found lines allowed in the fit (e.g. not saturated or blended); all by default.
         Lines outside the mask still count as matched.
     clip : float
-        Outlier rejection in units of the robust scatter of normalised residuals.
+        Lines farther than this many robust sigmas from the fit get no weight.
 
     Returns
     -------
@@ -375,9 +412,11 @@ def fit_drift(
     Notes
     -----
     The model is ``found - ref = shift + stretch * (ref - centre)``, weights
-    ``1 / (found_err**2 + ref_err**2)``.  The parameter covariance is scaled by the reduced
-    chi-square when that exceeds one, so scatter beyond the quoted centroid errors widens
-    the uncertainties rather than being hidden.
+    ``1 / (found_err**2 + ref_err**2)`` times Huber weights (iteratively reweighted least
+    squares, k = 1.345 robust sigmas: 95 % efficiency on Gaussian errors, common practice).
+    The parameter covariance is scaled by the reduced chi-square when that exceeds one, so
+    scatter beyond the quoted centroid errors widens the uncertainties rather than being
+    hidden.
     """
     found = np.asarray(found_pixel, float)
     ferr = np.asarray(found_err, float)
@@ -391,52 +430,67 @@ def fit_drift(
     if fi.size == 0:
         return DriftFit(nan, nan, nan, nan, nan, fi, ri, empty, s0)
 
-    def solve(sel):
-        x = ref[ri][sel] - centre
+    x_all = ref - centre
+
+    def solve(fi, ri, w):
+        """Weighted least squares of found - ref = shift + stretch * x with weights ``w``."""
+        sel = w > 0
+        x = x_all[ri][sel]
         y = found[fi][sel] - ref[ri][sel]
-        var = ferr[fi][sel] ** 2 + rerr[ri][sel] ** 2
-        good = np.isfinite(var) & (var > 0)
-        floor = np.median(var[good]) if good.any() else 0.01**2
-        w = 1.0 / np.where(good, var, floor)
+        ws = w[sel]
         if sel.sum() >= 3 and np.ptp(x) > 0:
             a = np.stack([np.ones_like(x), x], axis=1)
-            ata = a.T @ (a * w[:, None])
-            cov = np.linalg.inv(ata)
-            p = cov @ (a.T @ (w * y))
-            r = y - a @ p
+            cov = np.linalg.inv(a.T @ (a * ws[:, None]))
+            p = cov @ (a.T @ (ws * y))
         else:
-            cov = np.array([[1.0 / w.sum(), 0.0], [0.0, nan]])
-            p = np.array([np.sum(w * y) / w.sum(), 0.0])
-            r = y - p[0]
-        return p, cov, r, w
+            cov = np.array([[1.0 / ws.sum(), 0.0], [0.0, nan]])
+            p = np.array([np.sum(ws * y) / ws.sum(), 0.0])
+        resid = found[fi] - ref[ri] - (p[0] + p[1] * x_all[ri])
+        return p, cov, resid
+
+    def inverse_variance(fi, ri):
+        var = ferr[fi] ** 2 + rerr[ri] ** 2
+        good = np.isfinite(var) & (var > 0)
+        floor = np.median(var[good]) if good.any() else 0.01**2
+        return 1.0 / np.where(good, var, floor)
 
     usable = mask[fi]
     if not usable.any():
         return DriftFit(nan, nan, nan, nan, nan, fi, ri, np.zeros(fi.size, bool), s0)
     # second pass with the stretch from a first fit, so the far ends match too
-    p, _, _, _ = solve(usable)
-    predicted = ref + p[0] + p[1] * (ref - centre)
+    p, _, _ = solve(fi, ri, inverse_variance(fi, ri) * usable)
+    predicted = ref + p[0] + p[1] * x_all
     fi, ri = _match_nearest(found, predicted, match_px)
     usable = mask[fi]
     if not usable.any():
         return DriftFit(nan, nan, nan, nan, nan, fi, ri, np.zeros(fi.size, bool), s0)
-    keep = usable.copy()
-    for _ in range(3):
-        p, cov, r, w = solve(keep)
-        x = ref[ri] - centre
-        resid = found[fi] - ref[ri] - (p[0] + p[1] * x)
-        norm = resid * np.sqrt(_weights_all(ferr[fi], rerr[ri], w))
-        scale = max(1.4826 * float(np.median(np.abs(norm[keep]))), 1.0)
-        new = usable & (np.abs(norm) <= clip * scale)
-        if new.sum() < 1 or np.array_equal(new, keep):
+    # Iteratively reweighted least squares with Huber weights (full weight within
+    # HUBER_K robust sigmas, k/|z| beyond) and none beyond ``clip``: a few lines pulled by
+    # an unseen blend or a spike cannot move the fit, and every other line counts.
+    w0 = inverse_variance(fi, ri) * usable
+    h = usable.astype(float)
+    for _ in range(30):
+        p, cov, resid = solve(fi, ri, w0 * h)
+        u = resid * np.sqrt(w0)
+        act = usable & (h > 0)
+        scale = max(1.4826 * float(np.median(np.abs(u[act]))), 1.0) if act.any() else 1.0
+        z = np.abs(u) / scale
+        new = np.where(z <= HUBER_K, 1.0, HUBER_K / np.maximum(z, 1e-300))
+        new = np.where(usable & (z <= clip), new, 0.0)
+        if not new.any():
             break
-        keep = new
-    p, cov, r, w = solve(keep)
+        if np.allclose(new, h, atol=1e-4):
+            h = new
+            break
+        h = new
+    keep = h > 0
+    w = w0 * h
+    p, cov, r = solve(fi, ri, w)
     n = int(keep.sum())
     dof = n - (2 if n >= 3 else 1)
     chi2 = float(np.sum(w * r**2))
     factor = max(1.0, chi2 / dof) if dof > 0 else 1.0
-    rms = float(np.sqrt(np.mean(r**2))) if n else nan
+    rms = float(np.sqrt(np.mean(r[keep] ** 2))) if n else nan
     return DriftFit(
         shift=float(p[0]),
         shift_err=float(np.sqrt(cov[0, 0] * factor)),
@@ -450,13 +504,10 @@ def fit_drift(
     )
 
 
-def _weights_all(ferr, rerr, w_sel):
-    var = ferr**2 + rerr**2
-    floor = 1.0 / np.median(w_sel) if w_sel.size else 0.01**2
-    return 1.0 / np.where(np.isfinite(var) & (var > 0), var, floor)
-
-
 # ---- per-exposure check -----------------------------------------------------------------
+
+
+NO_LINES_REASON = "no lines found (lamp off?)"
 
 
 def judge(row: dict, limits: CheckLimits, centre: float) -> tuple[str, list[str]]:
@@ -473,7 +524,9 @@ def judge(row: dict, limits: CheckLimits, centre: float) -> tuple[str, list[str]
             warn.append(warn_text)
 
     n_lines, n_expected = row["n_lines"], row["n_expected"]
-    if n_lines < limits.min_lines:
+    if row.get("n_found") == 0:
+        fail.append(NO_LINES_REASON)
+    elif n_lines < limits.min_lines:
         fail.append(
             f"only {n_lines} of {n_expected} expected lines found (minimum {limits.min_lines})"
         )
@@ -503,6 +556,12 @@ def judge(row: dict, limits: CheckLimits, centre: float) -> tuple[str, list[str]
         listed = row["missing"].split(",")
         shown = ", ".join(listed[:8]) + (", …" if len(listed) > 8 else "")
         warn.append(f"{n_missing} of {n_expected} expected lines missing ({shown} nm)")
+    masked = row.get("masked_samples")
+    if masked is not None and masked > limits.max_masked_samples:
+        warn.append(
+            f"{masked} masked sample{'s' if masked != 1 else ''} (NaN, inf or masked in the "
+            f"file), above the limit of {limits.max_masked_samples}"
+        )
     sat = row["saturated_pixels"]
     if sat is not None and sat > 0:
         warn.append(f"{sat} saturated pixel{'s' if sat != 1 else ''}")
@@ -567,13 +626,13 @@ class ExposureChecker:
         return row
 
     def _measure(self, spectrum, row: dict) -> None:
-        from .peaks import find_lines
         from .spectrum import spectrum_arrays
 
         ref, limits = self.reference, self.limits
         arrays = spectrum_arrays(spectrum)
         meta = arrays.meta
         row["timestamp"] = str(meta.get("timestamp") or "")
+        row["masked_samples"] = int(np.count_nonzero(arrays.mask))
         if arrays.counts.size != ref.n_pixels:
             row["status"] = "fail"
             row["reasons"] = (
@@ -585,31 +644,46 @@ class ExposureChecker:
         # FWHM change stays unmeasured
         ref_fwhm = ref.fwhm_px if np.isfinite(ref.fwhm_px) and ref.fwhm_px > 0 else None
         sat_level = meta.get("saturation") or limits.saturation
+        good = ~arrays.mask
         if sat_level is not None:
-            good = ~arrays.mask
             row["saturated_pixels"] = int(np.count_nonzero(arrays.counts[good] >= sat_level))
-        lines = find_lines(
-            spectrum,
-            min_snr=limits.detect_snr,
-            fwhm_guess=ref_fwhm,
-            saturation=sat_level,
-            dark=ref.dark,
-        )
+        counts = arrays.counts[good]
+        if counts.size == 0 or np.ptp(counts) == 0:  # a constant frame: nothing to find
+            lines = None
+        else:
+            lines = self._find_lines(spectrum, ref_fwhm, sat_level)
+        if lines is None or len(lines) == 0:
+            row["n_found"] = 0
+            row["n_lines"] = 0
+            row["n_fit"] = 0
+            on = (ref.pixel >= 0) & (ref.pixel <= ref.n_pixels - 1)
+            row["n_expected"] = int(np.count_nonzero(on))
+            row["missing"] = ",".join(f"{w:.3f}" for w in ref.wavelength[on])
+            status, reasons = judge(row, limits, ref.centre)
+            row["status"], row["reasons"] = status, "; ".join(reasons)
+            return
         pixel = np.asarray(lines["pixel"], float)
         pixel_err = np.asarray(lines["pixel_err"], float)
         fwhm = np.asarray(lines["fwhm_pixel"], float)
         snr = np.asarray(lines["snr"], float)
-        # A line wider than the reference LSF is only a *suspected* blend: a defocused
-        # exposure widens every line, and that is what the FWHM check must see.  Saturated,
-        # blended and edge lines stay out of the drift fit and the width.
-        flags = np.char.replace(np.asarray(lines["flags"], str), "blend_suspect", "")
-        clean = (np.char.strip(flags, ", ") == "") & np.isfinite(pixel) & np.isfinite(pixel_err)
+        flags = np.asarray(lines["flags"], str)
+        # Every matched line enters the drift fit with its own centroid error (which grows
+        # with its measured width), blended and saturated ones included: the robust fit
+        # down-weights the few that disagree.  On an instrument with asymmetric lines the
+        # finder may flag every line as blended; leaving them out left 1-5 lines and
+        # shifts of tens of pixels.  Only the width statistics keep to clean lines (a
+        # blend or a clipped top is no measure of the resolution), with every line as the
+        # fallback when none is clean.
+        fittable = np.isfinite(pixel) & np.isfinite(pixel_err)
+        # a line wider than the reference LSF is only a *suspected* blend: a defocused
+        # exposure widens every line, and that is what the FWHM check must see
+        clean = np.char.strip(np.char.replace(flags, "blend_suspect", ""), ", ") == ""
         row["n_found"] = int(pixel.size)
         search = max(25.0, 3.0 * limits.max_shift_px)
         match = max(1.5, 0.8 * ref_fwhm) if ref_fwhm else 2.0
         fit = fit_drift(
             pixel, pixel_err, ref.pixel, ref.pixel_err, ref.centre,
-            search_px=search, match_px=match, fit_mask=clean,
+            search_px=search, match_px=match, fit_mask=fittable,
         )
         shift = fit.shift if np.isfinite(fit.shift) else fit.coarse_shift
         stretch = fit.stretch if np.isfinite(fit.stretch) else 0.0
@@ -633,9 +707,12 @@ class ExposureChecker:
             row["stretch"] = fit.stretch
             row["stretch_err"] = fit.stretch_err
             row["fit_rms_px"] = fit.rms
-            fi = fit.found_index[fit.used]
-            w = fwhm[fi]
-            ok = np.isfinite(w) & (w > 0)
+            fi_all, ri_all = fit.found_index[fit.used], fit.ref_index[fit.used]
+            for pick in (clean[fi_all], np.ones(fi_all.size, bool)):
+                w = fwhm[fi_all[pick]]
+                ok = np.isfinite(w) & (w > 0)
+                if ok.any():
+                    break
             if ok.any():
                 w = w[ok]
                 med = float(np.median(w))
@@ -646,13 +723,27 @@ class ExposureChecker:
                 row["fwhm_err_px"] = float(1.2533 * spread / np.sqrt(n_w)) if n_w > 1 else np.nan
                 if ref_fwhm:
                     row["fwhm_change_pct"] = 100.0 * (med / ref_fwhm - 1.0)
-                rp = fit.ref_index[fit.used][ok]
+                rp = ri_all[pick][ok]
                 lam = ref.wavelength[rp]
                 r = lam / (w * np.abs(ref.dispersion_at(ref.pixel[rp])))
                 row["resolving_power"] = float(np.median(r))
         status, reasons = judge(row, limits, ref.centre)
         row["status"] = status
         row["reasons"] = "; ".join(reasons)
+
+    def _find_lines(self, spectrum, ref_fwhm, sat_level):
+        """The line table of one exposure: the reference's instrument model when the
+        solution carries one (noise and width are then not re-estimated), else the finder's
+        own estimates seeded with the reference FWHM."""
+        from .peaks import find_lines
+
+        kw = {}
+        if self.reference.instrument is not None:
+            kw["instrument"] = self.reference.instrument
+        else:
+            kw["fwhm_guess"] = ref_fwhm
+        return find_lines(spectrum, min_snr=self.limits.detect_snr, saturation=sat_level,
+                          dark=self.reference.dark, **kw)
 
 
 # ---- files -------------------------------------------------------------------------------
@@ -662,26 +753,47 @@ def _natural_key(path: Path):
     return [int(t) if t.isdigit() else t.lower() for t in re.split(r"(\d+)", str(path))]
 
 
-def collect_exposures(
+def is_spectrum_name(path: str | os.PathLike) -> bool:
+    """False for a file that is plainly not a spectrum by its name (``README.txt``,
+    ``notes.json``, ``plot.png`` ...): see :data:`NOT_SPECTRUM_SUFFIXES`."""
+    name = Path(path).name.lower()
+    if name.endswith(NOT_SPECTRUM_SUFFIXES):
+        return False
+    stem = name.split(".", 1)[0]
+    return stem not in NOT_SPECTRUM_STEMS
+
+
+@dataclass(frozen=True)
+class Inputs:
+    """The exposure files to check and the files skipped because they are not spectra."""
+
+    files: list[Path]
+    skipped: list[Path]
+
+
+def find_exposures(
     inputs: Iterable[str | os.PathLike],
     *,
     pattern: str | None = None,
     exclude: str | os.PathLike | None = None,
-) -> list[Path]:
-    """Expand files and folders into the list of exposure files, in a stable order.
+) -> Inputs:
+    """Expand files and folders into the exposure files, in a stable order.
 
     Files are kept in the order given; each folder contributes the files matching
     ``pattern`` (a glob relative to the folder, e.g. ``"*.fits"`` or ``"**/*.txt"``; by
     default the usual spectrum suffixes, not recursive) in natural order (``exp2`` before
     ``exp10``).  Duplicates are dropped and files under ``exclude`` (the output folder)
-    skipped.
+    skipped.  Files that are not spectra by their name (:func:`is_spectrum_name`), given
+    directly or found in a folder, go to ``skipped`` instead of becoming error rows; hidden
+    files in folders are ignored.
 
     Raises
     ------
     RitzlineError
-        When an input does not exist or nothing is found.
+        When an input does not exist or no exposure file is found.
     """
     out: list[Path] = []
+    skipped: list[Path] = []
     seen: set[str] = set()
     excl = Path(exclude).resolve() if exclude is not None else None
 
@@ -692,30 +804,172 @@ def collect_exposures(
         if excl is not None and (excl == p.resolve() or excl in p.resolve().parents):
             return
         seen.add(key)
-        out.append(p)
+        (out if is_spectrum_name(p) else skipped).append(p)
 
+    inputs = list(inputs)
     for item in inputs:
         p = Path(item)
         if p.is_dir():
             if pattern:
                 found = [q for q in p.glob(pattern) if q.is_file()]
             else:
-                found = [
-                    q
-                    for q in p.iterdir()
-                    if q.is_file() and q.name.lower().endswith(SPECTRUM_SUFFIXES)
-                    and not q.name.startswith(".")
-                ]
+                found = [q for q in p.iterdir() if q.is_file() and not q.name.startswith(".")]
             for q in sorted(found, key=_natural_key):
-                add(q)
+                if pattern or q.name.lower().endswith(SPECTRUM_SUFFIXES) or not is_spectrum_name(q):
+                    add(q)
         elif p.exists():
             add(p)
         else:
             raise RitzlineError(f"{p}: no such file or folder")
     if not out:
         what = f"matching {pattern!r}" if pattern else "with a spectrum suffix"
-        raise RitzlineError(f"no exposure files {what} found in {', '.join(map(str, inputs))}")
-    return out
+        also = f" ({len(skipped)} other files skipped)" if skipped else ""
+        raise RitzlineError(
+            f"no exposure files {what} found in {', '.join(map(str, inputs))}{also}"
+        )
+    return Inputs(files=out, skipped=skipped)
+
+
+def collect_exposures(
+    inputs: Iterable[str | os.PathLike],
+    *,
+    pattern: str | None = None,
+    exclude: str | os.PathLike | None = None,
+) -> list[Path]:
+    """The exposure files of :func:`find_exposures` (without the skipped ones)."""
+    return find_exposures(inputs, pattern=pattern, exclude=exclude).files
+
+
+# ---- output folder ownership -------------------------------------------------------------
+
+
+# Lock files this process holds open: a forked worker closes its inherited copies, so the
+# lock goes away with the run's parent process alone.
+_HELD_LOCK_FDS: set[int] = set()
+
+
+class OutputLockWarning(UserWarning):
+    """A lock left by a run that is no longer alive was taken over."""
+
+
+def _pid_alive(pid: int) -> bool:
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:  # alive, owned by someone else
+        return True
+    try:  # a zombie is dead for our purpose
+        state = Path(f"/proc/{pid}/stat").read_text().rsplit(")", 1)[1].split()[0]
+    except (OSError, IndexError):
+        return True
+    return state != "Z"
+
+
+class OutputLock:
+    """Exclusive ownership of an output folder while a batch run writes into it.
+
+    The folder gets a lock file (``.ritzline-check.lock``: pid, host, start time, command)
+    held with an advisory ``flock`` for the life of the run.  A second run into the same
+    folder is refused with a message naming the owner.  A lock whose process is gone (killed,
+    machine rebooted) is detected and taken over with an :class:`OutputLockWarning`: the
+    kernel drops the ``flock`` of a dead process, and a lock written on this host by a pid
+    that no longer runs is stale too.  A lock written by a run on *another* host that still
+    holds it cannot be checked from here and is refused.
+    """
+
+    def __init__(self, folder: str | os.PathLike) -> None:
+        self.folder = Path(folder)
+        self.path = self.folder / LOCK_NAME
+        self._fd: int | None = None
+
+    @staticmethod
+    def _describe(info: dict) -> str:
+        return (f"pid {info.get('pid', '?')} on host {info.get('host', '?')}, started "
+                f"{info.get('started', '?')}")  # fmt: skip
+
+    def _read(self, fd: int) -> dict:
+        os.lseek(fd, 0, os.SEEK_SET)
+        raw = os.read(fd, 65536)
+        try:
+            info = json.loads(raw.decode("utf-8")) if raw.strip() else {}
+        except (UnicodeDecodeError, json.JSONDecodeError):
+            info = {"unreadable": True}
+        return info if isinstance(info, dict) else {"unreadable": True}
+
+    def acquire(self) -> OutputLock:
+        import fcntl
+
+        self.folder.mkdir(parents=True, exist_ok=True)
+        host = socket.gethostname()
+        for _ in range(20):
+            fd = os.open(self.path, os.O_RDWR | os.O_CREAT, 0o644)
+            try:
+                fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+            except BlockingIOError:
+                info = self._read(fd)
+                os.close(fd)
+                raise RitzlineError(
+                    f"{self.folder} is in use by another check run ({self._describe(info)}); "
+                    "wait for it to finish or write to another output folder"
+                ) from None
+            # the file may have been removed and recreated by its owner in the meantime
+            try:
+                same = os.fstat(fd).st_ino == os.stat(self.path).st_ino
+            except FileNotFoundError:
+                same = False
+            if not same:
+                os.close(fd)
+                continue
+            previous = self._read(fd)
+            if previous and not previous.get("unreadable"):
+                pid = previous.get("pid")
+                other_host = previous.get("host") not in (None, host)
+                if other_host:
+                    os.close(fd)
+                    raise RitzlineError(
+                        f"{self.folder} holds a lock from a run on another host "
+                        f"({self._describe(previous)}) that this host cannot check; if that "
+                        f"run is over, delete {self.path} and start again"
+                    )
+                # we hold the flock, so its writer has died; a live pid is a reused one
+                gone = "no longer running" if not (isinstance(pid, int) and _pid_alive(pid)) \
+                    else "no longer holding it (its pid now belongs to another process)"
+                warnings.warn(
+                    f"{self.folder}: taking over a stale lock ({self._describe(previous)}; "
+                    f"that run is {gone}); its finished exposures are kept",
+                    OutputLockWarning,
+                    stacklevel=3,
+                )
+            info = {
+                "pid": os.getpid(),
+                "host": host,
+                "started": time.strftime("%Y-%m-%dT%H:%M:%S%z"),
+                "command": " ".join(sys.argv)[:2000],
+            }
+            os.ftruncate(fd, 0)
+            os.lseek(fd, 0, os.SEEK_SET)
+            os.write(fd, (json.dumps(info) + "\n").encode("utf-8"))
+            os.fsync(fd)
+            self._fd = fd
+            _HELD_LOCK_FDS.add(fd)
+            return self
+        raise RitzlineError(f"{self.path}: could not take the lock (it keeps changing)")
+
+    def release(self) -> None:
+        if self._fd is None:
+            return
+        with contextlib.suppress(OSError):
+            self.path.unlink()
+        _HELD_LOCK_FDS.discard(self._fd)
+        os.close(self._fd)
+        self._fd = None
+
+    def __enter__(self) -> OutputLock:
+        return self.acquire()
+
+    def __exit__(self, *exc) -> None:
+        self.release()
 
 
 # ---- journal -----------------------------------------------------------------------------
@@ -905,9 +1159,42 @@ def _totals(status) -> dict:
 _WORKER_TASK: Callable[[str], dict] | None = None
 
 
-def _init_worker(task: Callable[[str], dict]) -> None:
+PARENT_POLL_S = 0.5
+
+
+def _die_with_parent(parent: int) -> None:
+    """End this worker when its parent process ends, however it ends (even SIGKILL).
+
+    On Linux the kernel delivers SIGKILL when the parent dies (``PR_SET_PDEATHSIG``); on
+    every platform a daemon thread also polls the parent pid, since a killed parent leaves
+    the worker with another parent (or none).
+    """
+    with contextlib.suppress(Exception):
+        import ctypes
+
+        pr_set_pdeathsig = 1
+        ctypes.CDLL(None, use_errno=True).prctl(pr_set_pdeathsig, int(signal.SIGKILL), 0, 0, 0)
+
+    def watch() -> None:
+        while True:
+            if os.getppid() != parent:
+                os._exit(1)
+            time.sleep(PARENT_POLL_S)
+
+    if os.getppid() != parent:  # the parent died before the signal was armed
+        os._exit(1)
+    threading.Thread(target=watch, name="ritzline-parent-watch", daemon=True).start()
+
+
+def _init_worker(task: Callable[[str], dict], parent: int) -> None:
     global _WORKER_TASK
     _WORKER_TASK = task
+    _die_with_parent(parent)
+    # a forked worker must not keep the output folder's lock alive after its parent
+    for fd in list(_HELD_LOCK_FDS):
+        with contextlib.suppress(OSError):
+            os.close(fd)
+    _HELD_LOCK_FDS.clear()
     # the parent handles Ctrl-C and stops the pool; workers just stop when told
     signal.signal(signal.SIGINT, signal.SIG_IGN)
 
@@ -957,7 +1244,7 @@ def _results_pool(task, items, workers: int, chunksize: int):
     window = 2 * (workers - 1)  # chunks queued per helper: enough to keep it busy
     pending: collections.deque = collections.deque()
     executor = ProcessPoolExecutor(workers - 1, mp_context=mp.get_context(),
-                                   initializer=_init_worker, initargs=(task,))
+                                   initializer=_init_worker, initargs=(task, os.getpid()))
 
     def submit() -> None:
         while len(pending) < window:
@@ -985,12 +1272,16 @@ def _results_pool(task, items, workers: int, chunksize: int):
         while pending:
             yield from harvest(block=True)
     except BrokenProcessPool as exc:
-        raise RitzlineError(
+        raise _WorkerDied(
             "a worker process died (killed or out of memory); the exposures finished so far "
             "are kept: run the same command again with --resume"
         ) from exc
     finally:
         executor.shutdown(wait=True, cancel_futures=True)
+
+
+class _WorkerDied(RitzlineError):
+    """A helper process of the pool ended without returning its exposures."""
 
 
 def _results_dask(task, items, scheduler: str, chunksize: int, workers: int | None):
@@ -1069,6 +1360,7 @@ class BatchResult:
     n_run: int
     elapsed: float
     complete: bool
+    stopped: str = ""  # why the run stopped before the end ("" when it did not)
 
     @property
     def rows(self) -> list[dict]:
@@ -1089,6 +1381,7 @@ def run_batch(
     progress: Callable[[int, int], None] | None = None,
     summary_interval: float = 15.0,
     chunksize: int | None = None,
+    lock: bool = True,
 ) -> BatchResult:
     """Run ``task(path) -> row`` over ``paths`` in parallel, journalled and resumable.
 
@@ -1119,10 +1412,21 @@ def run_batch(
         Seconds between rebuilds of ``summary.ecsv`` during the run.
     chunksize : int, optional
         Exposures per task sent to a worker.
+    lock : bool
+        Take the output folder's :class:`OutputLock` for the run (pass False only when the
+        caller already holds it).
 
     Returns
     -------
     BatchResult
+        ``complete`` is False when some exposure has no row (a worker died: ``stopped``
+        says so); the rows finished so far are in the journal and the summary.
+
+    Raises
+    ------
+    RitzlineError
+        When another run owns ``outdir``, or a resume meets a journal made with another
+        configuration.
 
     Notes
     -----
@@ -1140,10 +1444,22 @@ def run_batch(
     if len(index_of) != len(keys):
         raise RitzlineError("the same exposure file is listed twice")
     workers = int(workers or os.cpu_count() or 1)
+    out = Path(outdir) if outdir is not None else None
+    owner = OutputLock(out).acquire() if out is not None and lock else None
+    try:
+        return _run_batch_locked(files, keys, index_of, task, out, workers, dask_scheduler,
+                                 resume, fingerprint, meta, progress, summary_interval,
+                                 chunksize, t0)
+    finally:
+        if owner is not None:
+            owner.release()
+
+
+def _run_batch_locked(files, keys, index_of, task, out, workers, dask_scheduler, resume,
+                      fingerprint, meta, progress, summary_interval, chunksize, t0):
     journal = None
     done: dict[str, list | None] = {}
     in_memory: dict[int, dict] = {}
-    out = Path(outdir) if outdir is not None else None
     if out is not None:
         out.mkdir(parents=True, exist_ok=True)
         _remove_stale_temporaries(out)
@@ -1179,6 +1495,7 @@ def run_batch(
     n_run = 0
     table = None
     n_filled = 0
+    stopped = ""
     try:
         if dask_scheduler:
             results = _results_dask(task, todo, dask_scheduler, chunksize, workers)
@@ -1200,6 +1517,8 @@ def run_batch(
                 journal._fh.flush()
                 write_summary()
                 last_summary = time.monotonic()
+    except _WorkerDied as exc:
+        stopped = str(exc)
     finally:
         if journal is not None:
             journal.close()
@@ -1210,6 +1529,7 @@ def run_batch(
         n_run=n_run,
         elapsed=time.monotonic() - t0,
         complete=n_filled == len(keys),
+        stopped=stopped,
     )
 
 
@@ -1271,7 +1591,8 @@ def check_exposures(
     from . import __version__
 
     limits = limits or CheckLimits()
-    files = collect_exposures(paths, pattern=pattern, exclude=outdir)
+    found = find_exposures(paths, pattern=pattern, exclude=outdir)
+    files = found.files
     reference = reference_from_solution(solution, lamp=lamp, dark=dark)
     checker = ExposureChecker(reference, limits)
     meta = {
@@ -1288,21 +1609,35 @@ def check_exposures(
         "drift_model": "line at reference pixel p appears at p + shift_px + stretch*(p - centre),"
         " centre = (n_pixels - 1)/2; positive shift = toward higher pixel index",
     }
-    result = run_batch(
-        files,
-        checker,
-        outdir=outdir,
-        workers=workers,
-        dask_scheduler=dask_scheduler,
-        resume=resume,
-        fingerprint=checker.fingerprint(),
-        meta=meta,
-        progress=progress,
-    )
+    meta["skipped_files"] = [str(p) for p in found.skipped]
+    owner = OutputLock(outdir) if outdir is not None else contextlib.nullcontext()
+    with owner:
+        result = run_batch(
+            files,
+            checker,
+            outdir=outdir,
+            workers=workers,
+            dask_scheduler=dask_scheduler,
+            resume=resume,
+            fingerprint=checker.fingerprint(),
+            meta=meta,
+            progress=progress,
+            lock=False,
+        )
+        return _finish_check(result, outdir, limits, meta, figures, len(files))
+
+
+def _finish_check(result: BatchResult, outdir, limits: CheckLimits, meta: dict, figures: bool,
+                  n_files: int):
+    """Totals into the table's meta; summary.ecsv, summary.json and the report in OUTDIR."""
+    from . import __version__
+
     table = result.table
     totals = _totals(table["status"])
     table.meta["totals"] = totals
     table.meta["complete"] = result.complete
+    table.meta["missing_exposures"] = n_files - len(table)
+    table.meta["stopped"] = result.stopped
     table.meta["resumed_exposures"] = result.n_skipped
     if outdir is not None:
         out = Path(outdir)
@@ -1315,6 +1650,9 @@ def check_exposures(
             "thresholds": asdict(limits),
             "reference": {k: meta[k] for k in ref_keys},
             "complete": result.complete,
+            "missing_exposures": n_files - len(table),
+            "stopped": result.stopped,
+            "skipped_files": meta["skipped_files"],
             "resumed_exposures": result.n_skipped,
             "checked_exposures": result.n_run,
             "elapsed_s": round(result.elapsed, 3),
