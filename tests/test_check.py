@@ -368,7 +368,7 @@ def _alive(pid):
 
 @pytest.mark.skipif(not Path("/proc/self/task").exists(), reason="needs Linux /proc")
 def test_workers_die_with_their_parent_after_sigkill(tmp_path):
-    paths = write_numbers(tmp_path / "in", 200)
+    write_numbers(tmp_path / "in", 200)
     out = tmp_path / "out"
     script = ORPHAN_SCRIPT.format(tests=str(Path(__file__).parent), indir=str(tmp_path / "in"),
                                   outdir=str(out))
@@ -816,3 +816,140 @@ def test_a_reference_without_a_line_width_still_measures_the_drift(bench):
     table = check.check_exposures(bench["paths"][1:2], solution, workers=1)
     assert table["shift_px"][0] == pytest.approx(0.12, abs=0.02)
     assert np.isnan(table["fwhm_change_pct"][0]) and np.isfinite(table["fwhm_px"][0])
+
+
+# ---- honest totals: masked samples, lamp off, files that are not spectra --------------------
+
+
+def test_masked_samples_are_counted_and_warned_above_the_limit(bench, tmp_path):
+    text = bench["paths"][0].read_text().splitlines()
+    start = text.index("counts") + 1
+    for k in range(1800, 1830):  # 30 samples that are not numbers, as in a corrupted copy
+        text[start + k] = "nan" if k % 2 else "inf"
+    path = tmp_path / "holes.txt"
+    path.write_text("\n".join(text) + "\n")
+    table = check.check_exposures([bench["paths"][0], path], bench["solution"], workers=1)
+    assert list(table["masked_samples"]) == [0, 30]
+    assert table["status"][1] == "warn" and "30 masked samples" in table["reasons"][1]
+    lenient = check.check_exposures([path], bench["solution"], workers=1,
+                                    limits=CheckLimits(max_masked_samples=30))
+    assert lenient["status"][0] == "pass"
+
+
+@pytest.mark.parametrize("kind", ["dark", "constant"])
+def test_a_lamp_off_or_constant_frame_fails_with_no_lines_found(bench, tmp_path, kind):
+    rng = np.random.default_rng(5)
+    counts = (150.0 + rng.normal(0, 6.0, 3648)) if kind == "dark" else np.full(3648, 812.0)
+    path = cs.write_text_exposure(tmp_path / f"{kind}.txt", counts)
+    table = check.check_exposures([path], bench["solution"], workers=1)
+    assert table["status"][0] == "fail"
+    assert table["reasons"][0].startswith("no lines found (lamp off?)")
+    assert table["n_found"][0] == 0 and table["n_lines"][0] == 0
+
+
+def test_files_that_are_not_spectra_are_skipped_and_listed_not_errors(bench, tmp_path):
+    folder = tmp_path / "data"
+    folder.mkdir()
+    good = folder / "lamp_00000.txt"
+    good.write_bytes(bench["paths"][0].read_bytes())
+    for name in ("README.txt", "notes.json", "overview.png", "run.log"):
+        (folder / name).write_text("not a spectrum")
+    found = check.find_exposures([folder, folder / "notes.json"])
+    assert [p.name for p in found.files] == ["lamp_00000.txt"]
+    assert sorted(p.name for p in found.skipped) == ["README.txt", "notes.json", "overview.png",
+                                                     "run.log"]
+    r = run_cli("check", folder, "--solution", bench["solution_path"], "-o", tmp_path / "o")
+    assert r.exit_code == 0, r.output
+    assert r.output.count("README.txt") == 1 and "skipped 4 files" in r.output
+    assert "1 exposures: 1 pass, 0 warn, 0 fail, 0 error" in r.output
+    info = json.loads((tmp_path / "o" / "summary.json").read_text())
+    assert len(info["skipped_files"]) == 4 and info["totals"]["error"] == 0
+
+
+def test_cli_lists_errors_then_fails_then_warnings(bench, tmp_path):
+    paths = [bench["paths"][3], bench["paths"][4], bench["bad"]["garbage"], bench["paths"][0],
+             bench["paths"][5], bench["bad"]["empty"]]  # warn, fail, error, pass, fail, error
+    r = run_cli("check", *paths, "--solution", bench["solution_path"], "-o", tmp_path / "o")
+    listed = [line.split()[0] for line in r.output.splitlines() if line.startswith("  ")]
+    assert listed == ["error", "error", "fail", "fail", "warn"]
+    assert r.exit_code == 1
+
+
+def test_cli_an_incomplete_run_has_a_banner_and_exit_status_3(bench, tmp_path, monkeypatch):
+    def dying_pool(task, items, workers, chunksize):
+        items = list(items)
+        index, key, path = items[0]
+        yield index, key, task(path)
+        raise check._WorkerDied("a worker process died (killed or out of memory); run the "
+                                "same command again with --resume")
+
+    monkeypatch.setattr(check, "_results_pool", dying_pool)
+    out = tmp_path / "o"
+    r = run_cli("check", *bench["paths"][:3], "--solution", bench["solution_path"], "-o", out)
+    assert r.exit_code == 3, r.output
+    assert "INCOMPLETE RUN: 2 of 3 exposures have no result" in r.output
+    assert "worker process died" in r.output and "--resume" in r.output
+    info = json.loads((out / "summary.json").read_text())
+    assert info["complete"] is False and info["missing_exposures"] == 2
+    assert "interrupted" in (out / "report.html").read_text(encoding="utf-8")
+    monkeypatch.undo()
+    r = run_cli("check", *bench["paths"][:3], "--solution", bench["solution_path"], "-o", out,
+                "--resume")
+    assert r.exit_code == 0 and "INCOMPLETE" not in r.output, r.output
+
+
+def test_cli_refuses_an_output_folder_owned_by_another_run(bench, tmp_path):
+    out = tmp_path / "o"
+    with check.OutputLock(out):
+        r = run_cli("check", bench["paths"][0], "--solution", bench["solution_path"], "-o", out)
+    assert r.exit_code == 2 and r.output.startswith("error:") and "in use by another" in r.output
+
+
+# ---- a stable series from an instrument with asymmetric lines --------------------------------
+
+
+def skewed_counts(inst, lines, rng, shift):
+    """A lamp exposure whose every line has a shoulder on its red side (a coma-like,
+    asymmetric line shape, as compact spectrometers show): 70 % of the flux in a main
+    Gaussian and 30 % in one 0.8 FWHM to its right, both pixel-integrated.  Today's finder
+    fits each such line as two and flags both "blended"."""
+    from ritzline.synthetic import integrated_gaussians, observe
+
+    pix = cs.drifted(inst, shift).pixel(lines["wavelength"])
+    flux = 1.5e5 * lines["intensity"]
+    fw = inst.fwhm_px
+    expected = inst.background + integrated_gaussians(
+        inst.n_pixels, np.concatenate([pix, pix + 0.8 * fw]),
+        np.concatenate([0.7 * flux, 0.3 * flux]), fw)
+    return observe(expected, rng, gain=inst.gain, read_noise=inst.read_noise,
+                   saturation=inst.saturation)
+
+
+def test_a_stable_series_with_asymmetric_lines_passes(tmp_path):
+    from ritzline.calibration import Solution
+    from ritzline.peaks import find_lines
+
+    rng = np.random.default_rng(77)
+    inst, lines = cs.bench_instrument(), cs.bench_lines()
+    # the reference: the same skewed lines measured by the finder on an undrifted frame
+    counts = skewed_counts(inst, lines, rng, 0.0)
+    found = find_lines(counts, fwhm_guess=inst.fwhm_px, saturation=cs.SATURATION)
+    truth = inst.pixel(lines["wavelength"])
+    fp = np.asarray(found["pixel"], float)
+    j = np.abs(fp[None, :] - truth[:, None]).argmin(axis=1)
+    ok = np.abs(fp[j] - truth) < 2.0
+    doc = cs.reference_solution(inst, lines, rng).to_dict()
+    doc["lines"] = [dict(doc["lines"][0], pixel=float(fp[k]),
+                         pixel_err=float(found["pixel_err"][k]), wavelength_ref=float(w))
+                    for k, w in zip(j[ok], lines["wavelength"][ok], strict=True)]  # fmt: skip
+    doc["fwhm_pixel"] = float(np.median(np.asarray(found["fwhm_pixel"], float)[j[ok]]))
+    solution = Solution.from_dict(doc, source="skewed reference")
+    shifts = rng.normal(0.0, 0.07, 12)  # a stable spectrometer: 0.07 px RMS
+    paths = [cs.write_text_exposure(tmp_path / f"s{i:02d}.txt",
+                                    skewed_counts(inst, lines, rng, s))
+             for i, s in enumerate(shifts)]  # fmt: skip
+    table = check.check_exposures(paths, solution, workers=1)
+    assert set(table["status"]) == {"pass"}, list(table["reasons"])
+    got = np.asarray(table["shift_px"], float)
+    assert np.max(np.abs(got - shifts)) < 0.03
+    assert np.all(np.asarray(table["n_fit"]) >= 0.8 * ok.sum())

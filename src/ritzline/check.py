@@ -332,22 +332,36 @@ class DriftFit:
 HUBER_K = 1.345  # Huber's tuning constant: 95 % efficiency for Gaussian errors (common practice)
 
 
-def _coarse_shift(found: np.ndarray, ref: np.ndarray, search: float, bin_px: float) -> float:
-    """The offset found - ref that lines up most lines (histogram vote of all pair offsets)."""
+def _coarse_shift(found: np.ndarray, ref: np.ndarray, search: float, bin_px: float,
+                  weight: np.ndarray | None = None) -> float:
+    """The offset found - ref that lines up most lines (histogram vote of all pair offsets,
+    each found line voting with its ``weight``)."""
     if found.size == 0 or ref.size == 0:
         return 0.0
     d = (found[:, None] - ref[None, :]).ravel()
-    d = d[np.abs(d) <= search]
+    wv = None if weight is None else np.repeat(np.asarray(weight, float), ref.size)
+    near = np.abs(d) <= search
+    d = d[near]
     if d.size == 0:
         return 0.0
+    wv = None if wv is None else wv[near]
     edges = np.arange(-search, search + bin_px, bin_px)
-    counts, edges = np.histogram(d, bins=edges)
+    counts, edges = np.histogram(d, bins=edges, weights=wv)
     # smooth over three bins so a vote split across a bin edge still wins
     smooth = np.convolve(counts, np.ones(3), mode="same")
     k = int(np.argmax(smooth))
     lo, hi = edges[max(k - 1, 0)], edges[min(k + 2, edges.size - 1)]
-    near = d[(d >= lo) & (d <= hi)]
-    return float(np.median(near)) if near.size else 0.0
+    sel = (d >= lo) & (d <= hi)
+    if not sel.any():
+        return 0.0
+    # weighted median: when a faint companion's votes share the window, the bright lines win
+    near = d[sel]
+    wn = np.ones(near.size) if wv is None else wv[sel]
+    order = np.argsort(near)
+    cum = np.cumsum(wn[order])
+    if cum[-1] <= 0:
+        return float(np.median(near))
+    return float(near[order][np.searchsorted(cum, 0.5 * cum[-1])])
 
 
 def _match_nearest(found: np.ndarray, predicted: np.ndarray, tol: float):
@@ -383,6 +397,7 @@ def fit_drift(
     match_px: float = 2.0,
     fit_mask: np.ndarray | None = None,
     clip: float = 5.0,
+    vote_weight: np.ndarray | None = None,
 ) -> DriftFit:
     """Match found lines to reference lines and fit shift + stretch, robustly.
 
@@ -404,6 +419,10 @@ def fit_drift(
         Lines outside the mask still count as matched.
     clip : float
         Lines farther than this many robust sigmas from the fit get no weight.
+    vote_weight : array, optional
+        Weight of each found line in the coarse-shift vote (e.g. its SNR, so that the
+        bright lines the reference lists outvote faint companions or unlisted lines);
+        equal by default.
 
     Returns
     -------
@@ -424,7 +443,10 @@ def fit_drift(
     rerr = np.asarray(ref_err, float)
     mask = np.ones(found.size, bool) if fit_mask is None else np.asarray(fit_mask, bool)
     nan = float("nan")
-    s0 = _coarse_shift(found[mask] if mask.any() else found, ref, search_px, match_px / 2)
+    vw = None if vote_weight is None else np.nan_to_num(np.asarray(vote_weight, float), nan=0.0)
+    pick = mask if mask.any() else np.ones(found.size, bool)
+    s0 = _coarse_shift(found[pick], ref, search_px, match_px / 2,
+                       None if vw is None else np.clip(vw[pick], 0.0, None))
     fi, ri = _match_nearest(found, ref + s0, match_px)
     empty = np.zeros(0, bool)
     if fi.size == 0:
@@ -673,7 +695,7 @@ class ExposureChecker:
         # finder may flag every line as blended; leaving them out left 1-5 lines and
         # shifts of tens of pixels.  Only the width statistics keep to clean lines (a
         # blend or a clipped top is no measure of the resolution), with every line as the
-        # fallback when none is clean.
+        # fallback when too few are clean to speak for the detector.
         fittable = np.isfinite(pixel) & np.isfinite(pixel_err)
         # a line wider than the reference LSF is only a *suspected* blend: a defocused
         # exposure widens every line, and that is what the FWHM check must see
@@ -683,7 +705,7 @@ class ExposureChecker:
         match = max(1.5, 0.8 * ref_fwhm) if ref_fwhm else 2.0
         fit = fit_drift(
             pixel, pixel_err, ref.pixel, ref.pixel_err, ref.centre,
-            search_px=search, match_px=match, fit_mask=fittable,
+            search_px=search, match_px=match, fit_mask=fittable, vote_weight=snr,
         )
         shift = fit.shift if np.isfinite(fit.shift) else fit.coarse_shift
         stretch = fit.stretch if np.isfinite(fit.stretch) else 0.0
@@ -708,11 +730,11 @@ class ExposureChecker:
             row["stretch_err"] = fit.stretch_err
             row["fit_rms_px"] = fit.rms
             fi_all, ri_all = fit.found_index[fit.used], fit.ref_index[fit.used]
-            for pick in (clean[fi_all], np.ones(fi_all.size, bool)):
-                w = fwhm[fi_all[pick]]
-                ok = np.isfinite(w) & (w > 0)
-                if ok.any():
-                    break
+            pick = clean[fi_all]
+            if pick.sum() < max(3, 0.25 * fi_all.size):
+                pick = np.ones(fi_all.size, bool)
+            w = fwhm[fi_all[pick]]
+            ok = np.isfinite(w) & (w > 0)
             if ok.any():
                 w = w[ok]
                 med = float(np.median(w))
@@ -742,8 +764,11 @@ class ExposureChecker:
             kw["instrument"] = self.reference.instrument
         else:
             kw["fwhm_guess"] = ref_fwhm
-        return find_lines(spectrum, min_snr=self.limits.detect_snr, saturation=sat_level,
-                          dark=self.reference.dark, **kw)
+        with warnings.catch_warnings():
+            # "no line reaches the threshold" is this check's own verdict, not a warning
+            warnings.simplefilter("ignore", UserWarning)
+            return find_lines(spectrum, min_snr=self.limits.detect_snr, saturation=sat_level,
+                              dark=self.reference.dark, **kw)
 
 
 # ---- files -------------------------------------------------------------------------------
