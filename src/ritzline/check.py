@@ -24,6 +24,7 @@ import time
 import warnings
 from collections.abc import Callable, Iterable, Iterator, Sequence
 from dataclasses import asdict, dataclass, field
+from dataclasses import replace as dataclasses_replace
 from pathlib import Path
 from typing import TYPE_CHECKING
 
@@ -41,6 +42,7 @@ __all__ = [
     "DriftFit",
     "ExposureChecker",
     "Inputs",
+    "MeasuredLines",
     "OutputLock",
     "OutputLockWarning",
     "Reference",
@@ -49,6 +51,7 @@ __all__ = [
     "find_exposures",
     "fit_drift",
     "judge",
+    "measure_known_lines",
     "read_journal",
     "reference_from_solution",
     "run_batch",
@@ -455,20 +458,20 @@ def fit_drift(
     x_all = ref - centre
 
     def solve(fi, ri, w):
-        """Weighted least squares of found - ref = shift + stretch * x with weights ``w``."""
-        sel = w > 0
-        x = x_all[ri][sel]
-        y = found[fi][sel] - ref[ri][sel]
-        ws = w[sel]
-        if sel.sum() >= 3 and np.ptp(x) > 0:
-            a = np.stack([np.ones_like(x), x], axis=1)
-            cov = np.linalg.inv(a.T @ (a * ws[:, None]))
-            p = cov @ (a.T @ (ws * y))
+        """Weighted least squares of found - ref = shift + stretch * x with weights ``w``
+        (the 2 x 2 normal equations solved in closed form)."""
+        x = x_all[ri]
+        y = found[fi] - ref[ri]
+        s0, s1, s2 = w.sum(), (w * x).sum(), (w * x * x).sum()
+        t0, t1 = (w * y).sum(), (w * x * y).sum()
+        det = s0 * s2 - s1 * s1
+        if np.count_nonzero(w) >= 3 and det > 1e-9 * s0 * s2:
+            cov = np.array([[s2, -s1], [-s1, s0]]) / det
+            p = cov @ np.array([t0, t1])
         else:
-            cov = np.array([[1.0 / ws.sum(), 0.0], [0.0, nan]])
-            p = np.array([np.sum(ws * y) / ws.sum(), 0.0])
-        resid = found[fi] - ref[ri] - (p[0] + p[1] * x_all[ri])
-        return p, cov, resid
+            cov = np.array([[1.0 / s0, 0.0], [0.0, nan]])
+            p = np.array([t0 / s0, 0.0])
+        return p, cov, y - (p[0] + p[1] * x)
 
     def inverse_variance(fi, ri):
         var = ferr[fi] ** 2 + rerr[ri] ** 2
@@ -491,7 +494,7 @@ def fit_drift(
     # an unseen blend or a spike cannot move the fit, and every other line counts.
     w0 = inverse_variance(fi, ri) * usable
     h = usable.astype(float)
-    for _ in range(30):
+    for _ in range(12):
         p, cov, resid = solve(fi, ri, w0 * h)
         u = resid * np.sqrt(w0)
         act = usable & (h > 0)
@@ -501,7 +504,7 @@ def fit_drift(
         new = np.where(usable & (z <= clip), new, 0.0)
         if not new.any():
             break
-        if np.allclose(new, h, atol=1e-4):
+        if np.max(np.abs(new - h)) < 1e-3:
             h = new
             break
         h = new
@@ -524,6 +527,356 @@ def fit_drift(
         used=keep,
         coarse_shift=s0,
     )
+
+
+# ---- measuring the reference lines where they are expected ------------------------------
+
+_FWHM_PER_SIGMA = 2.0 * np.sqrt(2.0 * np.log(2.0))  # Gaussian FWHM / sigma (textbook)
+_INV_SQRT2 = 1.0 / np.sqrt(2.0)
+_INV_SQRT2PI = 1.0 / np.sqrt(2.0 * np.pi)
+
+
+@dataclass(frozen=True)
+class MeasuredLines:
+    """Lines measured in one exposure (the columns the check uses from a line table)."""
+
+    pixel: np.ndarray
+    pixel_err: np.ndarray
+    fwhm_pixel: np.ndarray
+    snr: np.ndarray
+    flags: np.ndarray
+    n_found: int
+    ref_index: np.ndarray | None = None  # expected line measured, when measured by reference
+
+    def __len__(self) -> int:
+        return int(self.pixel.size)
+
+    @classmethod
+    def from_table(cls, lines) -> MeasuredLines:
+        return cls(
+            pixel=np.asarray(lines["pixel"], float),
+            pixel_err=np.asarray(lines["pixel_err"], float),
+            fwhm_pixel=np.asarray(lines["fwhm_pixel"], float),
+            snr=np.asarray(lines["snr"], float),
+            flags=np.asarray(lines["flags"], str),
+            n_found=len(lines),
+        )
+
+
+def _block_level(y: np.ndarray, valid: np.ndarray, block: int = 64, q: int = 30) -> np.ndarray:
+    """A smooth background under a lamp spectrum: the ``q``-th percentile of each block of
+    pixels, interpolated (lines fill a small fraction of each block)."""
+    n = y.size
+    nb = max(1, n // block)
+    block = n // nb
+    head = np.where(valid, y, np.nan)[: nb * block].reshape(nb, block)
+    if valid[: nb * block].all():
+        k = (q * (block - 1)) // 100
+        level = np.partition(head, k, axis=1)[:, k]
+    else:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", RuntimeWarning)
+            level = np.nanpercentile(head, q, axis=1)
+        fill = np.isfinite(level)
+        level = np.interp(np.arange(nb), np.flatnonzero(fill), level[fill]) if fill.any() \
+            else np.zeros(nb)
+    centres = (np.arange(nb) + 0.5) * block - 0.5
+    return np.interp(np.arange(n, dtype=float), centres, level)
+
+
+def _candidate_peaks(excess, valid, sigma_bg, fwhm, min_snr):
+    """Positions (px) and matched-filter significances of every line-like peak: maxima of
+    the excess convolved with the line profile, above ``min_snr`` and not a one-pixel spike.
+    """
+    from scipy.ndimage import maximum_filter1d
+
+    sig = fwhm / _FWHM_PER_SIGMA
+    half = max(1, int(np.ceil(2.5 * sig)))
+    t = np.arange(-half, half + 1, dtype=float)
+    kernel = np.exp(-0.5 * (t / sig) ** 2)
+    kernel /= np.sqrt(np.sum(kernel**2))
+    ex = np.where(valid, excess, 0.0)
+    z = np.convolve(ex, kernel, mode="same") / max(sigma_bg, 1e-12)
+    reach = max(1, round(0.5 * fwhm))
+    top = maximum_filter1d(z, 2 * reach + 1, mode="nearest")
+    left = np.concatenate(([-np.inf], z[:-1]))
+    idx = np.flatnonzero((z == top) & (z > left) & (z >= min_snr))
+    idx = idx[(idx > 0) & (idx < z.size - 1)]
+    if idx.size == 0:
+        return np.zeros(0), np.zeros(0)
+    # a cosmic-ray hit or hot pixel is narrower than any line the optics can make
+    raw = ex[idx]
+    side = np.maximum(ex[idx - 1], ex[idx + 1])
+    idx = idx[(side >= 0.15 * raw) | (fwhm < 1.5)]
+    zm, z0, zp = z[idx - 1], z[idx], z[idx + 1]
+    den = zm - 2.0 * z0 + zp
+    frac = np.where(den < 0, 0.5 * (zm - zp) / np.where(den < 0, den, -1.0), 0.0)
+    return idx + np.clip(frac, -0.5, 0.5), z0
+
+
+def _profile(edges, c, s, derivatives=True):
+    """Pixel-integrated unit Gaussian between consecutive pixel ``edges`` (last axis one
+    longer than the result) and its derivatives by the centre c and the sigma s."""
+    from scipy.special import ndtr
+
+    u = (edges - c) / s
+    cdf = ndtr(u)
+    g = cdf[..., 1:] - cdf[..., :-1]
+    if not derivatives:
+        return g, None, None
+    phi = _INV_SQRT2PI * np.exp(-0.5 * u * u)
+    dg_dc = -(phi[..., 1:] - phi[..., :-1]) / s
+    phiu = phi * u
+    dg_ds = -(phiu[..., 1:] - phiu[..., :-1]) / s
+    return g, dg_dc, dg_ds
+
+
+def measure_known_lines(
+    counts: np.ndarray,
+    valid: np.ndarray,
+    expected: np.ndarray,
+    fwhm: float,
+    *,
+    saturation: float | None = None,
+    variance=None,
+    min_snr: float = 5.0,
+    search_px: float = 25.0,
+    match_px: float = 2.0,
+    iterations: int = 8,
+) -> MeasuredLines:
+    """Measure lines where a reference says they are, instead of searching blind.
+
+    A matched filter finds the line-like peaks; their vote against ``expected`` gives the
+    coarse shift; then every expected line on the detector, and every other peak close
+    enough to disturb it, is fitted at once (pixel-integrated Gaussian plus a linear local
+    background, Gauss-Newton with the neighbours' current profiles subtracted, vectorised
+    over lines).  Saturated and masked samples carry no weight, so a clipped line is
+    measured from its wings.
+
+    Parameters
+    ----------
+    counts, valid : array
+        Counts (dark already subtracted) and the samples that may be used.
+    expected : array
+        Reference pixel of each expected line.
+    fwhm : float
+        Line FWHM (px) to start from.
+    saturation : float, optional
+        Samples at or above it are not fitted; lines touching them are flagged.
+    variance : callable(counts) -> array, optional
+        Noise variance per sample (an instrument model); without it the fit is unweighted
+        and each line's errors come from its own residuals.
+    min_snr : float
+        A line is found when its flux is at least this many standard errors.
+    search_px, match_px : float
+        Largest shift searched for, and largest distance of a fitted line from where the
+        coarse shift puts it.
+
+    Returns
+    -------
+    MeasuredLines
+        One entry per expected line that was found (in no particular order) and
+        ``n_found``, the number of distinct line-like features in the exposure.
+    """
+    y = np.where(valid, counts, 0.0)
+    n = y.size
+    clipped = (counts >= saturation) if saturation is not None else np.zeros(n, bool)
+    usable = valid & ~clipped
+    background = _block_level(counts, valid)
+    excess = y - background
+    d = np.diff(counts[valid])
+    sigma_bg = 1.4826 * float(np.median(np.abs(d - np.median(d)))) / np.sqrt(2.0) if d.size \
+        else 0.0
+    empty = MeasuredLines(*(np.zeros(0) for _ in range(4)), np.zeros(0, str), 0,
+                          np.zeros(0, int))
+    if not sigma_bg > 0:
+        # quantised, noiseless data: one count is the resolution of the measurement
+        sigma_bg = 1.0
+    peaks, z = _candidate_peaks(excess, valid, sigma_bg, fwhm, min_snr)
+    if peaks.size == 0 or expected.size == 0:
+        return dataclasses_replace(empty, n_found=int(peaks.size))
+    s0 = _coarse_shift(peaks, expected, search_px, match_px / 2, z)
+    predicted = expected + s0
+    sig_ref = fwhm / _FWHM_PER_SIGMA
+    on = (predicted > 1.0) & (predicted < n - 2.0)
+    ref_idx = np.flatnonzero(on)
+    if ref_idx.size == 0:
+        return dataclasses_replace(empty, n_found=int(peaks.size))
+    half = max(4, int(np.ceil(2.0 * fwhm)))
+    # other peaks near an expected line are fitted too, so that they do not pull it
+    pos_ref = predicted[ref_idx]
+    gap = np.abs(peaks[:, None] - pos_ref[None, :])
+    lonely = gap.min(axis=1) > 0.8 * fwhm
+    near = gap.min(axis=1) <= half + 3.0 * fwhm
+    extra = peaks[lonely & near]
+    centre = np.concatenate([pos_ref, extra])
+    m = centre.size
+    is_ref = np.zeros(m, bool)
+    is_ref[: ref_idx.size] = True
+    offsets = np.arange(-half, half + 1)
+    pix = np.rint(centre).astype(int)[:, None] + offsets[None, :]
+    inside = (pix >= 0) & (pix < n)
+    pix_c = np.clip(pix, 0, n - 1)
+    x = pix.astype(float)
+    yw = y[pix_c]
+    w = (usable[pix_c] & inside).astype(float)
+    if variance is not None:
+        var = np.asarray(variance(np.where(valid, counts, 0.0)), float)[pix_c]
+        w = w / np.where(var > 0, var, np.inf)
+    # neighbours whose profile reaches a line's window
+    reach = half + 3.0 * sig_ref
+    dist = np.abs(centre[:, None] - centre[None, :])
+    np.fill_diagonal(dist, np.inf)
+    n_nb = int((dist <= reach).sum(axis=1).max()) if m > 1 else 0
+    if n_nb:
+        nb = np.argsort(dist, axis=1)[:, :n_nb]
+        nb_ok = np.take_along_axis(dist, nb, axis=1) <= reach
+    c = centre.copy()
+    s = np.full(m, sig_ref)
+    b0 = background[np.clip(np.rint(centre).astype(int), 0, n - 1)]
+    b1 = np.zeros(m)
+    f = np.maximum(excess[np.clip(np.rint(centre).astype(int), 0, n - 1)], 0.0) * \
+        np.sqrt(2.0 * np.pi) * s
+    xc = x - centre[:, None]
+    edges = np.concatenate([x - 0.5, x[:, -1:] + 0.5], axis=1)
+    jac = np.empty((m, 2 * half + 1, 5))
+    jac[:, :, 3] = 1.0
+    jac[:, :, 4] = xc
+    eye = np.eye(5)[None]
+
+    def linearise():
+        """Residuals and Jacobian at the current parameters (neighbours held fixed)."""
+        g, dgc, dgs = _profile(edges, c[:, None], s[:, None])
+        model = b0[:, None] + b1[:, None] * xc + f[:, None] * g
+        if n_nb:
+            gn, _, _ = _profile(edges[:, None, :], c[nb][:, :, None], s[nb][:, :, None],
+                                derivatives=False)
+            model += np.einsum("mkw,mk->mw", gn, f[nb] * nb_ok)
+        jac[:, :, 0] = f[:, None] * dgc
+        jac[:, :, 1] = f[:, None] * dgs
+        jac[:, :, 2] = g
+        jw = jac * w[:, :, None]
+        return yw - model, jw, np.einsum("mwi,mwj->mij", jw, jac)
+
+    for _ in range(iterations):
+        r, jw, ata = linearise()
+        atr = np.einsum("mwi,mw->mi", jw, r)
+        damp = 1e-6 * np.einsum("mii->mi", ata) + 1e-30
+        try:
+            step = np.linalg.solve(ata + damp[:, :, None] * eye, atr[:, :, None])[:, :, 0]
+        except np.linalg.LinAlgError:
+            step = np.zeros((m, 5))
+        step = np.nan_to_num(step)
+        np.clip(step[:, 0], -0.5 * s, 0.5 * s, out=step[:, 0])
+        np.clip(step[:, 1], -0.3 * s, 0.3 * s, out=step[:, 1])
+        c = c + step[:, 0]
+        s = np.clip(s + step[:, 1], 0.3 * sig_ref, 3.0 * sig_ref)
+        f = f + step[:, 2]
+        b0 = b0 + step[:, 3]
+        b1 = b1 + step[:, 4]
+        if np.all(np.abs(step[:, 0]) < 1e-3 * s):
+            break
+    r, jw, ata = linearise()
+    n_used = (w > 0).sum(axis=1)
+    dof = np.maximum(n_used - 5, 1)
+    chi2 = np.sum(w * r * r, axis=1) / dof
+    scale = np.maximum(chi2, 1.0) if variance is not None else chi2
+    with np.errstate(invalid="ignore", divide="ignore"):
+        det_ok = np.ones(m, bool)
+        try:
+            cov = np.linalg.inv(ata) * scale[:, None, None]
+        except np.linalg.LinAlgError:  # a line without enough usable samples
+            det_ok = np.linalg.cond(ata) < 1e12
+            cov = np.linalg.pinv(ata) * scale[:, None, None]
+        c_err = np.sqrt(np.maximum(cov[:, 0, 0], 0))
+        f_err = np.sqrt(np.maximum(cov[:, 2, 2], 0))
+        snr = f / f_err
+    fwhm_fit = _FWHM_PER_SIGMA * s
+    found = (
+        is_ref & det_ok & (n_used >= 7) & np.isfinite(c) & np.isfinite(c_err) & (c_err > 0)
+        & (snr >= min_snr) & (np.abs(c - centre) <= match_px)
+        & (s > 0.31 * sig_ref) & (s < 2.99 * sig_ref)
+    )  # fmt: skip
+    core = np.abs(x - c[:, None]) <= max(1.0, 0.5 * fwhm)
+    touched = np.any(core & clipped[pix_c] & inside, axis=1)
+    flags = np.where(touched, "saturated", "")
+    # features: the expected lines found, and every other peak not sitting on one of them
+    if found.any():
+        taken = np.abs(peaks[:, None] - c[found][None, :]).min(axis=1) <= 0.8 * fwhm
+        n_found = int(found.sum() + np.count_nonzero(~taken))
+    else:
+        n_found = int(peaks.size)
+    return MeasuredLines(
+        pixel=c[found],
+        pixel_err=c_err[found],
+        fwhm_pixel=fwhm_fit[found],
+        snr=snr[found],
+        flags=flags[found],
+        n_found=n_found,
+        ref_index=ref_idx[found[: ref_idx.size]],
+    )
+
+
+@dataclass(frozen=True)
+class FinderScale:
+    """How the fit at expected positions relates to the line finder, per expected line.
+
+    The reference positions come from the line finder; a fit of a plain Gaussian at a
+    known position can centre an asymmetric or blended line differently, by a constant
+    amount per line.  ``offset`` (px, fit minus finder) and ``width_ratio`` are measured
+    once, on the first good exposure where both were run, and put every later fit on the
+    finder's scale, so drift and width are measured against the reference consistently.
+    """
+
+    offset: np.ndarray
+    width_ratio: float
+    source: str = ""
+
+    def digest(self) -> str:
+        h = hashlib.sha256(np.ascontiguousarray(self.offset, float).tobytes())
+        h.update(repr(self.width_ratio).encode())
+        return h.hexdigest()[:16]
+
+
+def finder_scale(checker: ExposureChecker, paths: Sequence[str | os.PathLike], *,
+                 tries: int = 5) -> FinderScale | None:
+    """Measure a :class:`FinderScale` on the first of ``paths`` (at most ``tries``) where
+    the line finder and the fit at expected positions both match enough expected lines;
+    None when none does."""
+    from .spectrum import read_spectrum, spectrum_arrays
+
+    ref, limits = checker.reference, checker.limits
+    for path in list(paths)[:tries]:
+        try:
+            spectrum = read_spectrum(path)
+        except Exception:
+            continue
+        arrays = spectrum_arrays(spectrum)
+        if arrays.counts.size != ref.n_pixels:
+            continue
+        found = checker._lines(spectrum, arrays, "search")
+        fast = checker._lines(spectrum, arrays, "expected")
+        if found is None or fast is None or not len(fast) or fast.ref_index is None:
+            continue
+        fit = fit_drift(found.pixel, found.pixel_err, ref.pixel, ref.pixel_err, ref.centre,
+                        search_px=checker.search_px, match_px=checker.match_px,
+                        vote_weight=found.snr)  # fmt: skip
+        if fit.n_used < limits.min_lines:
+            continue
+        finder_at = np.full(ref.pixel.size, np.nan)
+        finder_at[fit.ref_index] = found.pixel[fit.found_index]
+        finder_w = np.full(ref.pixel.size, np.nan)
+        finder_w[fit.ref_index] = found.fwhm_pixel[fit.found_index]
+        d = fast.pixel - finder_at[fast.ref_index]
+        both = np.isfinite(d) & (np.abs(d) < checker.match_px)
+        if both.sum() < limits.min_lines:
+            continue
+        offset = np.full(ref.pixel.size, float(np.median(d[both])))
+        offset[fast.ref_index[both]] = d[both]
+        ratio = float(np.median(fast.fwhm_pixel[both] / finder_w[fast.ref_index[both]]))
+        return FinderScale(offset=offset, width_ratio=ratio if ratio > 0 else 1.0,
+                           source=str(path))
+    return None
 
 
 # ---- per-exposure check -----------------------------------------------------------------
@@ -605,6 +958,12 @@ def _blank_row(file: str) -> dict:
     return row
 
 
+# How an exposure's lines are measured: "expected" fits the reference's lines where the
+# coarse shift puts them (fast; a matched filter still counts every line-like peak);
+# "search" runs the blind line finder (peaks.find_lines) on the whole exposure.
+MEASURE_METHODS = ("expected", "search")
+
+
 @dataclass(frozen=True, eq=False)
 class ExposureChecker:
     """Checks one exposure file against a :class:`Reference`; picklable, built once per run.
@@ -616,12 +975,22 @@ class ExposureChecker:
 
     reference: Reference
     limits: CheckLimits = CheckLimits()
+    method: str = "expected"
+    scale: FinderScale | None = None
+
+    def __post_init__(self) -> None:
+        if self.method not in MEASURE_METHODS:
+            raise RitzlineError(
+                f"unknown line measurement {self.method!r}; use one of {', '.join(MEASURE_METHODS)}"
+            )
 
     def fingerprint(self) -> dict:
         return {
             "reference": self.reference.digest(),
             "limits": asdict(self.limits),
             "lamps": list(self.reference.lamps),
+            "method": self.method,
+            "finder_scale": self.scale.digest() if self.scale is not None else None,
         }
 
     def __call__(self, path: str) -> dict:
@@ -669,13 +1038,14 @@ class ExposureChecker:
         good = ~arrays.mask
         if sat_level is not None:
             row["saturated_pixels"] = int(np.count_nonzero(arrays.counts[good] >= sat_level))
-        counts = arrays.counts[good]
-        if counts.size == 0 or np.ptp(counts) == 0:  # a constant frame: nothing to find
-            lines = None
-        else:
-            lines = self._find_lines(spectrum, ref_fwhm, sat_level)
+        lines = self._lines(spectrum, arrays, self.method)
+        if lines is not None and lines.ref_index is not None and self.scale is not None:
+            lines = dataclasses_replace(
+                lines, pixel=lines.pixel - self.scale.offset[lines.ref_index],
+                fwhm_pixel=lines.fwhm_pixel / self.scale.width_ratio)  # fmt: skip
+        search, match = self.search_px, self.match_px
         if lines is None or len(lines) == 0:
-            row["n_found"] = 0
+            row["n_found"] = 0 if lines is None else lines.n_found
             row["n_lines"] = 0
             row["n_fit"] = 0
             on = (ref.pixel >= 0) & (ref.pixel <= ref.n_pixels - 1)
@@ -684,11 +1054,8 @@ class ExposureChecker:
             status, reasons = judge(row, limits, ref.centre)
             row["status"], row["reasons"] = status, "; ".join(reasons)
             return
-        pixel = np.asarray(lines["pixel"], float)
-        pixel_err = np.asarray(lines["pixel_err"], float)
-        fwhm = np.asarray(lines["fwhm_pixel"], float)
-        snr = np.asarray(lines["snr"], float)
-        flags = np.asarray(lines["flags"], str)
+        pixel, pixel_err, fwhm = lines.pixel, lines.pixel_err, lines.fwhm_pixel
+        snr, flags = lines.snr, lines.flags
         # Every matched line enters the drift fit with its own centroid error (which grows
         # with its measured width), blended and saturated ones included: the robust fit
         # down-weights the few that disagree.  On an instrument with asymmetric lines the
@@ -700,9 +1067,7 @@ class ExposureChecker:
         # a line wider than the reference LSF is only a *suspected* blend: a defocused
         # exposure widens every line, and that is what the FWHM check must see
         clean = np.char.strip(np.char.replace(flags, "blend_suspect", ""), ", ") == ""
-        row["n_found"] = int(pixel.size)
-        search = max(25.0, 3.0 * limits.max_shift_px)
-        match = max(1.5, 0.8 * ref_fwhm) if ref_fwhm else 2.0
+        row["n_found"] = int(lines.n_found)
         fit = fit_drift(
             pixel, pixel_err, ref.pixel, ref.pixel_err, ref.centre,
             search_px=search, match_px=match, fit_mask=fittable, vote_weight=snr,
@@ -752,6 +1117,35 @@ class ExposureChecker:
         status, reasons = judge(row, limits, ref.centre)
         row["status"] = status
         row["reasons"] = "; ".join(reasons)
+
+    @property
+    def search_px(self) -> float:
+        """Largest shift searched for (px)."""
+        return max(25.0, 3.0 * self.limits.max_shift_px)
+
+    @property
+    def match_px(self) -> float:
+        """Largest distance (px) of a line from where the coarse shift puts it."""
+        fwhm = self.reference.fwhm_px
+        return max(1.5, 0.8 * fwhm) if np.isfinite(fwhm) and fwhm > 0 else 2.0
+
+    def _lines(self, spectrum, arrays, method: str) -> MeasuredLines | None:
+        """The exposure's lines by ``method``; None for a constant frame (nothing to find)."""
+        ref, limits = self.reference, self.limits
+        good = ~arrays.mask
+        counts = arrays.counts[good]
+        if counts.size == 0 or np.ptp(counts) == 0:
+            return None
+        ref_fwhm = ref.fwhm_px if np.isfinite(ref.fwhm_px) and ref.fwhm_px > 0 else None
+        sat_level = arrays.meta.get("saturation") or limits.saturation
+        if method == "expected" and ref_fwhm:
+            y = arrays.counts if ref.dark is None else arrays.counts - ref.dark
+            return measure_known_lines(
+                y, good, ref.pixel, ref_fwhm, saturation=sat_level,
+                variance=getattr(ref.instrument, "variance", None), min_snr=limits.detect_snr,
+                search_px=self.search_px, match_px=self.match_px,
+            )  # fmt: skip
+        return MeasuredLines.from_table(self._find_lines(spectrum, ref_fwhm, sat_level))
 
     def _find_lines(self, spectrum, ref_fwhm, sat_level):
         """The line table of one exposure: the reference's instrument model when the
@@ -1575,6 +1969,7 @@ def check_exposures(
     pattern: str | None = None,
     progress: Callable[[int, int], None] | None = None,
     figures: bool = True,
+    method: str = "expected",
 ) -> Table:
     """Check exposures against a reference solution; return the summary table.
 
@@ -1606,6 +2001,10 @@ def check_exposures(
         Progress callback.
     figures : bool
         Draw the figures and the HTML report (needs ``outdir``).
+    method : {"expected", "search"}
+        How each exposure's lines are measured: ``"expected"`` fits the reference's lines
+        where they are expected (fast; see :func:`measure_known_lines`), ``"search"`` runs
+        the blind line finder on the whole exposure.
 
     Returns
     -------
@@ -1619,7 +2018,9 @@ def check_exposures(
     found = find_exposures(paths, pattern=pattern, exclude=outdir)
     files = found.files
     reference = reference_from_solution(solution, lamp=lamp, dark=dark)
-    checker = ExposureChecker(reference, limits)
+    checker = ExposureChecker(reference, limits, method)
+    if method == "expected":
+        checker = dataclasses_replace(checker, scale=finder_scale(checker, files))
     meta = {
         "ritzline_version": __version__,
         "reference_solution": reference.source or "(in memory)",
@@ -1629,6 +2030,11 @@ def check_exposures(
         "medium": reference.medium,
         "lamps": list(reference.lamps),
         "expected_lines": "lamp list" if lamp is not None else "reference matches",
+        "line_measurement": method + (
+            f" (put on the line finder's scale with {checker.scale.source})"
+            if checker.scale is not None else ""),
+        "instrument_model": "from the solution" if reference.instrument is not None
+        else "none (noise and width estimated per exposure)",
         "dark": str(dark) if isinstance(dark, (str, os.PathLike)) else bool(dark is not None),
         "thresholds": asdict(limits),
         "drift_model": "line at reference pixel p appears at p + shift_px + stretch*(p - centre),"
@@ -1669,7 +2075,8 @@ def _finish_check(result: BatchResult, outdir, limits: CheckLimits, meta: dict, 
         write_table(table, out / "summary.ecsv")
         rate = result.n_run / result.elapsed if result.elapsed > 0 else float("nan")
         ref_keys = ("reference_solution", "reference_fwhm_px", "reference_resolving_power",
-                    "n_pixels", "medium", "lamps", "expected_lines", "dark")
+                    "n_pixels", "medium", "lamps", "expected_lines", "line_measurement",
+                    "instrument_model", "dark")
         info = {
             "totals": totals,
             "thresholds": asdict(limits),

@@ -628,10 +628,14 @@ def _incomplete_banner(missing: int, total: int, outdir: str, why: str) -> None:
               help="Skip exposures already checked into OUTDIR by an interrupted run.")
 @click.option("--pattern", default=None, metavar="GLOB", help="Files to take from folders, "
               "e.g. '*.fits' or '**/*.txt' (default: usual spectrum suffixes).")
+@click.option("--measure", type=click.Choice(["expected", "search"]), default="expected",
+              show_default=True, help="How lines are measured: 'expected' fits the reference's "
+              "lines where they are expected (fast); 'search' runs the blind line finder on "
+              "every exposure.")
 @click.option("--strict", is_flag=True, help="Exit 1 on warnings too.")
 @handle_errors
 def check(inputs, solution_path, lamp, dark, outdir, workers, dask_scheduler, max_shift,
-          max_fwhm_change, min_lines, max_masked, resume, pattern, strict) -> None:
+          max_fwhm_change, min_lines, max_masked, resume, pattern, measure, strict) -> None:
     """Check exposures against a reference solution: drift, width, saturation, missing lines.
 
     INPUTS are exposure files or folders; files that are not spectra by their name
@@ -678,7 +682,7 @@ def check(inputs, solution_path, lamp, dark, outdir, workers, dask_scheduler, ma
             table = check_exposures(
                 inputs, solution_path, lamp=list(lamp) or None, dark=dark, limits=limits,
                 outdir=outdir, workers=workers, dask_scheduler=dask_scheduler, resume=resume,
-                pattern=pattern, progress=progress,
+                pattern=pattern, progress=progress, method=measure,
             )
     except KeyboardInterrupt:
         if progress_cm is not None:
