@@ -953,3 +953,72 @@ def test_a_stable_series_with_asymmetric_lines_passes(tmp_path):
     got = np.asarray(table["shift_px"], float)
     assert np.max(np.abs(got - shifts)) < 0.03
     assert np.all(np.asarray(table["n_fit"]) >= 0.8 * ok.sum())
+
+
+# ---- the fit at expected positions --------------------------------------------------------
+
+
+def known_line_frames(rng, n_frames, shift, *, flux=2.0e5, fwhm=2.6, saturation=None):
+    from ritzline.synthetic import integrated_gaussians, observe
+
+    inst, lines = cs.bench_instrument(fwhm), cs.bench_lines()
+    ref = inst.pixel(lines["wavelength"])
+    true = ref + shift
+    frames = [observe(150.0 + integrated_gaussians(inst.n_pixels, true, flux * lines["intensity"],
+                                                   fwhm), rng, gain=1.5, read_noise=6.0,
+                      saturation=saturation) for _ in range(n_frames)]  # fmt: skip
+    return ref, true, frames
+
+
+def test_known_line_fit_centroids_agree_with_truth_within_their_errors(rng):
+    # truth: the positions put into the synthetic frames; the pulls (error / quoted error)
+    # of an honest estimator have unit scatter (common practice)
+    ref, true, frames = known_line_frames(rng, 20, shift=1.37)
+    pulls = []
+    for counts in frames:
+        m = check.measure_known_lines(counts, np.ones(counts.size, bool), ref, 2.6)
+        assert m.ref_index.size == ref.size  # every line found
+        pulls.append((m.pixel - true[m.ref_index]) / m.pixel_err)
+        assert np.all(np.abs(m.fwhm_pixel - 2.6) < 0.15)
+        assert m.n_found == ref.size
+    pulls = np.concatenate(pulls)
+    assert abs(np.mean(pulls)) < 0.15 and 0.8 < np.std(pulls) < 1.25
+
+
+def test_known_line_fit_measures_a_saturated_line_from_its_wings(rng):
+    ref, true, frames = known_line_frames(rng, 3, shift=-0.6, flux=3.5e5, saturation=65535.0)
+    for counts in frames:
+        assert np.count_nonzero(counts >= 65535.0) > 10
+        m = check.measure_known_lines(counts, np.ones(counts.size, bool), ref, 2.6,
+                                      saturation=65535.0)
+        sat = np.char.find(m.flags.astype(str), "saturated") >= 0
+        assert sat.any() and (~sat).any()
+        err = np.abs(m.pixel - true[m.ref_index])
+        assert np.all(err[sat] < 5 * m.pixel_err[sat] + 0.02)
+        # the flag marks exactly the lines with clipped samples at their centre
+        clipped = counts[np.rint(true[m.ref_index]).astype(int)] >= 65535.0
+        assert np.array_equal(sat, clipped)
+
+
+def test_known_line_fit_reports_a_missing_line_as_not_found(rng):
+    from ritzline.synthetic import integrated_gaussians, observe
+
+    inst, lines = cs.bench_instrument(), cs.bench_lines()
+    ref = inst.pixel(lines["wavelength"])
+    keep = np.ones(ref.size, bool)
+    keep[[3, 17]] = False
+    counts = observe(150.0 + integrated_gaussians(inst.n_pixels, ref[keep],
+                                                  2e5 * lines["intensity"][keep], 2.6), rng,
+                     gain=1.5, read_noise=6.0)  # fmt: skip
+    m = check.measure_known_lines(counts, np.ones(counts.size, bool), ref, 2.6)
+    assert sorted(set(range(ref.size)) - set(m.ref_index.tolist())) == [3, 17]
+
+
+def test_both_measurements_recover_the_known_shifts(bench):
+    truth = bench["shifts"]
+    for method in check.MEASURE_METHODS:
+        table = check.check_exposures(bench["paths"], bench["solution"], workers=1,
+                                      method=method)
+        got = np.asarray(table["shift_px"], float)
+        assert np.sqrt(np.mean((got - truth) ** 2)) < 0.02, method
+        assert table.meta["line_measurement"].startswith(method)

@@ -642,7 +642,7 @@ def measure_known_lines(
     min_snr: float = 5.0,
     search_px: float = 25.0,
     match_px: float = 2.0,
-    iterations: int = 8,
+    iterations: int = 6,
 ) -> MeasuredLines:
     """Measure lines where a reference says they are, instead of searching blind.
 
@@ -758,29 +758,60 @@ def measure_known_lines(
         jw = jac * w[:, :, None]
         return yw - model, jw, np.einsum("mwi,mwj->mij", jw, jac)
 
-    for _ in range(iterations):
-        r, jw, ata = linearise()
-        atr = np.einsum("mwi,mw->mi", jw, r)
-        damp = 1e-6 * np.einsum("mii->mi", ata) + 1e-30
-        try:
-            step = np.linalg.solve(ata + damp[:, :, None] * eye, atr[:, :, None])[:, :, 0]
-        except np.linalg.LinAlgError:
-            step = np.zeros((m, 5))
-        step = np.nan_to_num(step)
-        np.clip(step[:, 0], -0.5 * s, 0.5 * s, out=step[:, 0])
-        np.clip(step[:, 1], -0.3 * s, 0.3 * s, out=step[:, 1])
-        c = c + step[:, 0]
-        s = np.clip(s + step[:, 1], 0.3 * sig_ref, 3.0 * sig_ref)
-        f = f + step[:, 2]
-        b0 = b0 + step[:, 3]
-        b1 = b1 + step[:, 4]
-        if np.all(np.abs(step[:, 0]) < 1e-3 * s):
-            break
+    def iterate(n_iter):
+        nonlocal c, s, f, b0, b1
+        for _ in range(n_iter):
+            r, jw, ata = linearise()
+            atr = np.einsum("mwi,mw->mi", jw, r)
+            damp = 1e-6 * np.einsum("mii->mi", ata) + 1e-30
+            try:
+                step = np.linalg.solve(ata + damp[:, :, None] * eye, atr[:, :, None])[:, :, 0]
+            except np.linalg.LinAlgError:
+                step = np.zeros((m, 5))
+            step[~np.isfinite(step)] = 0.0
+            np.clip(step[:, 0], -0.5 * s, 0.5 * s, out=step[:, 0])
+            np.clip(step[:, 1], -0.3 * s, 0.3 * s, out=step[:, 1])
+            c = c + step[:, 0]
+            s = np.clip(s + step[:, 1], 0.3 * sig_ref, 3.0 * sig_ref)
+            f = f + step[:, 2]
+            b0 = b0 + step[:, 3]
+            b1 = b1 + step[:, 4]
+            if np.all(np.abs(step[:, 0]) < 1e-3 * s):
+                break
+
+    iterate(iterations)
+    if variance is None:
+        # No noise model: the variance of a sample is the background noise plus a photon
+        # term proportional to the line signal there, var = sigma_bg^2 + k * signal (common
+        # practice for counting detectors); k comes from the residuals of this first,
+        # unweighted fit (least squares of r^2 / (1 - leverage) - sigma_bg^2 on the signal:
+        # the fit follows its high-leverage samples, whose residuals understate the noise).
+        # Twice: the second time from the residuals of the weighted fit.
+        usable_w = w > 0
+        for _ in range(2):
+            r, jw, ata = linearise()
+            g, _, _ = _profile(edges, c[:, None], s[:, None], derivatives=False)
+            signal = np.maximum(f[:, None] * g, 0.0)
+            try:
+                lev = np.einsum("mwi,mij,mwj->mw", jw, np.linalg.inv(ata), jac)
+            except np.linalg.LinAlgError:
+                lev = np.zeros_like(r)
+            use = usable_w & (f[:, None] > 0) & (lev < 0.95)
+            # E[r^2] = variance * (1 - h), h the diagonal of the (weighted) hat matrix
+            r2 = r[use] ** 2 / (1.0 - lev[use])
+            den = float(np.sum(signal[use] ** 2))
+            k = max(float(np.sum((r2 - sigma_bg**2) * signal[use])) / den, 0.0) \
+                if den > 0 else 0.0
+            w = usable_w / (sigma_bg**2 + k * signal)
+            iterate(3)
     r, jw, ata = linearise()
     n_used = (w > 0).sum(axis=1)
     dof = np.maximum(n_used - 5, 1)
-    chi2 = np.sum(w * r * r, axis=1) / dof
-    scale = np.maximum(chi2, 1.0) if variance is not None else chi2
+    chi2 = np.sum(w * r * r, axis=1)
+    # one noise scale for the exposure (every line's own chi-square would be noisy)
+    fitted = (n_used >= 7) & (f > 0) & np.isfinite(chi2)
+    scale_all = float(np.sum(chi2[fitted]) / np.sum(dof[fitted])) if fitted.any() else 1.0
+    scale = np.full(m, max(scale_all, 1.0) if variance is not None else scale_all)
     with np.errstate(invalid="ignore", divide="ignore"):
         det_ok = np.ones(m, bool)
         try:
