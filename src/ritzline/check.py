@@ -663,9 +663,9 @@ def measure_known_lines(
         Line FWHM (px) to start from.
     saturation : float, optional
         Samples at or above it are not fitted; lines touching them are flagged.
-    variance : callable(counts) -> array, optional
-        Noise variance per sample (an instrument model); without it the fit is unweighted
-        and each line's errors come from its own residuals.
+    variance : array, optional
+        Noise variance (ADU^2) of every sample, from an instrument model; without it the
+        variance is background noise plus a photon term estimated from the fit residuals.
     min_snr : float
         A line is found when its flux is at least this many standard errors.
     search_px, match_px : float
@@ -721,7 +721,7 @@ def measure_known_lines(
     yw = y[pix_c]
     w = (usable[pix_c] & inside).astype(float)
     if variance is not None:
-        var = np.asarray(variance(np.where(valid, counts, 0.0)), float)[pix_c]
+        var = np.asarray(variance, float)[pix_c]
         w = w / np.where(var > 0, var, np.inf)
     # neighbours whose profile reaches a line's window
     reach = half + 3.0 * sig_ref
@@ -796,22 +796,28 @@ def measure_known_lines(
                 lev = np.einsum("mwi,mij,mwj->mw", jw, np.linalg.inv(ata), jac)
             except np.linalg.LinAlgError:
                 lev = np.zeros_like(r)
-            use = usable_w & (f[:, None] > 0) & (lev < 0.95)
+            use = usable_w & (f[:, None] > 0) & (lev < 0.95) & np.isfinite(r) & \
+                np.isfinite(signal)
             # E[r^2] = variance * (1 - h), h the diagonal of the (weighted) hat matrix
             r2 = r[use] ** 2 / (1.0 - lev[use])
             den = float(np.sum(signal[use] ** 2))
-            k = max(float(np.sum((r2 - sigma_bg**2) * signal[use])) / den, 0.0) \
-                if den > 0 else 0.0
+            k = float(np.sum((r2 - sigma_bg**2) * signal[use])) / den if den > 0 else 0.0
+            k = k if np.isfinite(k) and k > 0 else 0.0
             w = usable_w / (sigma_bg**2 + k * signal)
             iterate(3)
     r, jw, ata = linearise()
     n_used = (w > 0).sum(axis=1)
     dof = np.maximum(n_used - 5, 1)
     chi2 = np.sum(w * r * r, axis=1)
-    # one noise scale for the exposure (every line's own chi-square would be noisy)
-    fitted = (n_used >= 7) & (f > 0) & np.isfinite(chi2)
-    scale_all = float(np.sum(chi2[fitted]) / np.sum(dof[fitted])) if fitted.any() else 1.0
-    scale = np.full(m, max(scale_all, 1.0) if variance is not None else scale_all)
+    # One noise scale for the exposure, the median reduced chi-square (every line's own
+    # would be noisy); a line fitted far worse than the rest (a spike on it, an unlisted
+    # neighbour) keeps its own, larger one.
+    red = chi2 / dof
+    fitted = (n_used >= 7) & (f > 0) & np.isfinite(red)
+    scale_all = float(np.median(red[fitted])) if fitted.any() else 1.0
+    if variance is not None:
+        scale_all = max(scale_all, 1.0)
+    scale = np.where(np.isfinite(red) & (red > 3.0 * scale_all), red, scale_all)
     with np.errstate(invalid="ignore", divide="ignore"):
         det_ok = np.ones(m, bool)
         try:
@@ -1171,10 +1177,12 @@ class ExposureChecker:
         sat_level = arrays.meta.get("saturation") or limits.saturation
         if method == "expected" and ref_fwhm:
             y = arrays.counts if ref.dark is None else arrays.counts - ref.dark
+            variance = None
+            if hasattr(ref.instrument, "variance"):  # of the raw counts, offset included
+                variance = ref.instrument.variance(np.where(good, arrays.counts, 0.0))
             return measure_known_lines(
-                y, good, ref.pixel, ref_fwhm, saturation=sat_level,
-                variance=getattr(ref.instrument, "variance", None), min_snr=limits.detect_snr,
-                search_px=self.search_px, match_px=self.match_px,
+                y, good, ref.pixel, ref_fwhm, saturation=sat_level, variance=variance,
+                min_snr=limits.detect_snr, search_px=self.search_px, match_px=self.match_px,
             )  # fmt: skip
         return MeasuredLines.from_table(self._find_lines(spectrum, ref_fwhm, sat_level))
 
