@@ -153,6 +153,37 @@ def _emg_pdf(d, sigma, tau):
     return np.where(u > 0, scaled, direct)
 
 
+def _split_normal_cdf(d, hl, hr):
+    wl = hl / (hl + hr)
+    sl, sr = hl / _HWHM_PER_SIGMA, hr / _HWHM_PER_SIGMA
+    return np.where(d < 0, 2.0 * wl * ndtr(d / sl), wl + 2.0 * (1.0 - wl) * (ndtr(d / sr) - 0.5))
+
+
+def _split_cauchy_cdf(d, hl, hr):
+    wl = hl / (hl + hr)
+    return np.where(d < 0, wl * (1.0 + (2 / np.pi) * np.arctan(d / hl)),
+                    wl + (1.0 - wl) * (2 / np.pi) * np.arctan(d / hr))
+
+
+def _tail_cdf(d, hl, hr, shape: LineShape):
+    sigma = 0.5 * (hl + hr) / _HWHM_PER_SIGMA
+    if shape.tail_side >= 0:
+        return _emg_cdf(d, sigma, shape.tail_length)
+    return 1.0 - _emg_cdf(-d, sigma, shape.tail_length)
+
+
+def _components(shape: LineShape):
+    """(weight, CDF(d, hl, hr), kind) of each part of the profile that carries flux."""
+    eta = shape.lorentz_fraction
+    t = shape.tail_fraction if shape.has_tail else 0.0
+    parts = [((1.0 - eta) * (1.0 - t), _split_normal_cdf, "core")]
+    if t > 0:
+        parts.append(((1.0 - eta) * t, lambda d, hl, hr: _tail_cdf(d, hl, hr, shape), "tail"))
+    if eta > 0:
+        parts.append((eta, _split_cauchy_cdf, "wings"))
+    return [p for p in parts if p[0] > 0]
+
+
 def profile_cdf(d, hwhm_left, hwhm_right, shape: LineShape) -> np.ndarray:
     """Fraction of a line's flux below offset ``d`` (px) from its mode.
 
@@ -163,25 +194,8 @@ def profile_cdf(d, hwhm_left, hwhm_right, shape: LineShape) -> np.ndarray:
     d = np.asarray(d, float)
     hl = np.asarray(hwhm_left, float)
     hr = np.asarray(hwhm_right, float)
-    wl = hl / (hl + hr)
-    wr = 1.0 - wl
-    neg = d < 0
-    sl, sr = hl / _HWHM_PER_SIGMA, hr / _HWHM_PER_SIGMA
-    core = np.where(neg, 2.0 * wl * ndtr(d / sl), wl + 2.0 * wr * (ndtr(d / sr) - 0.5))
-    if shape.has_tail:
-        sigma = 0.5 * (sl + sr)
-        if shape.tail_side >= 0:
-            tail = _emg_cdf(d, sigma, shape.tail_length)
-        else:
-            tail = 1.0 - _emg_cdf(-d, sigma, shape.tail_length)
-        core = (1.0 - shape.tail_fraction) * core + shape.tail_fraction * tail
-    eta = shape.lorentz_fraction
-    if eta > 0:
-        with np.errstate(divide="ignore"):
-            wings = np.where(neg, wl * (1.0 + (2 / np.pi) * np.arctan(d / hl)),
-                             wl + wr * (2 / np.pi) * np.arctan(d / hr))
-        core = (1.0 - eta) * core + eta * wings
-    return core
+    with np.errstate(divide="ignore"):
+        return sum(w * cdf(d, hl, hr) for w, cdf, _ in _components(shape))
 
 
 def profile_density(d, hwhm_left, hwhm_right, shape: LineShape) -> np.ndarray:
@@ -204,32 +218,33 @@ def profile_density(d, hwhm_left, hwhm_right, shape: LineShape) -> np.ndarray:
     return out
 
 
-def _window_half(shape: LineShape, hl: np.ndarray, hr: np.ndarray, n_pixels: int) -> int:
-    """Half width (px) of the window that holds all but ~1e-15 of the core and tail; the
-    Lorentzian wings, when present, are rendered over the whole detector."""
-    if shape.lorentz_fraction > 0:
-        return int(n_pixels) + 1
+def _window_half(kind: str, shape: LineShape, hl: np.ndarray, hr: np.ndarray) -> int:
+    """Half width (px) of the window holding all but ~1e-13 of a profile component."""
     sigma = max(float(np.max(hl, initial=0)), float(np.max(hr, initial=0))) / _HWHM_PER_SIGMA
     half = 8.5 * sigma
-    if shape.has_tail:
-        half += 36.0 * shape.tail_length
+    if kind == "tail":
+        half += 30.0 * shape.tail_length
+    elif kind == "peak":
+        half = 2.0 * FWHM_PER_SIGMA * sigma + (3.0 * shape.tail_length if shape.has_tail else 0)
     return int(np.ceil(half)) + 1
 
 
-def _line_windows(n_pixels: int, centres, fluxes, shape: LineShape, *, chunk: int = 2_000_000):
-    """Yield (line indices, pixel indices, counts) windows of pixel-integrated lines, a chunk
-    of lines at a time so that the temporaries stay small."""
-    hl, hr = _half_widths(shape, centres, n_pixels)
-    half = _window_half(shape, hl, hr, n_pixels)
-    offsets = np.arange(-half, half + 1)
-    per = max(1, chunk // offsets.size)
+def _windows(n_pixels: int, centres, hl, hr, cdf, half: int | None, *, chunk: int = 2_000_000):
+    """Yield (line slice, pixel indices, fraction of each line's flux per pixel) of one
+    profile component, a chunk of lines at a time so the temporaries stay small; ``half``
+    None: every pixel of the detector (Lorentzian wings)."""
+    if half is None:
+        offsets, width = np.arange(n_pixels), n_pixels
+    else:
+        offsets, width = np.arange(-half, half + 1), 2 * half + 1
+    per = max(1, chunk // width)
     for start in range(0, centres.size, per):
         sl = slice(start, start + per)
         c = centres[sl, None]
-        pix = np.rint(c).astype(int) + offsets[None, :]
-        hi = profile_cdf(pix + 0.5 - c, hl[sl, None], hr[sl, None], shape)
-        lo = profile_cdf(pix - 0.5 - c, hl[sl, None], hr[sl, None], shape)
-        yield np.arange(centres.size)[sl], pix, fluxes[sl, None] * (hi - lo)
+        pix = offsets[None, :] if half is None else np.rint(c).astype(int) + offsets[None, :]
+        a, b = hl[sl, None], hr[sl, None]
+        with np.errstate(divide="ignore"):
+            yield sl, pix, cdf(pix + 0.5 - c, a, b) - cdf(pix - 0.5 - c, a, b)
 
 
 def line_profiles(
@@ -263,11 +278,24 @@ def line_profiles(
     fluxes = np.broadcast_to(np.asarray(fluxes, float), centres.shape)
     out = np.zeros(n_pixels)
     top = np.zeros(centres.size)
-    if centres.size:
-        for idx, pix, contrib in _line_windows(n_pixels, centres, fluxes, shape):
+    if centres.size == 0:
+        return (out, top) if peaks else out
+    hl, hr = _half_widths(shape, centres, n_pixels)
+    for weight, cdf, kind in _components(shape):
+        half = None if kind == "wings" else _window_half(kind, shape, hl, hr)
+        for sl, pix, frac in _windows(n_pixels, centres, hl, hr, cdf, half):
+            contrib = (weight * fluxes[sl])[:, None] * frac
+            if half is None:
+                out += contrib.sum(axis=0)
+                continue
             ok = (pix >= 0) & (pix < n_pixels)
-            np.add.at(out, pix[ok], contrib[ok])
-            top[idx] = np.where(ok, contrib, 0.0).max(axis=1)
+            out += np.bincount(pix[ok], weights=contrib[ok], minlength=n_pixels)
+    if peaks:
+        whole = lambda d, a, b: profile_cdf(d, a, b, shape)  # noqa: E731
+        half = _window_half("peak", shape, hl, hr)
+        for sl, pix, frac in _windows(n_pixels, centres, hl, hr, whole, half):
+            ok = (pix >= 0) & (pix < n_pixels)
+            top[sl] = np.where(ok, fluxes[sl, None] * frac, 0.0).max(axis=1)
     return (out, top) if peaks else out
 
 
@@ -279,7 +307,7 @@ def profile_fwhm(shape: LineShape, hwhm_left, hwhm_right) -> np.ndarray:
     if not shape.has_tail:
         return hl + hr
     span = 4.0 * (hl + hr)[:, None] + 12.0 * shape.tail_length
-    grid = np.linspace(-1.0, 1.0, 4001)[None, :] * span
+    grid = np.linspace(-1.0, 1.0, 1601)[None, :] * span
     dens = profile_density(grid, hl[:, None], hr[:, None], shape)
     half = 0.5 * dens.max(axis=1)[:, None]
     above = dens >= half
@@ -352,6 +380,9 @@ class Detector:
         Dark-signal non-uniformity: relative rms of the fixed pixel-to-pixel dark pattern.
     n_hot : int
         Hot pixels: dark charge drawn log-uniformly in ``hot_level`` (ADU).
+    pattern_seed : int
+        Seed of the fixed pattern (DSNU and hot pixels): every exposure of one detector,
+        dark frames included, shows the same pattern.
     spike_rate : float
         Mean number of single-pixel cosmic-ray hits per scan (Poisson); each deposits a
         charge drawn log-uniformly in ``spike_level`` (ADU).
@@ -375,6 +406,7 @@ class Detector:
     dsnu: float = 0.0
     n_hot: int = 0
     hot_level: tuple[float, float] = (50.0, 3000.0)
+    pattern_seed: int = 0
     spike_rate: float = 0.0
     spike_level: tuple[float, float] = (100.0, 20000.0)
     full_well: float | None = None
@@ -474,8 +506,9 @@ def read_out(
     Per scan: Poisson electrons of light + dark charge (``gain`` electrons per ADU),
     cosmic-ray hits, full-well clip with blooming, offset (and odd/even step), Gaussian read
     noise (``read_noise`` ADU rms), ADC rounding and clip; then the mean of the scans, and
-    optionally the offset and dark removed.  The dark pattern and hot pixels are drawn
-    first and are the same in every scan.
+    optionally the offset and dark removed.  The dark pattern and hot pixels come from the
+    detector's ``pattern_seed`` (the same in every scan and every exposure); everything
+    else from ``rng``.  A dark frame is ``read_out(np.zeros(n), ...)``.
 
     Returns
     -------
@@ -486,13 +519,15 @@ def read_out(
     light = np.clip(np.asarray(light, float), 0.0, None).copy()
     n = light.size
     light[: det.n_black] = 0.0
+    pattern = np.random.default_rng(det.pattern_seed)
     dark = np.full(n, float(det.dark))
     if det.dsnu > 0:
-        dark *= np.clip(1.0 + det.dsnu * rng.standard_normal(n), 0.0, None)
-    hot = np.sort(rng.choice(n, size=det.n_hot, replace=False)) if det.n_hot else np.zeros(0, int)
+        dark *= np.clip(1.0 + det.dsnu * pattern.standard_normal(n), 0.0, None)
+    hot = np.zeros(0, int)
     if det.n_hot:
+        hot = np.sort(pattern.choice(n, size=det.n_hot, replace=False))
         lo, hi = np.log(det.hot_level)
-        dark[hot] += np.exp(rng.uniform(lo, hi, det.n_hot))
+        dark[hot] += np.exp(pattern.uniform(lo, hi, det.n_hot))
     offset = det.offset + det.odd_even * (np.arange(n) % 2)
     scans = max(int(det.n_scans), 1)
 
@@ -1059,6 +1094,7 @@ def random_detector(rng: np.random.Generator, *, averaged_probability: float = 0
         dark=float(rng.uniform(0.0005, 0.02)) * room,
         dsnu=float(rng.uniform(0.02, 0.15)),
         n_hot=int(rng.integers(0, 7)),
+        pattern_seed=int(rng.integers(2**31)),
         hot_level=(0.005 * room, 0.3 * room),
         spike_rate=0.5,
         spike_level=(max(20.0 * read_noise, 0.002 * room), 0.5 * room),
