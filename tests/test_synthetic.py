@@ -22,6 +22,7 @@ from ritzline.synthetic import (
     broad_bands,
     fluorescent_lamp_exposure,
     integrated_gaussians,
+    lamp_exposure,
     line_profiles,
     observe,
     profile_cdf,
@@ -380,6 +381,22 @@ def test_instrument_with_a_detector_renders_through_it():
     assert np.median(counts[:20]) == pytest.approx(1000.0, abs=5)
     p = ins.pixel(470.0)
     assert counts[round(float(p))] > 3000.0
+
+
+def test_lamp_exposure_on_a_detector_saturates_exactly_the_lines_it_says():
+    # a 14-bit ADC writes 16383 at most; the truth's saturated lines are those that reach it
+    det = Detector(offset=1200.0, adc_bits=14, dark=20.0, dsnu=0.05)
+    ins = Instrument(n_pixels=3648, coeffs=(609.0, 271.5, -2.6, -1.9), fwhm_px=3.0, gain=4.0,
+                     read_noise=3.0, background=0.0, saturation=16383.0, detector=det,
+                     shape=LineShape(fwhm=(3.0, 0.6), asymmetry=(0.2,)))
+    counts, truth = lamp_exposure(ins, "Ne", np.random.default_rng(27), saturate=(0.1, 0.1),
+                                  spikes=(0, 0))
+    assert np.array_equal(counts, np.rint(counts)) and counts.min() > 1200.0 - 30.0
+    near = np.rint(truth.pixel).astype(int)[:, None] + np.arange(-1, 2)[None, :]
+    top = counts[np.clip(near, 0, ins.n_pixels - 1)].max(axis=1)
+    assert truth.saturated.sum() >= 2
+    assert np.all(top[truth.saturated] == 16383.0)
+    assert np.all(top[~truth.saturated & truth.resolved] < 16383.0)  # not in a blend
 
 
 def test_realistic_lamp_exposure_truth_matches_the_noise_free_counts():

@@ -1,10 +1,15 @@
 """Synthetic spectra with known truth, for tests, benchmarks and the demo data.
 
-The detector model: each line is a Gaussian line-spread function integrated over every
+The basic detector model: each line is a Gaussian line-spread function integrated over every
 pixel (pixel ``i`` spans ``[i - 0.5, i + 0.5]``), on a smooth background, observed with
 Poisson photon noise (electrons = counts x gain) plus Gaussian read noise, clipped at a
-saturation level.  Nothing here is a measurement; it exists so that the other stages can
-be checked against a truth they did not see.
+saturation level.  The realistic model adds what real spectrometers do: a line shape whose
+width and asymmetry change across the detector, with Lorentzian wings and an exponential
+tail (:class:`LineShape`); broad bands; and a detector with an electronic offset,
+optical-black pixels, dark charge with its fixed pattern, hot pixels, cosmic-ray hits,
+full-well blooming, two read-out channels, an ADC, averaged scans and dark correction
+(:class:`Detector`, :func:`read_out`).  Nothing here is a measurement; it exists so that
+the other stages can be checked against a truth they did not see.
 """
 
 from dataclasses import dataclass, field
@@ -13,12 +18,32 @@ import numpy as np
 from scipy.special import erf, erfc, erfcx, log_ndtr, ndtr
 
 __all__ = [
+    "Detector",
+    "ExposureTruth",
     "Instrument",
     "LampTruth",
+    "LineShape",
+    "ReadoutTruth",
+    "bloom",
+    "broad_bands",
+    "busy_spectrum",
+    "fluorescent_instrument",
+    "fluorescent_lamp_exposure",
     "integrated_gaussians",
     "lamp_exposure",
+    "line_profiles",
     "observe",
+    "profile_cdf",
+    "profile_density",
+    "profile_fwhm",
+    "profile_mean",
+    "random_detector",
     "random_instrument",
+    "random_line_shape",
+    "read_out",
+    "realistic_instrument",
+    "realistic_lamp_exposure",
+    "spectral_response",
 ]
 
 _SQRT2 = np.sqrt(2.0)
@@ -958,23 +983,6 @@ class BusyTruth:
     spike_pixel: np.ndarray
 
 
-def _bloom(expected: np.ndarray, level: float, right: float = 0.5) -> np.ndarray:
-    """Spill charge above ``level`` into the neighbouring pixels until none is left.
-
-    A fraction ``right`` of each pixel's excess goes to the next pixel, the rest to the
-    previous one (0.5: symmetric blooming).
-    """
-    out = expected.copy()
-    for _ in range(10 * out.size):
-        over = np.clip(out - level, 0, None)
-        if not over.any():
-            break
-        out -= over
-        out[:-1] += (1.0 - right) * over[1:]
-        out[1:] += right * over[:-1]
-    return out
-
-
 def busy_spectrum(
     rng: np.random.Generator,
     *,
@@ -1031,7 +1039,7 @@ def busy_spectrum(
     centre, flux = centre[inside], flux[inside]
     lines = integrated_gaussians(n, centre, flux, fw)
     right = 0.5 + bloom_asymmetry * rng.uniform(-1.0, 1.0) if bloom_asymmetry else 0.5
-    expected = _bloom(lines + continuum + dark, sat, right)
+    expected = bloom(lines + continuum + dark, sat, right)
     saturated = flux * peak_frac + np.interp(centre, np.arange(n), continuum + dark) > sat
     counts = observe(expected, rng, gain=gain, read_noise=rn, saturation=sat)
     spikes = rng.choice(np.arange(n), size=n_spikes, replace=False)
