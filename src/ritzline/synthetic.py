@@ -1174,8 +1174,10 @@ class ExposureTruth:
     ``lines`` is an astropy Table, one row per rendered line (lamp lines and unlisted
     extra lines) sorted by pixel: ``kind`` ("lamp" | "extra"), ``index`` (row in the lamp
     list, -1 for extras), ``wavelength`` (air nm), ``pixel`` (mode of the core),
-    ``centroid`` (pixel + mean of core and tail), ``flux`` (ADU, over an infinite detector,
-    per scan), ``flux_e`` (electrons), ``peak`` (largest expected pixel, ADU), ``fwhm``
+    ``centroid`` (pixel + mean of core and tail), ``flux`` (the line's expected counts in
+    the file, ADU, over an infinite detector; the mean of averaged scans keeps it),
+    ``flux_e`` (electrons per scan), ``peak`` (the line's largest expected pixel on the
+    detector, ADU, without continuum or dark), ``fwhm``
     (px, of the whole profile), ``fwhm_nm``, ``asymmetry``, ``lorentz_fraction``,
     ``tail_fraction``, ``snr`` (expected matched-filter SNR of the line alone, Gaussian
     approximation), ``saturated`` (expected peak above full well or the ADC limit),
@@ -1185,7 +1187,8 @@ class ExposureTruth:
     at least 1 FWHM from the ends, resolved, unsaturated, no artefact, SNR >= 10).
 
     ``bands`` (Table: ``centre_nm``, ``fwhm_nm``, ``flux``, ``pixel``) lists the broad
-    features; ``continuum`` the expected light per pixel without the lines (ADU);
+    features; ``continuum`` the expected light per pixel without the lines (ADU; bands,
+    hump and the instrument's flat ``background``);
     ``readout`` the detector's part (offset, dark, hot pixels, spikes, variance);
     ``axis_nm`` a wavelength axis as a file might carry it, ``axis_shift_px`` pixels off
     (``axis_nm[i]`` is the true wavelength at pixel ``i + axis_shift_px``); ``flags`` which
@@ -1267,12 +1270,8 @@ def _render_exposure(
     kinds = np.array(["lamp"] * wl.size + ["extra"] * n_extra)
 
     unit, unit_peak = line_profiles(n, centres, rel_all, shape, peaks=True)
-    room = det.full_well if det.full_well is not None else np.inf
-    if det.adc_max is not None:
-        room = min(room, det.adc_max - det.offset - abs(det.odd_even))
-    if instrument.saturation is not None and det.adc_max is None:
-        room = min(room, instrument.saturation - det.offset - instrument.background)
-    room -= det.dark * (1 + 3 * det.dsnu)
+    sat = instrument.saturation if instrument.saturation is not None else 65535.0
+    _, room, _ = _detector_headroom(instrument, sat)
     brightest = unit_peak.max() if unit_peak.size else 1.0
     saturating = rng.random() < saturate_probability
     level = rng.uniform(1.2, 6.0) if saturating else rng.uniform(*peak_fraction)
@@ -1296,6 +1295,7 @@ def _render_exposure(
         continuum = continuum + unit_band * b_scale
         band_rows = Table({"centre_nm": b_c, "fwhm_nm": b_f, "flux": b_rel * b_scale,
                            "pixel": instrument.pixel(b_c)})
+    continuum = continuum + instrument.background
     counts, rt = read_out(signal + continuum, rng, gain=gain,
                           read_noise=instrument.read_noise, detector=det)
     if instrument.saturation is not None and det.adc_max is None:
