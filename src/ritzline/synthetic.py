@@ -18,6 +18,8 @@ import numpy as np
 from scipy.special import erf, erfc, erfcx, log_ndtr, ndtr
 
 __all__ = [
+    "PHOSPHOR_BANDS",
+    "PHOSPHOR_PEAKS",
     "Detector",
     "ExposureTruth",
     "Instrument",
@@ -1478,7 +1480,7 @@ def fluorescent_instrument(rng: np.random.Generator) -> Instrument:
 
 
 #: Broad phosphor bands of an invented three-band fluorescent lamp: (centre nm, FWHM nm,
-#: relative flux) ranges, plus a weak wide hump.  Invented for the synthetic lamp.
+#: relative peak height) ranges; a blue band, green and red bands and a weak wide hump.
 PHOSPHOR_BANDS = (
     ((440.0, 460.0), (30.0, 40.0), (0.4, 1.0)),
     ((535.0, 550.0), (10.0, 20.0), (0.5, 1.2)),
@@ -1486,28 +1488,45 @@ PHOSPHOR_BANDS = (
     ((480.0, 600.0), (35.0, 40.0), (0.1, 0.4)),
 )
 
+#: Narrower phosphor emission peaks (rare-earth multiplets blended by the spectrometer), a
+#: few nm wide: several times a line's width, far narrower than the bands.  Positions
+#: recalled from memory of green- and red-emitting phosphors; widths and heights invented.
+PHOSPHOR_PEAKS = (
+    ((486.0, 490.0), (3.0, 6.0), (0.2, 0.5)),
+    ((541.0, 545.0), (2.5, 5.0), (0.8, 1.6)),
+    ((585.0, 590.0), (2.0, 4.0), (0.2, 0.5)),
+    ((609.0, 613.0), (2.0, 4.0), (1.0, 2.0)),
+    ((625.0, 632.0), (2.0, 4.0), (0.15, 0.4)),
+    ((705.0, 712.0), (2.0, 5.0), (0.1, 0.3)),
+)
+
 
 def fluorescent_lamp_exposure(
     rng: np.random.Generator,
     *,
     instrument: Instrument | None = None,
-    band_level: tuple[float, float] = (0.15, 0.8),
+    band_level: tuple[float, float] = (0.3, 1.2),
+    phosphor_peaks: bool = True,
     saturate_probability: float = 0.0,
     peak_fraction: tuple[float, float] = (0.3, 0.9),
     axis_error_px: float = 0.0,
 ) -> tuple[np.ndarray, ExposureTruth]:
-    """A fluorescent-lamp exposure: the mercury lines standing on broad phosphor bands.
+    """A fluorescent-lamp exposure: the mercury lines standing on phosphor emission.
 
     Every listed Hg line on the detector is rendered (none missing, no extras) with the
-    instrument's line shape; the bands (:data:`PHOSPHOR_BANDS`, Gaussians 10-40 nm wide)
-    reach ``band_level`` of the brightest line's peak.  ``truth.bands`` lists them.
+    instrument's line shape, on the broad bands of :data:`PHOSPHOR_BANDS` (Gaussians
+    10-40 nm wide) and, with ``phosphor_peaks``, the narrower :data:`PHOSPHOR_PEAKS`
+    (2-6 nm: some 15-45 px on the default instrument, several line widths).  The
+    phosphor light peaks at ``band_level`` of the brightest line's peak.  ``truth.bands``
+    lists every band and peak; ``truth.lines`` only the mercury lines.
     """
     if instrument is None:
         instrument = fluorescent_instrument(rng)
     wl, rel, listed, index, drop = _lamp_on_detector(
         instrument, "Hg", rng, (0.0, 0.0), 0.3, 300.0, None, unlisted=0.03)
+    table = PHOSPHOR_BANDS + (PHOSPHOR_PEAKS if phosphor_peaks else ())
     ranges = np.asarray([[r[0][0], r[0][1], r[1][0], r[1][1], r[2][0], r[2][1]]
-                         for r in PHOSPHOR_BANDS])
+                         for r in table])
     centres = rng.uniform(ranges[:, 0], ranges[:, 1])
     widths = rng.uniform(ranges[:, 2], ranges[:, 3])
     fluxes = rng.uniform(ranges[:, 4], ranges[:, 5]) * widths
