@@ -25,6 +25,7 @@ from ritzline.synthetic import (
     lamp_exposure,
     line_profiles,
     observe,
+    position_crlb,
     profile_cdf,
     profile_density,
     profile_fwhm,
@@ -454,3 +455,35 @@ def test_fluorescent_lamp_puts_narrow_mercury_lines_on_broad_bands():
     band_fwhm_px = bands["fwhm_nm"] / np.abs(truth.instrument.dispersion(bands["pixel"]))
     assert np.all(band_fwhm_px > 2 * lines["fwhm"].max())
     assert np.all(band_fwhm_px[wide] > 10 * lines["fwhm"].max())
+
+
+def test_position_bound_of_a_photon_limited_line_is_sigma_over_root_n():
+    # with photon noise alone (variance = mean, in electrons) the centroid of a Gaussian of
+    # width sigma made of N photons cannot be known better than sigma / sqrt(N); pixels of
+    # width 1 raise sigma^2 by about 1/12 (textbook; e.g. R. E. Thompson, D. R. Larson,
+    # W. W. Webb, Biophys. J. 82 (2002) 2775 - citation from memory)
+    n, c, flux, sigma = 400, 200.3, 1e6, 5.0
+    shape = LineShape(fwhm=(sigma * FWHM_PER_SIGMA,))
+    mean = line_profiles(n, [c], [flux], shape)
+    # a negligible read variance keeps the far wings (where mean underflows) finite
+    bound = position_crlb(n, [c], [flux], shape, mean + 1e-3)[0]
+    assert bound == pytest.approx(np.sqrt(sigma**2 + 1 / 12) / np.sqrt(flux), rel=0.01)
+
+
+def test_position_bound_on_a_flat_background_follows_the_gaussian_integral():
+    # constant variance v per pixel: I = F^2 / v * integral g'(x)^2 dx = F^2 / (4 sqrt(pi)
+    # sigma^3 v) for a unit Gaussian g, so the bound is sqrt(4 sqrt(pi) sigma^3 v) / F
+    # (textbook integral; pixelation neglected for sigma = 6 px)
+    n, c, flux, sigma, v = 600, 300.0, 5e4, 6.0, 400.0
+    shape = LineShape(fwhm=(sigma * FWHM_PER_SIGMA,))
+    bound = position_crlb(n, [c], [flux], shape, np.full(n, v))[0]
+    assert bound == pytest.approx(np.sqrt(4 * np.sqrt(np.pi) * sigma**3 * v) / flux, rel=0.01)
+
+
+def test_position_bound_ignores_clipped_pixels():
+    n, shape = 200, LineShape(fwhm=(3.0,))
+    all_pixels = position_crlb(n, [100.0], [1e5], shape, np.full(n, 100.0))[0]
+    core_lost = np.zeros(n, bool)
+    core_lost[98:103] = True
+    assert position_crlb(n, [100.0], [1e5], shape, np.full(n, 100.0),
+                         ignore=core_lost)[0] > all_pixels

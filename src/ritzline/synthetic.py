@@ -35,6 +35,7 @@ __all__ = [
     "lamp_exposure",
     "line_profiles",
     "observe",
+    "position_crlb",
     "profile_cdf",
     "profile_density",
     "profile_fwhm",
@@ -324,6 +325,44 @@ def line_profiles(
             ok = (pix >= 0) & (pix < n_pixels)
             top[sl] = np.where(ok, fluxes[sl, None] * frac, 0.0).max(axis=1)
     return (out, top) if peaks else out
+
+
+def position_crlb(
+    n_pixels: int,
+    centres: np.ndarray,
+    fluxes: np.ndarray,
+    shape: LineShape,
+    variance: np.ndarray,
+    *,
+    ignore: np.ndarray | None = None,
+) -> np.ndarray:
+    """Cramer-Rao bound (px) on each line's position when its shape, flux and background
+    are known: ``1 / sqrt(sum_i (d mu_i / d p)^2 / variance_i)`` over the pixels of the
+    line, Gaussian noise of the given per-pixel ``variance`` (ADU^2).  For a symmetric
+    profile the position decouples from flux, width and background, so this is also the
+    bound of a fit of all four.  Pixels marked in ``ignore`` (clipped, bloomed) carry no
+    information.
+    """
+    centres = np.atleast_1d(np.asarray(centres, float))
+    fluxes = np.broadcast_to(np.asarray(fluxes, float), centres.shape)
+    info = np.zeros(centres.size)
+    if centres.size == 0:
+        return info
+    weight = 1.0 / np.asarray(variance, float)
+    if ignore is not None:
+        weight = np.where(ignore, 0.0, weight)
+    hl, hr = _half_widths(shape, centres, n_pixels)
+    half = _window_half("tail" if shape.has_tail else "core", shape, hl, hr)
+
+    def density(d, a, b):  # its differences at pixel edges are d(pixel fraction)/d(centre)
+        return profile_density(d, a, b, shape)
+
+    for sl, pix, slope in _windows(n_pixels, centres, hl, hr, density, half):
+        ok = (pix >= 0) & (pix < n_pixels)
+        w = np.where(ok, weight[np.clip(pix, 0, n_pixels - 1)], 0.0)
+        info[sl] = np.sum(w * (fluxes[sl, None] * slope) ** 2, axis=1)
+    with np.errstate(divide="ignore"):
+        return 1.0 / np.sqrt(info)
 
 
 def profile_fwhm(shape: LineShape, hwhm_left, hwhm_right) -> np.ndarray:
@@ -1179,14 +1218,16 @@ class ExposureTruth:
     ``centroid`` (pixel + mean of core and tail), ``flux`` (the line's expected counts in
     the file, ADU, over an infinite detector; the mean of averaged scans keeps it),
     ``flux_e`` (electrons per scan), ``peak`` (the line's largest expected pixel on the
-    detector, ADU, without continuum or dark), ``fwhm``
-    (px, of the whole profile), ``fwhm_nm``, ``asymmetry``, ``lorentz_fraction``,
-    ``tail_fraction``, ``snr`` (expected matched-filter SNR of the line alone, Gaussian
-    approximation), ``saturated`` (expected peak above full well or the ADC limit),
-    ``bloomed`` (a bloomed pixel within 1 FWHM), ``resolved`` (no other line within 1.5
-    FWHM), ``artefact_nearby`` (a hot pixel or spike within 1.5 FWHM), ``visible`` (on the
-    light-sensitive part of the detector), ``usable`` (lamp line listed usable, visible,
-    at least 1 FWHM from the ends, resolved, unsaturated, no artefact, SNR >= 10).
+    detector, ADU, without continuum or dark), ``fwhm`` (px, of the whole profile),
+    ``fwhm_nm``, ``asymmetry``, ``lorentz_fraction``, ``tail_fraction``, ``snr`` (expected
+    matched-filter SNR of the line alone, Gaussian approximation), ``crlb`` (Cramer-Rao
+    bound on the position, px, see :func:`position_crlb`; clipped and bloomed pixels
+    excluded, infinite when nothing is left), ``saturated`` (expected peak above full well
+    or the ADC limit), ``bloomed`` (a bloomed pixel within 1 FWHM), ``resolved`` (no other
+    line within 1.5 FWHM), ``artefact_nearby`` (a hot pixel or spike within 1.5 FWHM),
+    ``visible`` (on the light-sensitive part of the detector), ``usable`` (lamp line listed
+    usable, visible, at least 1 FWHM from the ends, resolved, unsaturated, no artefact,
+    SNR >= 10).
 
     ``bands`` (Table: ``centre_nm``, ``fwhm_nm``, ``flux``, ``pixel``) lists the broad
     features; ``continuum`` the expected light per pixel without the lines (ADU; bands,
@@ -1306,6 +1347,8 @@ def _render_exposure(
     hl, hr = _half_widths(shape, centres, n)
     fwhm = profile_fwhm(shape, hl, hr)
     centroid = centres + profile_mean(shape, hl, hr)
+    crlb = position_crlb(n, centres, flux, shape, rt.variance,
+                         ignore=rt.clipped | rt.bloomed)
     near = np.clip(np.rint(centres), 0, n - 1).astype(int)
     bg = (continuum + rt.dark)[near]
     var_bg = (bg / gain + instrument.read_noise**2
@@ -1343,6 +1386,7 @@ def _render_exposure(
         "lorentz_fraction": np.full(centres.size, shape.lorentz_fraction),
         "tail_fraction": np.full(centres.size, shape.tail_fraction if shape.has_tail else 0.0),
         "snr": snr,
+        "crlb": crlb,
         "saturated": saturated,
         "bloomed": bloomed,
         "resolved": resolved,
