@@ -37,10 +37,9 @@ _GROUP_SEPARATION = 2.0  # lines closer than this many FWHM are fitted jointly
 _WINDOW_HALF = 4.0  # fit window half-width beyond the outer lines, in FWHM
 _MAX_COMPONENTS = 8  # larger groups are cut into runs of this many components
 _MAX_ITER = 20
-_WING_REACH = 2.5  # FWHM beyond a clipped run whose pixels are left out of fits
 _MAX_WIDTH = 3.5  # components wider than this many LSF FWHM are rejected
 _SATURATION_MARGIN = 0.97
-_CLIPPED_ERR_PER_PX = 0.15  # centroid allowance per clipped pixel (blooming asymmetry)
+_NONLINEAR = 0.9  # of the saturation level: pixels above are left out of fits
 
 
 def _cat(*parts):
@@ -655,6 +654,9 @@ def _fit_batch(groups, state, ctx, noise, neighbours_model, tol, final):
     b0 = np.zeros(n_g)
     # The local line shape at each component: LSF sigma, skew, Lorentzian fraction.
     sig_lsf, alpha, eta = ctx.shape_at(c)
+    # A clipped line keeps the LSF width: its unclipped wings fix centre and flux, not width.
+    sat = state.saturated[m]
+    s = np.where(sat, sig_lsf, s)
     # The groups' own current models (b0 = 0) also start the fit.
     start = _profile_and_jacobian(edges, b0, c, s, f, alpha, eta)
     others = neighbours_model[xi] - start[0]
@@ -663,8 +665,9 @@ def _fit_batch(groups, state, ctx, noise, neighbours_model, tol, final):
     base_level = bg_glob + others
     c_lo = groups.lo[:, None] - 0.5
     c_hi = groups.hi[:, None] + 0.5
-    s_lo = 0.2 * sig_lsf
-    s_hi = np.maximum(6.0 * sig_lsf, (groups.hi - groups.lo)[:, None] / 4.0)
+    s_lo = np.where(sat, 0.999 * sig_lsf, 0.2 * sig_lsf)
+    s_hi = np.where(sat, 1.001 * sig_lsf,
+                    np.maximum(6.0 * sig_lsf, (groups.hi - groups.lo)[:, None] / 4.0))
     valid_f = valid.astype(float)
     fixed = {"y": y, "valid_f": valid_f, "edges": edges, "base_level": base_level,
              "c_lo": c_lo, "c_hi": c_hi, "s_hi": s_hi, "s_lo": s_lo}
@@ -746,7 +749,7 @@ def _fit_batch(groups, state, ctx, noise, neighbours_model, tol, final):
     state.converged[comp] = converged[:, None]
     state.group_size[comp] = k
     # Groups whose widths all match the LSF (no unresolved blend) inform the noise estimate.
-    lsf_like = (k == 1) & (np.abs(s[:, 0] / sig_lsf[:, 0] - 1.0) < 0.15)
+    lsf_like = (k == 1) & (np.abs(s[:, 0] / sig_lsf[:, 0] - 1.0) < 0.15) & ~sat.any(axis=1)
     use = valid & lsf_like[:, None]
     return {
         "x": xi[use], "resid": resid[use], "lev": lev[use], "level": (base_level + model)[use],
@@ -773,6 +776,7 @@ class _State:
         self.converged = np.zeros(n, bool)
         self.group_size = np.ones(n, int)
         self.one_pixel = np.zeros(n, bool)
+        self.saturated = np.zeros(n, bool)
 
     def subset(self, keep):
         """The components where the boolean mask ``keep`` is True (copies, every attribute)."""
@@ -780,9 +784,10 @@ class _State:
         new.__dict__.update({name: value[keep] for name, value in self.__dict__.items()})
         return new
 
-    def extend(self, centre, sigma, flux):
+    def extend(self, centre, sigma, flux, saturated=False):
         new = _State(_cat(self.centre, centre), _cat(self.sigma, sigma),
                      _cat(self.flux, flux))
+        new.saturated = _cat(self.saturated, np.broadcast_to(saturated, np.shape(centre)))
         return new
 
 
@@ -1576,21 +1581,23 @@ def _find_lines(spectrum, *, min_snr, fwhm_guess, saturation, gain, read_noise, 
     sigma_lsf = fwhm / FWHM_PER_SIGMA
     shape = None if shape_coeffs is None else _shape_from_coeffs(shape_coeffs, n)
     if saturated_px.any():
-        # The wings of a clipped line are not modelled: keep them out of every other fit.
-        ok &= ~_near_saturation(sat_zone, np.arange(n), fwhm, _WING_REACH)
+        # A clipped line is fitted to its unclipped wings; pixels close to full well (where
+        # detectors lose linearity) are left out with the clipped ones.
+        ok &= ~(valid & (raw >= _NONLINEAR * float(saturation)))
 
     # Detection: matched filter on the background-subtracted counts.
     weight = np.where(ok, 1.0 / noise.variance(bg), 0.0)
     f_mf, snr_mf = _matched_filter(excess, weight, fwhm)
     cand = _local_maxima(snr_mf, 0.7 * min_snr)
-    # Lines whose cores are clipped are measured from their clipped runs (see _clipped_lines);
-    # no other candidate is taken inside a run or within 1.5 FWHM of it.
+    # Each clipped run is one line (added below); no other candidate is taken inside a run or
+    # within 1.5 FWHM of it.
     if saturated_px.any():
         cand = cand[~_near_saturation(sat_zone, cand, fwhm)]
     cand_c = cand.astype(float)
     cand_f = f_mf[cand]
-    clipped = _clipped_lines(counts, bg, saturated_px, float(saturation or 0.0), fwhm, noise)
-    if cand_c.size == 0 and clipped["pixel"].size == 0:
+    clip_c, clip_f = _clipped_runs(counts, bg, saturated_px, float(saturation or 0.0),
+                                   sigma_lsf)
+    if cand_c.size == 0 and clip_c.size == 0:
         meta.update(_meta_tail(noise, fwhm, None, lsf_method, rejected, 0, min_snr))
         meta["instrument"] = _instrument_record(noise, n, fwhm, lsf_method, flags, instrument,
                                             offset_source, shape_coeffs)
@@ -1602,7 +1609,11 @@ def _find_lines(spectrum, *, min_snr, fwhm_guess, saturation, gain, read_noise, 
     shift = np.where(den < 0, 0.5 * (zl - zr) / np.where(den < 0, den, -1), 0.0)
     cand_c = cand_c + np.clip(shift, -0.5, 0.5)
     state = _State(cand_c, np.full(cand_c.size, sigma_lsf), cand_f)
-    n_candidates = int(cand_c.size + clipped["pixel"].size)
+    if clip_c.size:
+        clip_s = np.full(clip_c.size, sigma_lsf) if shape is None else shape.sigma[
+            np.clip(np.rint(clip_c), 0, n - 1).astype(int)]
+        state = state.extend(clip_c, clip_s, clip_f, saturated=True)
+    n_candidates = int(state.centre.size)
     ctx = _Context(n=n, excess=excess, background=bg, ok=ok, sigma_lsf=sigma_lsf, shape=shape)
 
     # Pass 1; in an uncrowded spectrum its residuals already give the slope (1/gain).
@@ -1708,10 +1719,10 @@ def _find_lines(spectrum, *, min_snr, fwhm_guess, saturation, gain, read_noise, 
         "block quantile (25%, corrected to the mean) then block median of the spectrum "
         f"minus the fitted lines, blocks of {max(12.0, 8.0 * fwhm):.0f} px, linear "
         "interpolation; plus a constant offset fitted in each line window")
-    if state.centre.size == 0 and clipped["pixel"].size == 0:
+    if state.centre.size == 0:
         return empty(f"no line reaches min_snr={min_snr:g} after fitting")
 
-    table = _table_from_state(state, ctx, fwhm, clipped, meta, n, noise)
+    table = _table_from_state(state, ctx, fwhm, meta, n, noise)
     if has_wavelength:
         table = attach_wavelengths(table, _AxisSolution(arr.axis))
     return table
@@ -1724,51 +1735,28 @@ def _near_saturation(sat_zone, idx, fwhm, reach_fwhm=1.5):
     return zone[idx]
 
 
-def _clipped_lines(counts, bg, saturated_px, level, fwhm, noise):
-    """Lines whose cores are clipped: one per run of saturated pixels, measured from the run.
+def _clipped_runs(counts, bg, saturated_px, level, sigma):
+    """One line per run of clipped pixels: a starting centre and flux for the wing fit.
 
     The centre is the middle of the run, each end extended by the fraction of the clip level
-    its outer neighbour reaches.  Blooming and the unknown shape of the clipped core make the
-    centre uncertain by far more than photon noise (the data cannot tell which way charge
-    bloomed): the error is 0.25 px plus 0.15 px per clipped pixel, an allowance that covers
-    blooming split up to 65/35 between the two sides at one sigma (measured in the
-    benchmark; symmetric blooming does ten times better), the flux is the counts above the
-    background within 2 FWHM of the run (a lower bound, 50 % error), the FWHM the run length
-    plus the LSF (an upper bound, error half the run length).
+    its outer neighbour reaches; the flux is that of a line of the LSF width whose peak
+    clears the clip level over the run's length (the fit to the unclipped wings refines both).
     """
     n = counts.size
     edges = np.diff(_cat(0, saturated_px.astype(np.int8), 0))
     starts, stops = np.flatnonzero(edges == 1), np.flatnonzero(edges == -1)
     if starts.size == 0:
-        return {k: np.zeros(0) for k in ("pixel", "pixel_err", "fwhm", "fwhm_err", "flux",
-                                         "flux_err", "snr", "background", "run")}
+        return np.zeros(0), np.zeros(0)
     bl = bg[starts]
     br = bg[stops - 1]
     left = counts[np.maximum(starts - 1, 0)]
     right = counts[np.minimum(stops, n - 1)]
-    fl = np.clip((left - bl) / np.maximum(level - bl, 1e-9), 0, 1)
-    fr = np.clip((right - br) / np.maximum(level - br, 1e-9), 0, 1)
-    fl = np.where(starts > 0, fl, 0.0)
-    fr = np.where(stops < n, fr, 0.0)
+    fl = np.where(starts > 0, np.clip((left - bl) / np.maximum(level - bl, 1e-9), 0, 1), 0.0)
+    fr = np.where(stops < n, np.clip((right - br) / np.maximum(level - br, 1e-9), 0, 1), 0.0)
     centre = 0.5 * ((starts - fl) + (stops - 1 + fr))
-    run = (stops - starts).astype(float)
-    reach = int(np.ceil(2.0 * fwhm))
-    cs = _cat(0, np.cumsum(counts - bg))
-    cv = _cat(0, np.cumsum(noise.variance(np.maximum(counts, bg))))
-    lo = np.clip(starts - reach, 0, n)
-    hi = np.clip(stops + reach, 0, n)
-    flux = cs[hi] - cs[lo]
-    return {
-        "pixel": centre,
-        "pixel_err": 0.25 + _CLIPPED_ERR_PER_PX * run,
-        "fwhm": run + fwhm,
-        "fwhm_err": 0.5 * run,
-        "flux": flux,
-        "flux_err": 0.5 * np.abs(flux),
-        "snr": flux / np.sqrt(cv[hi] - cv[lo]),
-        "background": 0.5 * (bl + br),
-        "run": run,
-    }
+    half_run = 0.5 * (stops - starts + fl + fr)
+    height = (level - 0.5 * (bl + br)) * np.exp(0.5 * np.minimum(half_run / sigma, 5.0) ** 2)
+    return centre, height * _SQRT2PI * sigma
 
 
 def _instrument_record(noise, n, fwhm, lsf_method, flags, given, offset_source, shape):
@@ -1828,7 +1816,7 @@ def _split_wide(state, ctx, min_snr):
     local = ctx.shape_at(state.centre)[0]
     s, err = state.sigma, state.sigma_err
     wide = ((s > 1.25 * local) & (s - local > 3.0 * err) & (s < 3.0 * local)
-            & (state.snr > 2.0 * min_snr) & state.converged)
+            & (state.snr > 2.0 * min_snr) & state.converged & ~state.saturated)
     if not wide.any():
         return state
     half = np.sqrt(s[wide] ** 2 - local[wide] ** 2)
@@ -1852,11 +1840,11 @@ def _prune(state, ctx, fwhm, snr_cut, rejected, *, final, broad=None):
     local = FWHM_PER_SIGMA * ctx.shape_at(np.where(outside, 0.0, state.centre))[0]
     # A one-pixel event fits better as one pixel than as a line of the local width, and its
     # free width collapses (a real line's width follows the LSF).
-    spike = state.one_pixel & (fw < 0.75 * local) & ~outside
+    spike = state.one_pixel & (fw < 0.75 * local) & ~outside & ~state.saturated
     narrow = (fw < 0.5 * local) & ((0.5 * local - fw) > 2.0 * fw_err) & ~outside & ~spike
     # Far wider than the LSF: a background wiggle or a fit gone astray, not a line.
-    wide = (fw > _MAX_WIDTH * local) & ~outside & ~narrow & ~spike
-    weak = (state.snr < snr_cut) & ~outside & ~narrow & ~wide & ~spike
+    wide = (fw > _MAX_WIDTH * local) & ~outside & ~narrow & ~spike & ~state.saturated
+    weak = (state.snr < snr_cut) & ~outside & ~narrow & ~wide & ~spike & ~state.saturated
     drop = outside | narrow | wide | weak | spike
     if final and broad is not None and np.any(wide & (state.snr >= snr_cut)):
         sel = wide & (state.snr >= snr_cut)
@@ -1897,7 +1885,7 @@ def _flag_combinations():
     return np.array(words), np.array([len(w) for w in words])
 
 
-def _table_from_state(state, ctx, fwhm, clipped, meta, n, noise):
+def _table_from_state(state, ctx, fwhm, meta, n, noise):
     st = state
     dof = np.maximum(st.dof, 1)
     poor = chdtrc(dof, st.chi2) < 0.01
@@ -1920,16 +1908,9 @@ def _table_from_state(state, ctx, fwhm, clipped, meta, n, noise):
         "snr": st.snr,
     }
     # Flags as bit codes (1 saturated, 2 blended, 4 blend_suspect, 8 edge).
-    code = 2 * (st.group_size > 1) + 4 * ((fw > 1.1 * fwhm) & ((fw - fwhm) > 3.0 * fw_err))
-    n_sat = clipped["pixel"].size
-    if n_sat:
-        extra = {"pixel": clipped["pixel"], "pixel_err": clipped["pixel_err"],
-                 "fwhm_pixel": clipped["fwhm"], "fwhm_pixel_err": clipped["fwhm_err"],
-                 "amplitude": np.full(n_sat, np.nan), "flux": clipped["flux"],
-                 "flux_err": clipped["flux_err"], "background": clipped["background"],
-                 "snr": clipped["snr"]}
-        cols = {k: np.concatenate([v, extra[k]]) for k, v in cols.items()}
-        code = np.concatenate([code, np.ones(n_sat, code.dtype)])
+    local = FWHM_PER_SIGMA * ctx.shape_at(st.centre)[0]
+    code = (1 * st.saturated + 2 * (st.group_size > 1)
+            + 4 * ((fw > 1.1 * local) & ((fw - local) > 3.0 * fw_err) & ~st.saturated))
     c = cols["pixel"]
     code = code + 8 * ((c < 1.5 * fwhm - 0.5) | (c > n - 0.5 - 1.5 * fwhm))
     # Every combination of the four words is one of 16 strings: look them up by bit code.
