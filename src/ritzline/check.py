@@ -1,12 +1,15 @@
 """Batch checking of exposures against a reference wavelength solution.
 
-Each exposure is read, its lines are found and re-matched to the reference lines, and the
-drift (shift and stretch on the detector, with uncertainties), line width, resolving power,
-saturation and missing lines are measured and judged pass / warn / fail (or ``error`` for a
-file that cannot be read).  The batch runner spreads exposures over local processes (or a
-Dask cluster), appends each result to a JSON-lines journal in the output folder as it
-arrives, and rebuilds ``summary.ecsv`` from that journal, so an interrupted run can resume
-without losing or repeating an exposure.
+Each exposure is read, the reference's lines are measured where they are expected (or found
+by a blind search) and re-matched to the reference, and the drift (shift and stretch on the
+detector, with uncertainties, from a robust fit of every matched line), line width,
+resolving power, saturation, masked samples and missing lines are measured and judged
+pass / warn / fail (or ``error`` for a file that cannot be read).  The batch runner owns
+its output folder for the whole run (a lock file), spreads exposures over local processes
+that end with it (or a Dask cluster), appends each result to a JSON-lines journal in the
+output folder as it arrives, and rebuilds ``summary.ecsv`` from that journal, so an
+interrupted run can resume without losing or repeating an exposure; a run that ends with
+exposures unchecked says so (``complete`` is False).
 """
 
 from __future__ import annotations
