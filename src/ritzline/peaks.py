@@ -1452,7 +1452,7 @@ def find_lines(
 
 
 def _find_lines(spectrum, *, min_snr, fwhm_guess, saturation, gain, read_noise, dark, offset,
-                instrument, shape_coeffs, rerun):
+                instrument, shape_coeffs, rerun, lsf_known=None):
     from . import __version__
 
     arr = spectrum_arrays(spectrum)
@@ -1566,6 +1566,9 @@ def _find_lines(spectrum, *, min_snr, fwhm_guess, saturation, gain, read_noise, 
 
     # LSF width from the brightest isolated, unsaturated peaks.
     lsf_method = "given"
+    # Only an LSF known beforehand or seen on several lines can call one line too wide.
+    if lsf_known is None:
+        lsf_known = fwhm is not None
     if fwhm is None:
         sig = np.where(ok, excess / np.sqrt(var_null), 0.0)
         pk = _local_maxima(sig, 15.0)
@@ -1578,9 +1581,13 @@ def _find_lines(spectrum, *, min_snr, fwhm_guess, saturation, gain, read_noise, 
         widths = _half_max_widths(excess, ok, pk) if pk.size else np.zeros(0)
         widths = widths[np.isfinite(widths) & (widths > 0.8)]
         if widths.size >= 1:
+            # The narrowest well-populated widths are the lines; broad features (phosphor
+            # bands, continuum humps) are far wider and stay out of the line width.
+            narrow_set = widths[widths <= 2.0 * np.quantile(widths, 0.25)]
             # Pixel integration adds 1/12 px^2 to the profile variance.
-            fwhm = float(np.sqrt(max(_median(widths) ** 2 - FWHM_PER_SIGMA**2 / 12, 0.64)))
+            fwhm = float(np.sqrt(max(_median(narrow_set) ** 2 - FWHM_PER_SIGMA**2 / 12, 0.64)))
             lsf_method = f"half-maximum widths of {widths.size} bright peaks, then fits"
+            lsf_known = narrow_set.size >= 3
         else:
             fwhm = _DEFAULT_FWHM
             lsf_method = "default (no bright isolated line)"
@@ -1639,7 +1646,8 @@ def _find_lines(spectrum, *, min_snr, fwhm_guess, saturation, gain, read_noise, 
     if estimate_slope:
         noise = _reestimate_slope(noise, diag)
     state, rejected = _prune(state, ctx, fwhm, 0.5 * min_snr, rejected, final=False)
-    state = _split_wide(state, ctx, min_snr)
+    if lsf_known:
+        state = _split_wide(state, ctx, min_snr)
     # Background again, from the spectrum minus the fitted lines.
     lines_now = _lines_model(state, n, shape)
     bg = _block_background(counts - lines_now, ok, max(12.0, 8.0 * fwhm), q=None)
@@ -1715,7 +1723,8 @@ def _find_lines(spectrum, *, min_snr, fwhm_guess, saturation, gain, read_noise, 
             again = _find_lines(spectrum, min_snr=min_snr, fwhm_guess=med,
                                 saturation=saturation, gain=gain, read_noise=read_noise,
                                 dark=dark, offset=offset, instrument=instrument,
-                                shape_coeffs=(fw_coef, skew_coef, eta), rerun=True)
+                                shape_coeffs=(fw_coef, skew_coef, eta), rerun=True,
+                                lsf_known=True)
             again.meta["lsf_method"] = f"{lsf_method}; {how}"
             again.meta["instrument"]["sources"]["fwhm"] = again.meta["lsf_method"]
             return again
@@ -1731,7 +1740,7 @@ def _find_lines(spectrum, *, min_snr, fwhm_guess, saturation, gain, read_noise, 
                 again = _find_lines(spectrum, min_snr=min_snr, fwhm_guess=lsf_fit,
                                     saturation=saturation, gain=gain, read_noise=read_noise,
                                     dark=dark, offset=offset, instrument=instrument,
-                                    shape_coeffs=None, rerun=True)
+                                    shape_coeffs=None, rerun=True, lsf_known=lsf_known)
                 again.meta["lsf_method"] = (
                     f"{lsf_method}; refitted with the median fitted FWHM of "
                     f"{np.count_nonzero(clean)} lines")
