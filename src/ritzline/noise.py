@@ -39,7 +39,7 @@ class _Noise:
         # Never below the quietest background's variance: read noise and the dark pattern are
         # there at every level (a large, conservative b must not extrapolate below them).
         return np.maximum(self.b * level + (self.a - self.b * self.ref),
-                          max(self.floor, 0.05 * self.a) + 1e-12)
+                          max(self.floor, 0.05 * self.a, 1e-300))
 
     def read_noise2(self) -> float:
         """Read-noise variance (ADU^2): what is left of ``a`` at the offset."""
@@ -117,7 +117,8 @@ def _variance_slope_from_background(counts, bg, quiet, ref, block=64):
     var = (1.4826 * masked_median(np.abs(d - med[:, None]))) ** 2 / 1.5
     # Weighted least squares (a straight line: normal equations solved in closed form); the
     # relative error of a MAD variance is about 2.3/sqrt(n).
-    model = np.full(x.size, max(float(_median(var)), 1e-12))
+    tiny = 1e-6 * float(np.max(var)) + 1e-300  # relative: counts may come in any scale
+    model = np.full(x.size, max(float(_median(var)), tiny))
     for _ in range(2):
         w = n_q / (2.3 * model) ** 2
         s0, s1, s2 = float(np.sum(w)), float(w @ x), float(w @ (x * x))
@@ -126,7 +127,7 @@ def _variance_slope_from_background(counts, bg, quiet, ref, block=64):
         if not det > 0:
             return None
         a, b = (s2 * t0 - s1 * t1) / det, (s0 * t1 - s1 * t0) / det
-        model = np.maximum(a + b * x, 1e-12)
+        model = np.maximum(a + b * x, tiny)
     b_var = s0 / det
     if not (a > 0 and b > 0 and np.sqrt(b_var) < 0.25 * b):
         return None

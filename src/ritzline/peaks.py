@@ -770,8 +770,10 @@ def _clipped_runs(counts, bg, saturated_px, level, sigma):
     br = bg[stops - 1]
     left = counts[np.maximum(starts - 1, 0)]
     right = counts[np.minimum(stops, n - 1)]
-    fl = np.where(starts > 0, np.clip((left - bl) / np.maximum(level - bl, 1e-9), 0, 1), 0.0)
-    fr = np.where(stops < n, np.clip((right - br) / np.maximum(level - br, 1e-9), 0, 1), 0.0)
+    span_l = np.maximum(level - bl, 1e-9 * abs(level) + 1e-300)
+    span_r = np.maximum(level - br, 1e-9 * abs(level) + 1e-300)
+    fl = np.where(starts > 0, np.clip((left - bl) / span_l, 0, 1), 0.0)
+    fr = np.where(stops < n, np.clip((right - br) / span_r, 0, 1), 0.0)
     centre = 0.5 * ((starts - fl) + (stops - 1 + fr))
     half_run = 0.5 * (stops - starts + fl + fr)
     height = (level - 0.5 * (bl + br)) * np.exp(0.5 * np.minimum(half_run / sigma, 5.0) ** 2)
