@@ -555,38 +555,40 @@ def _cheb_fit(x, y, err, n_pixels, max_degree, bounds=(-np.inf, np.inf)):
     """Weighted, clipped Chebyshev fit of ``y(x)`` on the detector; degree grows with the data.
 
     The degree is the highest (up to ``max_degree``, and one per four points) whose last
-    coefficient is significant at 3 sigma; points beyond 4 sigma of the fit (with a 5 %
-    scatter floor) are dropped.  Returns the coefficient tuple.
+    coefficient is significant at 3 sigma and whose curve stays inside ``bounds``; points
+    beyond 4 sigma (with a 5 % scatter floor) of the median, then of the fit, are dropped.
+    Returns the coefficient tuple.
     """
-    t = 2.0 * x / max(n_pixels - 1, 1) - 1.0
     keep = np.isfinite(y) & np.isfinite(err) & (err > 0)
-    best = (float(np.average(y[keep], weights=err[keep] ** -2)),) if keep.any() else (0.0,)
     if not keep.any():
-        return best
-    # Robust start: nothing farther than 4 sigma (5 % floor) from the median takes part.
-    floor = 0.05 * np.abs(np.median(y[keep])) + 1e-12
-    keep &= np.abs(y - np.median(y[keep])) < 4.0 * np.hypot(err, floor) + 3.0 * floor
-    for deg in range(0, min(max_degree, np.count_nonzero(keep) // 4) + 1):
-        use = keep.copy()
-        for _ in range(3):
-            if np.count_nonzero(use) <= deg + 1:
+        return (0.0,)
+    med = float(np.median(y[keep]))
+    floor = 0.05 * abs(med) + 1e-12 * (abs(med) + 1.0)
+    tol = 4.0 * np.hypot(err, floor)
+    keep &= np.abs(y - med) < tol + 3.0 * floor
+    if not keep.any():
+        return (med,)
+    t = 2.0 * x / max(n_pixels - 1, 1) - 1.0
+    top = min(max_degree, np.count_nonzero(keep) // 4)
+    vander = np.polynomial.chebyshev.chebvander(t, top) / err[:, None]
+    yw = y / err
+    grid = np.polynomial.chebyshev.chebvander(np.linspace(-1, 1, 65), top)
+    best = (float(np.average(y[keep], weights=err[keep] ** -2)),)
+    for deg in range(top + 1):
+        use = keep
+        for _ in range(2):
+            coef, *_ = np.linalg.lstsq(vander[use, : deg + 1], yw[use], rcond=None)
+            res = y - (vander[:, : deg + 1] @ coef) * err
+            now = keep & (np.abs(res) < tol)
+            if np.count_nonzero(now) <= deg + 1 or np.array_equal(now, use):
                 break
-            v = np.polynomial.chebyshev.chebvander(t[use], deg)
-            wgt = 1.0 / err[use]
-            coef, *_ = np.linalg.lstsq(v * wgt[:, None], y[use] * wgt, rcond=None)
-            res = y - np.polynomial.chebyshev.chebval(t, coef)
-            use = keep & (np.abs(res) < 4.0 * np.hypot(err, floor))
-        if np.count_nonzero(use) <= deg + 1:
-            break
-        v = np.polynomial.chebyshev.chebvander(t[use], deg)
-        wgt = 1.0 / np.hypot(err[use], 1e-12)
-        a = v * wgt[:, None]
-        coef, *_ = np.linalg.lstsq(a, y[use] * wgt, rcond=None)
-        resid = (y[use] - v @ coef) * wgt
+            use = now
+        a = vander[use, : deg + 1]
+        coef, *_ = np.linalg.lstsq(a, yw[use], rcond=None)
+        resid = yw[use] - a @ coef
         dof = max(np.count_nonzero(use) - deg - 1, 1)
-        scale = max(float(resid @ resid) / dof, 1.0)
-        cov = np.linalg.pinv(a.T @ a) * scale
-        curve = np.polynomial.chebyshev.chebval(np.linspace(-1, 1, 65), coef)
+        cov = np.linalg.pinv(a.T @ a) * max(float(resid @ resid) / dof, 1.0)
+        curve = grid[:, : deg + 1] @ coef
         inside = bool(np.all((curve > bounds[0]) & (curve < bounds[1])))
         if deg == 0 or (inside and abs(coef[-1]) > 3.0 * math.sqrt(max(cov[-1, -1], 0))):
             best = tuple(float(c) for c in coef)
