@@ -654,8 +654,9 @@ def _find_lines(spectrum, *, min_snr, fwhm_guess, saturation, gain, read_noise, 
         # The slope again from the converged fits (neighbours and background settled); refit
         # with it when it moved (crowded spectra).
         new_noise = _reestimate_slope(noise, diag)
-        if abs(new_noise.b / noise.b - 1.0) > 0.1 or new_noise.b_rel_err != noise.b_rel_err:
-            noise = new_noise
+        moved = abs(new_noise.b / noise.b - 1.0) > 0.1
+        noise = new_noise
+        if moved:
             _fit_all(state, ctx, noise, tol=0.5)
     before = state
     broad = []
@@ -694,8 +695,9 @@ def _find_lines(spectrum, *, min_snr, fwhm_guess, saturation, gain, read_noise, 
             diag = _fit_all(state, ctx, noise)
             if estimate_slope:
                 new_noise = _reestimate_slope(noise, diag)
-                if abs(new_noise.b / noise.b - 1.0) > 0.1:
-                    noise = new_noise
+                moved = abs(new_noise.b / noise.b - 1.0) > 0.2
+                noise = new_noise
+                if moved:
                     _fit_all(state, ctx, noise, tol=0.5)
             state, rejected = _prune(state, ctx, fwhm, min_snr, rejected, final=True,
                                      broad=broad)
