@@ -123,7 +123,7 @@ def build_levels(species: str, compiled: Path) -> Table:
     """Every ASD level of one species, with what the compiled list said about it."""
     label = f"{species} I"
     table = _asd.asd_levels(label)
-    header, rows = _read_csv(compiled)
+    _, rows = _read_csv(compiled)
     notes = list(table["note"])
     for r in rows:
         if r["config"] == "limit":
@@ -157,8 +157,8 @@ def _compiled_lines(
     _, rows = _read_csv(path)
     cols: dict[str, list] = {k: [] for k in (
         "wavelength", "wavelength_err", "medium", "intensity", "intensity_flags", "aki", "ga",
-        "aki_accuracy", "g_upper", "lower_cm1", "upper_cm1", "lower_config", "lower_term", "lower_j",
-        "upper_config", "upper_term", "upper_j", "memory", "uncertain", "low_precision",
+        "aki_accuracy", "g_upper", "lower_cm1", "upper_cm1", "lower_config", "lower_term",
+        "lower_j", "upper_config", "upper_term", "upper_j", "memory", "uncertain", "low_precision",
         "confirmed", "source", "note")}
     for r in rows:
         memory = "memory" in r["note"]
@@ -270,9 +270,11 @@ def build_lines(species: str, compiled_dir: Path, levels: Table | None) -> Table
         "table": "observed lines",
         "source": f"{_asd.ASD_CITATION}; compiled list: {HANDBOOK}",
         "compiled": COMPILED,
-        "asd_selection": sorted({n.split(")")[0].split("(")[-1] for n in notes}) or None,
+        "asd_selection": asd.meta.get("asd_selection"),
         "compiled_list_header": _read_csv(line_file)[0],
-        "wavelength_medium": "standard air from 200 to 2000 nm, vacuum below 200 nm (column medium)",
+        "wavelength_medium": (
+            "standard air from 200 to 2000 nm, vacuum below 200 nm (column medium)"
+        ),
         "built_by": "line_lists/build_line_lists.py from line_lists/asd/ and line_lists/compiled/",
     }
     return table

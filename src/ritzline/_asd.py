@@ -27,8 +27,9 @@ __all__ = [
     "asd_levels",
     "asd_lines",
     "asd_spectra",
-    "config_text",
     "config_parity",
+    "config_text",
+    "export_spectra",
     "j_values",
     "term_text",
 ]
@@ -174,9 +175,9 @@ def asd_levels(label: str) -> Table:
         "derived", "asd_config", "asd_term", "asd_level", "note")}
     skipped = {"unknown offset": 0, "no energy": 0}
     for config, term, j, prefix, level, suffix, *_ in rows:
-        if term == "Limit":
+        if term == "Limit":  # the lowest of them is the ionisation limit
             try:
-                limit = float(level)
+                limit = float(level) if limit is None else min(limit, float(level))
             except ValueError:
                 pass
             continue
@@ -383,6 +384,7 @@ def asd_lines(label: str, levels: Table | None = None) -> Table:
         "table": "observed lines",
         "source": ASD_CITATION,
         "asd_file": "line_lists/asd/lines.csv",
+        "asd_selection": sorted({r["selection"] for r in rows}) or None,
         "wavelength_medium": (
             "vacuum (the export's wavelengths of this spectrum are vacuum ones)"
             if vacuum_export else "standard air from 200 to 2000 nm, vacuum below 200 nm"

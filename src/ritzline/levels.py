@@ -3,8 +3,9 @@
 Level and observed-line tables of the eight default species ship as ECSV in ``line_lists/``
 (built from NIST ASD data, see ``line_lists/README.md``); hydrogen is computed from physics.
 Any other neutral or singly ionised spectrum is read from the ASD level dump and line export
-copied into ``line_lists/asd/``.  :func:`transitions` lists every E1-allowed level pair of a species with its Ritz
-wavelength in an explicit medium, joined to the published (observed) lines;
+copied into ``line_lists/asd/``.  :func:`transitions` lists every E1-allowed level pair of
+a species with its Ritz wavelength in an explicit medium, joined to the published (observed)
+lines;
 :func:`blends` groups lines an instrument of a given FWHM cannot resolve;
 :func:`load_lamp` and :func:`lamp_lines` give a calibrator the reference lines of a lamp.
 
@@ -19,8 +20,7 @@ jK-coupled levels of the noble gases are never flagged.
 
 Uncertainties: a Ritz wavelength's error comes from the level energy errors in the tables
 (documented defaults, see ``line_lists/README.md``: one unit in the last quoted digit, at
-least 0.01 cm⁻¹, 0.05 cm⁻¹ for derived or doubtful levels, 0 for the ground level), added in
-quadrature and propagated as δλ = λ² δσ.
+least 0.05 cm⁻¹, 0 for the ground level), added in quadrature and propagated as δλ = λ² δσ.
 
 Hydrogen: levels from the Rydberg formula with the reduced-mass Rydberg constant and the
 Dirac fine-structure term, CODATA constants from :mod:`astropy.constants`; the Lamb shift
@@ -111,14 +111,14 @@ def available_species() -> tuple[str, ...]:
 
 def species_label(name: str) -> str:
     """Canonical label ("Ne I", "Ar II") of a spectrum written "Ne", "Ne I", "NeI", "ne",
-    "Ar II" or "ArII"; a bare element symbol means the neutral atom.
+    "Ne_I", "Ar II" or "ArII"; a bare element symbol means the neutral atom.
 
     Raises
     ------
     RitzlineError
         If no level data exist for the spectrum.
     """
-    match = _SPECIES_RE.match(str(name))
+    match = _SPECIES_RE.match(str(name).replace("_", " "))
     if match and match.group(2).upper() in _ROMAN:
         label = f"{match.group(1).capitalize()} {_ROMAN[match.group(2).upper()]}"
         if label in SPECIES or label in _asd.asd_spectra():
@@ -876,9 +876,12 @@ def transitions(
 
     Examples
     --------
-    >>> t = transitions("Hg", wavelength_range=(253.6, 253.7))
+    >>> t = transitions("Hg", wavelength_range=(253.6, 253.7), observed_only=True)
     >>> f"{t['wavelength'][0]:.4f} {t['upper'][0]}"
-    '253.6517 5d10 6s6p 3P° J=1'
+    '253.6521 5d10 6s6p 3P° J=1'
+    >>> cu = transitions("Cu I", wavelength_range=(324.75, 324.76))  # no ASD export lines
+    >>> f"{cu['wavelength'][0]:.3f} {cu['intensity'][0]}"
+    '324.754 nan'
     """
     labels = _species_labels(species)
     medium = _check_medium(medium)
