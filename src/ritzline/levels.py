@@ -694,18 +694,20 @@ def _observed_pairs(levels: _Levels, obs: Table) -> tuple[np.ndarray, np.ndarray
     return sub[lo[keep]], sub[up[keep]]
 
 
-def _build_species(label: str, medium: str, observed_only: bool) -> dict[str, np.ndarray]:
-    if label == "H I":
-        return _build_hydrogen(medium)
+@functools.cache
+def _species_pairs(label: str, observed_only: bool) -> tuple:
+    """The level pairs of one species and which published line each one is: (lower, upper,
+    obs_index, unmatched published rows).  Plain integer arrays, cheap to keep; the columns
+    are built later only for the pairs a call asks for."""
     levels = _levels(label)
     obs = _observed_table(label)
     if observed_only:
         lower, upper = _observed_pairs(levels, obs)
     else:
         lower, upper = allowed_pairs(levels.energy, levels.j_min, levels.j_max, levels.odd)
-    cols = _pairs_columns(levels, lower, upper)
     n_levels = levels.energy.size
     pair_key = lower.astype(np.int64) * n_levels + upper  # both give them sorted
+    obs_index = np.full(lower.size, -1, dtype=int)
     unmatched = []
     for i in range(len(obs)):
         lo = _match_level(levels, float(obs["lower_cm1"][i]), obs["lower_j"][i])
@@ -715,13 +717,39 @@ def _build_species(label: str, medium: str, observed_only: bool) -> dict[str, np
             key = lo * n_levels + up
             pos = int(np.searchsorted(pair_key, key))
             k = pos if pos < pair_key.size and pair_key[pos] == key else -1
-        if k >= 0 and cols["obs_index"][k] < 0:
-            cols["obs_index"][k] = i
+        if k >= 0 and obs_index[k] < 0:
+            obs_index[k] = i
         else:
             unmatched.append(i)
+    _read_only(lower, upper, obs_index)
+    return lower, upper, obs_index, tuple(unmatched)
+
+
+#: Margin (nm) around a requested range when pairs are preselected by vacuum wavelength
+#: (the air-vacuum difference is below 0.3 nm from 200 to 1100 nm, common practice).
+_PRESELECT_MARGIN_NM = 1.0
+
+
+def _build_species(
+    label: str, medium: str, observed_only: bool, limits: tuple[float, float] | None = None
+) -> dict[str, np.ndarray]:
+    if label == "H I":
+        return _build_hydrogen(medium)
+    levels = _levels(label)
+    obs = _observed_table(label)
+    lower, upper, obs_index, unmatched = _species_pairs(label, observed_only)
+    if limits is not None:  # only pairs near the range (and every published line) are built
+        with np.errstate(divide="ignore"):
+            vac = 1e7 / (levels.energy[upper] - levels.energy[lower])
+        near = (vac >= limits[0] - _PRESELECT_MARGIN_NM) & (vac <= limits[1] * 1.001
+                                                           + _PRESELECT_MARGIN_NM)
+        near |= obs_index >= 0
+        lower, upper, obs_index = lower[near], upper[near], obs_index[near]
+    cols = _pairs_columns(levels, lower, upper)
+    cols["obs_index"] = obs_index.copy()
     ritz = np.ones(lower.size, dtype=bool)
     if unmatched:
-        cols = _concat(cols, _observed_only_columns(obs, unmatched, levels))
+        cols = _concat(cols, _observed_only_columns(obs, list(unmatched), levels))
         ritz = np.concatenate([ritz, np.zeros(len(unmatched), dtype=bool)])
     return _finish(label, cols, obs, medium, ritz)
 
@@ -787,6 +815,7 @@ def _clear_caches() -> None:
         _hydrogen_fine_levels,
         _hydrogen_centroids,
         _species_transitions,
+        _species_pairs,
         _lamp_files,
         _lamp_lines,
     ):
@@ -795,14 +824,18 @@ def _clear_caches() -> None:
         loader.cache_clear()
 
 
-@functools.cache
+@functools.lru_cache(maxsize=256)
 def _species_transitions(
-    label: str, medium: str, observed_only: bool = False
+    label: str,
+    medium: str,
+    observed_only: bool = False,
+    limits: tuple[float, float] | None = None,
 ) -> dict[str, np.ndarray]:
     """The transitions of one species as read-only column arrays (see :func:`_finish`):
     every allowed pair, or only those of published lines (calibration and identification
-    need no more, and a large level table makes the full list slow to build)."""
-    return _build_species(label, medium, observed_only)
+    need no more), and with ``limits`` only those near that range: a level table of several
+    hundred levels has tens of thousands of pairs, most far outside any spectrum."""
+    return _build_species(label, medium, observed_only, limits)
 
 
 def _check_medium(medium: str) -> str:
@@ -888,7 +921,7 @@ def transitions(
     limits = _range_nm(wavelength_range)
     parts = []
     for label in labels:
-        t = _species_transitions(label, medium, bool(observed_only))
+        t = _species_transitions(label, medium, bool(observed_only), limits)
         wl = t["wavelength"]
         keep = np.ones(wl.size, dtype=bool)
         if limits is not None:
