@@ -815,6 +815,7 @@ def _clear_caches() -> None:
         _hydrogen_fine_levels,
         _hydrogen_centroids,
         _species_transitions,
+        _species_table,
         _species_pairs,
         _lamp_files,
         _lamp_lines,
@@ -836,6 +837,15 @@ def _species_transitions(
     need no more), and with ``limits`` only those near that range: a level table of several
     hundred levels has tens of thousands of pairs, most far outside any spectrum."""
     return _build_species(label, medium, observed_only, limits)
+
+
+@functools.lru_cache(maxsize=256)
+def _species_table(
+    label: str, medium: str, observed_only: bool, limits: tuple[float, float] | None
+) -> Table:
+    """:func:`_species_transitions` as a table (sorted by wavelength); callers slice it."""
+    columns = _species_transitions(label, medium, observed_only, limits)
+    return _table_rows(columns, np.ones(columns["wavelength"].size, dtype=bool))
 
 
 def _check_medium(medium: str) -> str:
@@ -921,8 +931,8 @@ def transitions(
     limits = _range_nm(wavelength_range)
     parts = []
     for label in labels:
-        t = _species_transitions(label, medium, bool(observed_only), limits)
-        wl = t["wavelength"]
+        t = _species_table(label, medium, bool(observed_only), limits)
+        wl = np.asarray(t["wavelength"])
         keep = np.ones(wl.size, dtype=bool)
         if limits is not None:
             keep &= (wl >= limits[0]) & (wl <= limits[1])
@@ -933,7 +943,7 @@ def transitions(
         if min_intensity is not None:
             with np.errstate(invalid="ignore"):
                 keep &= np.asarray(t["intensity"]) >= float(min_intensity)
-        parts.append(_table_rows(t, keep))
+        parts.append(t[keep])
     table = parts[0] if len(parts) == 1 else vstack(parts, metadata_conflicts="silent")
     if len(parts) > 1:
         table.sort("wavelength")
