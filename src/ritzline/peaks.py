@@ -456,6 +456,10 @@ def _find_lines(spectrum, *, min_snr, fwhm_guess, saturation, gain, read_noise, 
             "pixels for the line width); give a longer spectrum"
         )
     flags = []
+    finite = raw[~mask & np.isfinite(raw)]
+    if finite.size and np.any(finite != np.round(finite)):
+        # Averaged scans, scaling or other processing: the gain is an effective one.
+        flags.append("non_integer_counts")
     offset_known, offset_source, r_ob = offset, "given" if offset is not None else None, None
     if offset_known is None and instrument is not None:
         offset_known, offset_source = instrument.offset, "instrument model"
