@@ -137,8 +137,8 @@ def score_case(ident, truth: dict, axis_wl: np.ndarray, err_px: np.ndarray):
     for i in np.flatnonzero(eligible):
         if done[i]:
             continue
-        comp = eligible & (np.abs(t_obs - t_obs[i]) < 0.25 * t_fwhm[i])
-        done |= comp
+        comp = real & (np.abs(t_obs - t_obs[i]) < 0.25 * t_fwhm[i])
+        done |= comp & eligible
         features += 1
         found += bool(np.any(claimed & comp))
     # reliability: every line's best hypothesis, claimed or not
