@@ -89,6 +89,10 @@ class IdentifyOptions:
     position_floor : float
         Position uncertainty (fraction of the FWHM) added in quadrature to every line after
         the axis correction: line-shape asymmetry, unresolved neighbours, list errors.
+    branch_outlier : float
+        Probability that a sibling line (same upper level) says nothing about a candidate:
+        missing from the spectrum, blended, or listed with an intensity that is no branching
+        ratio.  Bounds how much one sibling can count against a candidate.
     outlier_fraction, outlier_width : float
         Heavy tail of the position likelihood: a fraction ``outlier_fraction`` of true
         assignments sits anywhere within ``outlier_width`` x FWHM of the listed line (pulled
@@ -112,6 +116,7 @@ class IdentifyOptions:
     fit_shift: bool = True
     position_floor: float = 0.03
     outlier_fraction: float = 0.05
+    branch_outlier: float = 0.2
     outlier_width: float = 0.3
     n_iter: int = 6
 
@@ -719,10 +724,15 @@ class _Model:
         p1 = np.clip(ndtr((mu1 - self.ln_lim) / s1), 1e-3, 1 - 1e-3)
         p0 = np.clip(ndtr((lnmu[sib] - self.ln_lim) / s0), 1e-3, 1 - 1e-3)
         seen = self.near[sib]
-        x = self.near_lnf[sib]
-        llr_seen = _lognorm(x, mu1, s1) - _lognorm(x, np.nan_to_num(lnmu[sib]), s0)
-        llr_seen = np.clip(np.where(seen > 0, llr_seen, 0.0), -8.0, 8.0)
-        llr = seen * llr_seen + (1 - seen) * (np.log1p(-p1) - np.log1p(-p0))
+        x = np.nan_to_num(self.near_lnf[sib])
+        # with probability ``eps`` the branching says nothing (a sibling missing from the
+        # spectrum or blended, a table intensity that is no branching ratio)
+        eps = self.opts.branch_outlier
+        ln0 = _lognorm(x, np.nan_to_num(lnmu[sib]), s0)
+        llr_seen = np.logaddexp(np.log1p(-eps) + _lognorm(x, mu1, s1), np.log(eps) + ln0) - ln0
+        llr_seen = np.where(seen > 0, llr_seen, 0.0)
+        llr_unseen = np.log((1 - eps) * (1 - p1) + eps * (1 - p0)) - np.log1p(-p0)
+        llr = seen * llr_seen + (1 - seen) * llr_unseen
         np.add.at(out, rep, llr)
         return np.clip(out, -12.0, 12.0)
 
@@ -1206,7 +1216,7 @@ def identify_lines(
         llr_final, llr_second = np.full(n_sp, np.nan), np.nan
 
     lines_out = _line_table(table, model, cand, names, lam, sig_c, flux, snr, flags_in, opts,
-                            lam_c)
+                            lam_c, fwhm_nm)
     if resp is not None:
         lines_out["flux_corrected"] = flux / corr
     present = model.active.copy()
@@ -1296,7 +1306,8 @@ def _fmt_wl(x: float) -> str:
     return f"{x:.3f}"
 
 
-def _line_table(table, model, cand, names, lam, sig, flux, snr, flags_in, opts, lam_c):
+def _line_table(table, model, cand, names, lam, sig, flux, snr, flags_in, opts, lam_c,
+                fwhm):
     """The per-line result.  Assignment is one-to-one: lines are served in order of their
     best probability, and a candidate group takes at most as many measured lines as it has
     listed members; a line whose best group is taken falls back to its next hypothesis,
@@ -1326,6 +1337,7 @@ def _line_table(table, model, cand, names, lam, sig, flux, snr, flags_in, opts, 
     out_alt = np.full(n, "", dtype=object)
     out_flags = [[f for f in str(x).split(",") if f] for x in flags_in]
     p_unid = model.resp_u if model.resp_u is not None else np.ones(n)
+    out_pu = np.ones(n)
     resp = model.resp if model.resp is not None else np.zeros(0)
 
     order = np.lexsort((-resp, model.li)) if resp.size else np.zeros(0, int)
@@ -1334,6 +1346,10 @@ def _line_table(table, model, cand, names, lam, sig, flux, snr, flags_in, opts, 
     ends = np.searchsorted(li_s, np.arange(n), "right")
     top = np.array([resp[order[starts[i]]] if ends[i] > starts[i] else 0.0 for i in range(n)])
     room = model.capacity.copy()
+    # naming a transition claims the feature lies within half a FWHM of the measured
+    # centroid; a line whose position is uncertain by a large fraction of the FWHM (an
+    # unresolved blend, a distorted profile) cannot support that claim with confidence
+    placed = 2.0 * ndtr(0.5 * fwhm / np.maximum(sig, 1e-12)) - 1.0
 
     def member(k, i):
         mem = g.members[k]
@@ -1347,11 +1363,13 @@ def _line_table(table, model, cand, names, lam, sig, flux, snr, flags_in, opts, 
 
     for i in np.argsort(-top, kind="stable"):  # formatting and the one-to-one bookkeeping
         idx = order[starts[i]:ends[i]]
-        free = [j for j in idx if room[model.gi[j]] >= 1]
+        # hypotheses of species judged present whose group has room left
+        free = [j for j in idx if room[model.gi[j]] >= 1 and resp[j] > 0]
         norm = p_unid[i] + sum(resp[j] for j in free)
-        share = {j: resp[j] / norm for j in free} if norm > 0 else {}
+        share = {j: placed[i] * resp[j] / norm for j in free} if norm > 0 else {}
         hyps = [(share[j], label(model.gi[j], member(model.gi[j], i)), j) for j in free]
-        hyps.append((p_unid[i] / norm if norm > 0 else 1.0, "unidentified", -1))
+        out_pu[i] = 1.0 - sum(share.values())
+        hyps.append((out_pu[i], "unidentified", -1))
         hyps.sort(key=lambda t: -t[0])
         if free:
             j = free[0]
@@ -1416,7 +1434,7 @@ def _line_table(table, model, cand, names, lam, sig, flux, snr, flags_in, opts, 
     t["g_upper"] = pick(c_g, np.nan)
     t["residual_sigma"] = out_res
     t["probability"] = out_p
-    t["p_unidentified"] = np.asarray(p_unid, float)
+    t["p_unidentified"] = out_pu
     t["best_species"] = text(best_sp)
     t["best_ref_wavelength"] = u.Quantity(best_ref, u.nm)
     t["best_order"] = best_order
