@@ -1382,13 +1382,11 @@ def _line_table(table, model, cand, names, lam, sig, flux, snr, flags_in, opts, 
                 out_sp[i], out_row[i], out_k[i], out_order[i] = best_sp[i], row, k, g.order[k]
                 out_res[i] = model.z[j]
         reported = hyps[0][1] if out_sp[i] else "unidentified"
-        second = [h for h in hyps if h[1] not in ("unidentified", reported)][:1]
         if out_sp[i] == "":
             out_flags[i].append("unidentified")
-        elif second and second[0][0] >= 0.2:
-            out_flags[i].append("ambiguous")
-        if not out_sp[i] and len([h for h in hyps if h[1] != "unidentified"]) > 1 \
-                and hyps[1][0] >= 0.2:
+        # ambiguous: a second transition holds a fifth or more of the transitions' share
+        ps = [h[0] for h in hyps if h[1] != "unidentified"]
+        if len(ps) > 1 and ps[1] >= max(0.2 * sum(ps), 0.05):
             out_flags[i].append("ambiguous")
         out_alt[i] = "; ".join(f"{lab} ({p:.2f})" for p, lab, _ in hyps
                                if lab != reported and p >= 0.01)
