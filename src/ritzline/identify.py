@@ -1348,8 +1348,11 @@ def _line_table(table, model, cand, names, lam, sig, flux, snr, flags_in, opts, 
     room = model.capacity.copy()
     # naming a transition claims the feature lies within half a FWHM of the measured
     # centroid; a line whose position is uncertain by a large fraction of the FWHM (an
-    # unresolved blend, a distorted profile) cannot support that claim with confidence
+    # unresolved blend, a distorted profile) cannot support that claim with confidence.  A
+    # saturated line is the exception: its error is wide because its top is clipped, not
+    # because it may be several features
     placed = 2.0 * ndtr(0.5 * fwhm / np.maximum(sig, 1e-12)) - 1.0
+    placed[np.char.find(flags_in.astype(str), "saturated") >= 0] = 1.0
 
     def member(k, i):
         mem = g.members[k]
