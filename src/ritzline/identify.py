@@ -93,6 +93,9 @@ class IdentifyOptions:
         Probability that a sibling line (same upper level) says nothing about a candidate:
         missing from the spectrum, blended, or listed with an intensity that is no branching
         ratio.  Bounds how much one sibling can count against a candidate.
+    flux_outlier : float
+        Probability that the flux of a blend of listed lines is unrelated to their summed
+        published strength (some members missing from the spectrum).
     outlier_fraction, outlier_width : float
         Heavy tail of the position likelihood: a fraction ``outlier_fraction`` of true
         assignments sits anywhere within ``outlier_width`` x FWHM of the listed line (pulled
@@ -106,7 +109,7 @@ class IdentifyOptions:
     window_sigma: float = 5.0
     blend_fraction: float = 0.5
     species_threshold: float = 8.0
-    max_line_evidence: float = 5.0
+    max_line_evidence: float = 6.0
     energy_prior: float = 0.02
     unknown_fraction: float = 0.2
     second_order: bool = True
@@ -117,6 +120,7 @@ class IdentifyOptions:
     position_floor: float = 0.03
     outlier_fraction: float = 0.05
     branch_outlier: float = 0.2
+    flux_outlier: float = 0.05
     outlier_width: float = 0.3
     n_iter: int = 6
 
@@ -744,9 +748,14 @@ class _Model:
         has_mu = np.isfinite(lnmu[gi])
         tot = np.sqrt(sig[gi] ** 2 + self.lnf_err[li] ** 2)
         lnq = np.where(g.order[gi] == 1, self.lnq[g.species[gi]], self.lnq2)
-        flux_term = np.where(
-            has_mu, _lognorm(self.lnf[li], np.nan_to_num(lnmu[gi]), tot), self.generic[li] + lnq
-        )
+        # the summed strength of a blend holds only when all its listed members shine: with
+        # probability ``flux_outlier`` some are missing and the flux says nothing
+        eps = np.where(self.capacity[gi] > 1, self.opts.flux_outlier, 0.0)
+        with np.errstate(divide="ignore"):
+            rated = np.logaddexp(
+                np.log1p(-eps) + _lognorm(self.lnf[li], np.nan_to_num(lnmu[gi]), tot),
+                np.log(eps) + self.generic[li])
+        flux_term = np.where(has_mu, rated, self.generic[li] + lnq)
         lw = lw + flux_term + self.log_prior_group()[gi] + self.coherence(lnmu)
         act = self.active[g.species[gi]] & ((g.order[gi] == 1) | self.second_active)
         return np.where(act, lw, -np.inf)
