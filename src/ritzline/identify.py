@@ -2,8 +2,10 @@
 the excited levels: assignments with probabilities, species present, excited upper levels,
 relative populations and a Boltzmann plot.
 
-The model (see :func:`identify_lines`, Notes) treats the measured lines as a marked Poisson
-process in (wavelength, flux): every candidate transition of a present species contributes
+The wavelength axis is not taken as exact: its offset and tilt are found first, within a
+stated uncertainty, and the candidates are matched on the corrected axis.  The model (see
+:func:`identify_lines`, Notes) treats the measured lines as a marked Poisson process in
+(wavelength, flux): every candidate transition of a present species contributes
 its expected number of detections and a narrow density at its Ritz wavelength, unknown lines
 contribute a flat density, and second-order images of present lines contribute at twice
 their wavelength.  Assignment probabilities are the posterior shares of those densities at
@@ -604,6 +606,36 @@ def _fit_axis(lam, sig, disp, x, glam, gsig, rho, told, unit) -> AxisCorrection:
     return AxisCorrection(off, tilt, cov, told, unit)
 
 
+def _position_terms(lam_c, sig_c, lnf, groups: _Groups, fwhm_nm, opts) -> dict:
+    """The (line, group) pairs close enough on the corrected axis, with their position log
+    density: a Gaussian of the combined uncertainty, plus a flat tail of weight
+    ``outlier_fraction`` within ``outlier_width`` x FWHM (a centroid pulled by a neighbour).
+    Also, per group, how well the nearest measured line sits on it (0 .. 1, position only)
+    and that line's ln flux, which the coherence term reads."""
+    w_out = opts.outlier_width * fwhm_nm
+    gsig_max = float(groups.sigma.max(initial=0.0))
+    half = np.maximum(opts.window_sigma * np.sqrt(sig_c**2 + gsig_max**2), w_out)
+    li, gi = _pairs_within(lam_c, half, groups.wavelength)
+    s_pair = np.sqrt(sig_c[li] ** 2 + groups.sigma[gi] ** 2)
+    dl = lam_c[li] - groups.wavelength[gi]
+    keep = (np.abs(dl) < opts.window_sigma * s_pair) | (np.abs(dl) < w_out)
+    li, gi, s_pair, dl = li[keep], gi[keep], s_pair[keep], dl[keep]
+    z = dl / s_pair
+    eps = opts.outlier_fraction
+    ln_pos = np.logaddexp(np.log1p(-eps) + _lognorm(dl, 0.0, s_pair),
+                          np.where(np.abs(dl) < w_out, np.log(eps / (2 * w_out)), -np.inf))
+    n_g = groups.species.size
+    near = np.zeros(n_g)
+    near_lnf = np.full(n_g, np.nan)
+    if li.size:
+        closeness = np.exp(-0.5 * np.minimum(z * z, 50.0))
+        o = np.lexsort((-closeness, gi))
+        best = o[np.r_[True, gi[o][1:] != gi[o][:-1]]]
+        near[gi[best]] = closeness[best]
+        near_lnf[gi[best]] = lnf[li[best]]
+    return {"li": li, "gi": gi, "z": z, "ln_pos": ln_pos, "near": near, "near_lnf": near_lnf}
+
+
 # ---- the scoring model -------------------------------------------------------------------
 
 
@@ -1099,21 +1131,35 @@ def identify_lines(
 
     Notes
     -----
+    First the wavelength axis: an offset and a tilt (in px of the local dispersion) are
+    searched on a grid within ``axis_err`` by a robust score against every listed line,
+    refined by reweighted least squares; their covariance (widened when another, separated
+    solution scores nearly as well) becomes a per-line uncertainty.  Matching then runs on
+    the corrected axis, with ``σ`` = centroid ⊕ calibration band ⊕ correction uncertainty ⊕
+    ``position_floor`` x FWHM.
+
     Measured lines are treated as a marked Poisson process in wavelength and flux.  A
     candidate group *c* (one listed line, or several closer than ``blend_fraction`` x FWHM)
-    of a present species contributes ``N(λ; λ_c, σ) · LogNormal(F; k_s S_c, σ_S)``, where
-    ``σ`` combines the centroid, calibration and reference uncertainties and ``S_c`` is the
-    published intensity (or g·A, with its own scale); lines without any published strength
-    contribute ``q_s · N(λ; λ_c, σ) · g(F)`` with a fitted detection fraction ``q_s``.
-    Unknown lines contribute ``ρ · g(F)`` (flat in wavelength); second-order images of
-    present lines contribute at ``2 λ_c`` with a fitted efficiency.  The expected number of
-    detections of each candidate, ``Φ((ln k_s S_c − ln F_lim)/σ_S)``, is subtracted in the
-    likelihood, so a species is charged for every strong line it predicts but which is
-    absent.  Coherence: a candidate's weight is multiplied by the likelihood ratio of the
-    seen/unseen status of the other lines from the same upper level, predicted from this
-    line's flux and the published branching.  Scales are fitted by alternating updates;
-    species are removed one at a time while the weakest has a log-likelihood ratio below
-    ``species_threshold``.  Posterior shares give the probabilities.
+    of a present species contributes ``P(λ; λ_c, σ) · LogNormal(F; k_s S_c, σ_S)``, where
+    ``P`` is a Gaussian with a flat tail (``outlier_fraction`` within ``outlier_width`` x
+    FWHM) and ``S_c`` the published intensity (or g·A, with its own scale); lines without
+    any published strength contribute ``q_s · P · g(F)`` with a fitted detection fraction
+    ``q_s``.  Unknown lines contribute ``ρ · g(F)`` (flat in wavelength); second-order
+    images of present lines contribute at ``2 λ_c`` with a fitted efficiency.  The expected
+    number of detections of each candidate, ``Φ((ln k_s S_c − ln F_lim)/σ_S)``, is
+    subtracted in the likelihood, so a species is charged for every strong line it predicts
+    but which is absent; one measured line adds at most ``max_line_evidence`` to a species,
+    so a lone coincidence cannot make it present.  Coherence: a candidate's weight is
+    multiplied by the likelihood ratio of what the other lines from the same upper level
+    show (a line sitting on them or not, judged from positions only), predicted from this
+    line's flux and the published branching, each sibling allowed to say nothing
+    (``branch_outlier``).  Scales are searched over their whole plausible range by
+    alternating updates; species are removed one at a time while the weakest has a
+    log-likelihood ratio below ``species_threshold``.  Posterior shares give the
+    probabilities, scaled by the chance that a line lies within half a FWHM of its measured
+    centroid.  Assignment is one-to-one: a candidate group takes at most as many measured
+    lines as it has listed members, and a blend is named after the member nearest the
+    corrected centroid.
 
     Examples
     --------
@@ -1182,35 +1228,12 @@ def identify_lines(
     lam_c = lam - axis.shift(x_line, d_line)
     floor = opts.position_floor * fwhm_nm
     sig_c = np.sqrt(sig**2 + axis.error(x_line, d_line) ** 2 + floor**2)
-    w_out = opts.outlier_width * fwhm_nm
-    gsig_max = float(groups.sigma.max(initial=0.0))
-    half = np.maximum(opts.window_sigma * np.sqrt(sig_c**2 + gsig_max**2), w_out)
-    li, gi = _pairs_within(lam_c, half, groups.wavelength)
-    s_pair = np.sqrt(sig_c[li] ** 2 + groups.sigma[gi] ** 2)
-    dl = lam_c[li] - groups.wavelength[gi]
-    keep = (np.abs(dl) < opts.window_sigma * s_pair) | (np.abs(dl) < w_out)
-    li, gi, s_pair, dl = li[keep], gi[keep], s_pair[keep], dl[keep]
-    z = dl / s_pair
-    eps = opts.outlier_fraction
-    ln_pos = np.logaddexp(np.log1p(-eps) + _lognorm(dl, 0.0, s_pair),
-                          np.where(np.abs(dl) < w_out, np.log(eps / (2 * w_out)), -np.inf))
-    n_g = groups.species.size
-    # per group, the measured line sitting best on it (position only) and its ln flux
-    near = np.zeros(n_g)
-    near_lnf = np.full(n_g, np.nan)
-    if li.size:
-        closeness = np.exp(-0.5 * np.minimum(z * z, 50.0))
-        o = np.lexsort((-closeness, gi))
-        first_of = np.r_[True, gi[o][1:] != gi[o][:-1]]
-        best = o[first_of]
-        near[gi[best]] = closeness[best]
-        near_lnf[gi[best]] = lnf[li[best]]
-    capacity = np.array([len(mm) for mm in groups.members], float)
+    pos = _position_terms(lam_c, sig_c, lnf, groups, fwhm_nm, opts)
     n_sp = len(names)
     model = _Model(
         groups=groups, n_species=n_sp, lnf=lnf, lnf_err=lnf_err, ln_lim=ln_lim,
-        width=width, li=li, gi=gi, z=z, ln_pos=ln_pos, near=near, near_lnf=near_lnf,
-        capacity=capacity, generic=generic, opts=opts, siblings=_siblings(groups),
+        width=width, **pos, generic=generic, opts=opts, siblings=_siblings(groups),
+        capacity=np.array([len(mm) for mm in groups.members], float),
     )
     model.active = np.array([bool(np.any(groups.species == k)) for k in range(n_sp)])
     model.second_active = bool(np.any(groups.order == 2))
@@ -1251,7 +1274,7 @@ def identify_lines(
         "second_order_llr": None if not np.isfinite(llr_second) else float(llr_second),
         "second_order_efficiency": float(np.exp(model.ln_eta)) if model.second_active else None,
         "unknown_line_density_per_nm": float(np.exp(model.ln_rho)),
-        "axis_correction": _axis_meta(axis, x_line, d_line, lo, hi),
+        "axis_correction": _axis_meta(axis, x_line, d_line),
         "options": {k: getattr(opts, k) for k in opts.__dataclass_fields__},
     }
     for t in (lines_out, levels_out, species_out):
@@ -1261,7 +1284,7 @@ def identify_lines(
     )
 
 
-def _axis_meta(axis: AxisCorrection, x, disp, lo, hi) -> dict:
+def _axis_meta(axis: AxisCorrection, x, disp) -> dict:
     """The axis correction as reported in ``meta``: in its own unit, and in nm at the ends
     and the middle of the lines' span."""
     err = np.sqrt(np.diag(axis.cov))
