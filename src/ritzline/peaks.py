@@ -1,9 +1,10 @@
-"""Emission-line finder: background, noise model, matched-filter detection and batched fits.
+"""Emission-line finder: background, detection, the search passes and the line table.
 
-Every line is fitted as a Gaussian line-spread function integrated over each pixel, weighted
-by a Poisson + read-noise model whose variance comes from the model (not the data).  The fits
-of all lines run at once as one damped Gauss-Newton (Levenberg-Marquardt) problem on stacked
-pixel windows; lines closer than about two FWHM share a window and are fitted jointly.
+The detector noise model lives in :mod:`ritzline.noise`, the line profiles and the batched
+fitter in :mod:`ritzline.profiles`; the instrument they describe (offset, gain, read noise,
+line shape along the detector) in :mod:`ritzline.instrument`.  This module finds the lines:
+background, saturation, spikes, matched-filter candidates, two fitting passes with a residual
+search, the measured line shape, pruning, and the table with units and provenance.
 """
 
 from __future__ import annotations
@@ -11,13 +12,29 @@ from __future__ import annotations
 import functools
 import math
 import warnings
-from dataclasses import dataclass
+from dataclasses import replace
 from typing import TYPE_CHECKING
 
 import numpy as np
-from scipy.special import chdtrc, ndtr
+from scipy.special import chdtrc
 
+from ._arrays import _cat, _median
 from .errors import RitzlineError, SpectrumFormatError
+from .instrument import Instrument, optical_black
+from .noise import _instrument_record, _noise_model, _reestimate_slope, _second_diff_sigma
+from .profiles import (
+    _SQRT2PI,
+    _WINDOW_HALF,
+    _Context,
+    _fit_all,
+    _integrated,
+    _lines_model,
+    _measure_shape,
+    _shape_from_coeffs,
+    _State,
+    centroid_crlb,
+    line_crlb,
+)
 from .spectrum import spectrum_arrays
 from .synthetic import FWHM_PER_SIGMA
 
@@ -30,154 +47,18 @@ __all__ = ["attach_wavelengths", "centroid_crlb", "find_lines", "line_background
 #: solution's band, so later stages must not add it again.
 BAND_INCLUDED = "wavelength_err_includes_band"
 
-_SQRT2PI = np.sqrt(2.0 * np.pi)
 _DEFAULT_FWHM = 2.5  # px, used only when no line is bright enough to measure the LSF
-_GROUP_SEPARATION = 2.0  # lines closer than this many FWHM are fitted jointly
-_WINDOW_HALF = 4.0  # fit window half-width beyond the outer lines, in FWHM
-_MAX_COMPONENTS = 8  # larger groups are cut into runs of this many components
-_MAX_ITER = 20
-_WING_REACH = 2.5  # FWHM beyond a clipped run whose pixels are left out of fits
 _MAX_WIDTH = 3.5  # components wider than this many LSF FWHM are rejected
 _SATURATION_MARGIN = 0.97
-_CLIPPED_ERR_PER_PX = 0.15  # centroid allowance per clipped pixel (blooming asymmetry)
-
-
-def _cat(*parts):
-    """Concatenate scalars and 1-D arrays (a cheaper ``np.r_`` for short hot-path joins)."""
-    return np.concatenate([np.atleast_1d(p) for p in parts])
-
-
-def _median(x):
-    """Median of a non-empty 1-D array of finite values.
-
-    The same value as ``np.median``, without its general-axis machinery (several times its
-    partition cost on the short arrays of the hot path).
-    """
-    k = x.size // 2
-    part = np.partition(x, k)
-    if x.size % 2:
-        return part[k]
-    # The lower middle value is the largest of the lower part (cheaper than a second kth).
-    return 0.5 * (part[:k].max() + part[k])
+_NONLINEAR = 0.9  # of the saturation level: pixels above are left out of fits
 
 
 # ---------------------------------------------------------------------------------------
 # The pixel-integrated Gaussian and its derivatives
 
 
-def _integrated(x, c, s):
-    """Fraction of a unit-flux Gaussian (centre ``c``, sigma ``s``) falling in pixel ``x``.
-
-    Returns the fraction and its derivatives with respect to ``c`` and ``s``; arrays
-    broadcast.
-    """
-    up = (x + 0.5 - c) / s
-    um = (x - 0.5 - c) / s
-    pp = np.exp(-0.5 * up * up) / _SQRT2PI
-    pm = np.exp(-0.5 * um * um) / _SQRT2PI
-    frac = ndtr(up) - ndtr(um)
-    d_c = (pm - pp) / s
-    d_s = (um * pm - up * pp) / s
-    return frac, d_c, d_s
-
-
-def line_crlb(
-    centre: float,
-    fwhm: float,
-    flux: float,
-    background: float = 0.0,
-    *,
-    gain: float = 1.0,
-    read_noise: float = 0.0,
-    half_width: float | None = None,
-    fit_background: bool = True,
-) -> dict[str, float]:
-    """Cramér-Rao lower bounds for one pixel-integrated Gaussian line.
-
-    The Fisher information is computed numerically over the pixels within ``half_width``
-    (default 6 FWHM) of the centre, for the parameters centre, sigma, flux and (when
-    ``fit_background``) a constant background, with the Poisson + read-noise variance
-    ``(model) / gain + read_noise**2`` (counts in ADU).
-
-    Parameters
-    ----------
-    centre, fwhm : float
-        Line centre and FWHM in pixels.
-    flux : float
-        Total line counts (ADU).
-    background : float
-        Background level (ADU per pixel).
-    gain : float
-        Electrons per ADU.
-    read_noise : float
-        Read noise in ADU.
-    half_width : float, optional
-        Half-width of the pixel window, in pixels.
-    fit_background : bool
-        Whether the background is an unknown of the problem.
-
-    Returns
-    -------
-    dict
-        ``pixel``, ``fwhm`` and ``flux``: the smallest standard deviations any unbiased
-        estimator can reach.
-    """
-    sigma = fwhm / FWHM_PER_SIGMA
-    hw = 6.0 * fwhm if half_width is None else half_width
-    x = np.arange(np.floor(centre - hw), np.ceil(centre + hw) + 1)
-    frac, d_c, d_s = _integrated(x, centre, sigma)
-    var = np.clip(flux * frac + background, 0, None) / gain + read_noise**2
-    cols = [flux * d_c, flux * d_s, frac]
-    if fit_background:
-        cols.append(np.ones_like(x))
-    jac = np.stack(cols, axis=1)
-    # Pixels expecting no counts at all carry no information (their Poisson term vanishes).
-    use = var > 1e-300
-    jac, var = jac[use], var[use]
-    fisher = jac.T @ (jac / var[:, None])
-    cov = np.linalg.inv(fisher)
-    return {
-        "pixel": float(np.sqrt(cov[0, 0])),
-        "fwhm": float(FWHM_PER_SIGMA * np.sqrt(cov[1, 1])),
-        "flux": float(np.sqrt(cov[2, 2])),
-    }
-
-
-def centroid_crlb(centre: float, fwhm: float, flux: float, background: float = 0.0,
-                  **kwargs) -> float:
-    """Cramér-Rao bound on the centroid (pixels); see :func:`line_crlb` for the arguments."""
-    return line_crlb(centre, fwhm, flux, background, **kwargs)["pixel"]
-
-
 # ---------------------------------------------------------------------------------------
 # Preparation: arrays, dark, saturation, noise at the background, spikes, background
-
-
-@dataclass(frozen=True)
-class _Noise:
-    """Variance model ``var = a + b * (level - ref)`` (ADU^2), level = expected counts."""
-
-    a: float
-    b: float
-    ref: float
-    method: str
-
-    def variance(self, level):
-        return np.maximum(self.b * level + (self.a - self.b * self.ref), 0.05 * self.a + 1e-12)
-
-    def as_meta(self) -> dict:
-        gain = 1.0 / self.b if self.b > 0 else None
-        rn2 = self.a - self.b * self.ref
-        return {
-            "method": self.method,
-            "gain": gain,
-            "read_noise": float(np.sqrt(rn2)) if rn2 > 0 else 0.0,
-            "variance_at_background": self.a,
-            "background_level": self.ref,
-            "formula": "var = a + b*(level - background_level), b = 1/gain",
-            "a": self.a,
-            "b": self.b,
-        }
 
 
 def _as_counts(obj, n: int, what: str):
@@ -191,28 +72,31 @@ def _as_counts(obj, n: int, what: str):
 
 
 def _detect_saturation(counts, valid) -> float | None:
-    """The saturation level, if the spectrum shows repeated maximum values (a clipped top)."""
+    """The saturation level, if the spectrum shows a clipped top.
+
+    A clipped line is a plateau: three or more neighbouring pixels within 0.3 % of the
+    highest count (averaged scans and a full-well spread keep clipped values from being
+    exactly equal; the top 0.3 % of a Gaussian line spans a sixth of its sigma, so no line
+    narrower than 20 px has such a plateau).  Exactly repeated maxima, or two at a power of
+    two (an ADC's full scale), count too.  Returns the lowest value of the plateau pixels.
+    """
     if not valid.any():
         return None
-    usable = counts if valid.all() else counts[valid]
-    top = usable.max()
+    usable = counts if valid.all() else np.where(valid, counts, -np.inf)
+    top = float(usable.max())
+    if not top > 0:
+        return None
+    near = usable >= top - 0.003 * abs(top)
+    run3 = near[:-2] & near[1:-1] & near[2:]
+    if run3.any():
+        plateau = near & (np.convolve(run3, np.ones(3), mode="full")[: near.size] > 0)
+        return float(usable[plateau].min())
     n_top = int(np.count_nonzero(usable == top))
     if n_top >= 3:
-        return float(top)
-    if n_top == 2 and top > 0 and (np.log2(top + 1) % 1 == 0 or np.log2(top) % 1 == 0):
-        return float(top)
+        return top
+    if n_top == 2 and (np.log2(top + 1) % 1 == 0 or np.log2(top) % 1 == 0):
+        return top
     return None
-
-
-def _second_diff_sigma(y, ok):
-    """Robust white-noise sigma from the second difference (MAD), on pixels where ``ok``."""
-    d2 = y[1:-1] - 0.5 * (y[:-2] + y[2:])
-    good = ok[1:-1] & ok[:-2] & ok[2:]
-    if np.count_nonzero(good) < 8:
-        return None
-    d = d2[good]
-    mad = _median(np.abs(d - _median(d)))
-    return 1.4826 * mad / np.sqrt(1.5)
 
 
 def _block_background(y, ok, width, q=None, sigma=0.0):
@@ -349,466 +233,6 @@ def _half_max_widths(excess, ok, peaks, max_half=15):
 # Batched Levenberg-Marquardt on stacked windows
 
 
-@dataclass
-class _Groups:
-    """Groups of K components each (one size class): members (G, K) and pixel windows."""
-
-    member: np.ndarray  # (G, K) index into the component list
-    lo: np.ndarray  # (G,) first pixel of each window
-    hi: np.ndarray  # (G,) last pixel of each window
-
-
-def _make_groups(centres, fwhm, n):
-    """Group sorted component centres closer than ``_GROUP_SEPARATION`` FWHM, by size class."""
-    order = np.argsort(centres)
-    c = centres[order]
-    new = _cat(True, np.diff(c) > _GROUP_SEPARATION * fwhm)
-    start = np.flatnonzero(new)
-    rank = np.arange(c.size) - start[np.cumsum(new) - 1]
-    # Split oversized groups: cut every _MAX_COMPONENTS members (rare: dense forests).
-    first = np.flatnonzero(rank % _MAX_COMPONENTS == 0)
-    size = np.diff(_cat(first, c.size))
-    hw = _WINDOW_HALF * fwhm + 1.0
-    lo = np.minimum(np.maximum(np.floor(c[first] - hw), 0), n - 1).astype(int)
-    hi = np.minimum(np.maximum(np.ceil(c[first + size - 1] + hw), 0), n - 1).astype(int)
-    k_min, k_max = int(size.min()), int(size.max())
-    out = []
-    # Loop over group sizes (a handful), not over lines.
-    for k in ((k_min,) if k_min == k_max else np.unique(size)):
-        sel = np.flatnonzero(size == k)
-        member = order[first[sel][:, None] + np.arange(k)[None, :]]
-        out.append(_Groups(member=member, lo=lo[sel], hi=hi[sel]))
-    return out
-
-
-def _profile_and_jacobian(edges, b0, c, s, f):
-    """Model counts, Jacobian (G, P, L) and unit profiles (G, K, L) from the pixel edges.
-
-    The unit profiles are a view into the Jacobian (its flux rows); the derivatives are
-    written straight into it, since on windows this small every array pass costs about as
-    much as the arithmetic.
-    """
-    inv_s = 1.0 / s[..., None]
-    u = (edges - c[..., None]) * inv_s
-    cdf = ndtr(u)
-    pdf = np.exp(-0.5 * u * u)
-    n_g, k, n_edges = u.shape
-    jac = np.empty((n_g, 1 + 3 * k, n_edges - 1))
-    jac[:, 0, :] = 1.0
-    frac = jac[:, 3::3, :]
-    np.subtract(cdf[..., 1:], cdf[..., :-1], out=frac)  # each edge is shared by two pixels
-    scale = f[..., None] * inv_s * (1.0 / _SQRT2PI)
-    d_c = jac[:, 1::3, :]
-    np.subtract(pdf[..., :-1], pdf[..., 1:], out=d_c)
-    d_c *= scale
-    updf = np.multiply(u, pdf, out=u)
-    d_s = jac[:, 2::3, :]
-    np.subtract(updf[..., :-1], updf[..., 1:], out=d_s)
-    d_s *= scale
-    if k == 1:
-        model = b0[:, None] + f * frac[:, 0, :]
-    else:
-        model = b0[:, None] + np.einsum("gk,gkl->gl", f, frac)
-    return model, jac, frac
-
-
-def _weights(noise, level, valid_f):
-    """Fit weights: 1 / variance of the noise model at the expected counts (0 when masked)."""
-    return valid_f / noise.variance(level)
-
-
-def _levenberg_marquardt(fixed, b0, c, s, f, noise, s_lo, tol, start=None):
-    """Damped Gauss-Newton on a stack of windows, every group with its own damping.
-
-    ``start`` is the model, Jacobian and unit profiles at the starting point when the caller
-    has them already.  A group has converged when the Gauss-Newton step it just took
-    promised to lower chi2 by less than ``tol``, or when the chi2 it actually gained matched
-    the promise closely: what is left to gain after such a step is at most about
-    ``2.25 (gain - promise)**2 / promise`` (a wrong curvature gives factor 1, a cubic term
-    2.25), so when that is below ``tol`` the confirming step is skipped.  That test is used
-    for steps within 5 sigma (a promise below 25) taken with little damping.
-    Groups that have converged drop out of the arrays (so a few slow fits do not keep the
-    whole batch busy); their results are written back at the end.
-    """
-    n_all = b0.size
-    if start is None:
-        start = _profile_and_jacobian(fixed["edges"], b0, c, s, f)
-    model, jac, frac = start
-    w = _weights(noise, fixed["base_level"] + model, fixed["valid_f"])
-    resid = fixed["y"] - model
-    chi2 = np.einsum("gl,gl->g", w * resid, resid)
-    lam = np.full(n_all, 1e-3)
-    active = np.ones(n_all, bool)
-    n_par = jac.shape[1]
-    eye = np.eye(n_par)
-    on_diag = np.arange(n_par)
-    names = ("b0", "c", "s", "f", "model", "jac", "w", "resid", "chi2", "lam")
-    out = None  # full-size results, once the working set has been compressed
-    rows = np.arange(n_all)
-    fx = fixed
-    for it in range(_MAX_ITER):
-        if out is None and np.count_nonzero(active) <= active.size // 2 and active.size > 4:
-            cur = dict(zip(names, (b0, c, s, f, model, jac, w, resid, chi2, lam),
-                           strict=True))
-            out = {k: v.copy() for k, v in cur.items()}
-            out["active"] = active.copy()
-            keep = np.flatnonzero(active)
-            rows = rows[keep]
-            fx = {k: v[keep] for k, v in fixed.items()}
-            b0, c, s, f, model, jac, w, resid, chi2, lam = (cur[k][keep] for k in names)
-            frac = jac[:, 3::3, :]
-            active = active[keep]
-        wj = jac * w[:, None, :]
-        hess = wj @ jac.transpose(0, 2, 1)
-        grad = (wj @ resid[:, :, None])[..., 0]
-        diag = hess[:, on_diag, on_diag]
-        dead = diag <= 0  # no information (e.g. a component over masked pixels only)
-        if dead.any():
-            damp = hess + (lam[:, None] * np.where(dead, 1.0, diag))[:, :, None] * eye
-            damp = np.where(dead[:, :, None] | dead[:, None, :], eye, damp)
-            grad = np.where(dead, 0.0, grad)
-        else:
-            damp = hess
-            damp[:, on_diag, on_diag] = diag * (1.0 + lam[:, None])
-        try:
-            step = np.linalg.solve(damp, grad[..., None])[..., 0]
-        except np.linalg.LinAlgError:
-            step = np.zeros_like(grad)
-        nb0 = b0 + step[:, 0]
-        nc = np.minimum(np.maximum(c + step[:, 1::3], fx["c_lo"]), fx["c_hi"])
-        ns = np.minimum(np.maximum(s + step[:, 2::3], s_lo), fx["s_hi"])
-        nf = f + step[:, 3::3]
-        nmodel, njac, nfrac = _profile_and_jacobian(fx["edges"], nb0, nc, ns, nf)
-        nres = fx["y"] - nmodel
-        nchi2 = np.einsum("gl,gl->g", w * nres, nres)
-        better = (nchi2 <= chi2) & active
-        all_better = better.all()
-        predicted = np.einsum("gp,gp->g", step, grad)
-        miss = chi2 - nchi2 - predicted
-        done = (predicted < tol) | (better & (lam <= 1e-2) & (predicted < 25.0)
-                                    & (2.25 * miss * miss < tol * predicted))
-        if it >= 5:
-            # Ill-conditioned fits (weak candidates with a flat width direction) creep along
-            # a valley; after a few steps, a possible gain below one unit of chi2 will do.
-            done |= predicted < 1.0
-        if all_better:
-            lam = np.maximum(lam * 0.2, 1e-7)
-            b0, c, s, f, model, jac, frac, resid = nb0, nc, ns, nf, nmodel, njac, nfrac, nres
-        else:
-            lam = np.where(better, np.maximum(lam * 0.2, 1e-7), np.minimum(lam * 4.0, 1e7))
-            done |= lam >= 1e7
-            bsel = better[:, None]
-            b0 = np.where(better, nb0, b0)
-            c = np.where(bsel, nc, c)
-            s = np.where(bsel, ns, s)
-            f = np.where(bsel, nf, f)
-            model = np.where(bsel, nmodel, model)
-            jac = np.where(better[:, None, None], njac, jac)
-            frac = jac[:, 3::3, :]
-            resid = fx["y"] - model
-        # Variance from the model at the accepted point (not from the data).
-        w = _weights(noise, fx["base_level"] + model, fx["valid_f"])
-        chi2 = np.einsum("gl,gl->g", w * resid, resid)
-        active &= ~done
-        if not active.any():
-            break
-    if out is not None:
-        for k, v in zip(names, (b0, c, s, f, model, jac, w, resid, chi2, lam), strict=True):
-            out[k][rows] = v
-        out["active"][rows] = active
-        b0, c, s, f, model, jac, w, resid, chi2 = (out[k] for k in names[:-1])
-        frac = jac[:, 3::3, :]
-        active = out["active"]
-    return b0, c, s, f, model, jac, frac, w, resid, chi2, ~active
-
-
-def _fit_batch(groups, state, ctx, noise, neighbours_model, tol, final):
-    """Fit one size class of groups; updates ``state`` (component arrays) in place.
-
-    Returns the residuals, leverages and model levels of the pixels of LSF-width groups
-    (for the noise re-estimate) and each group's chi2 and degrees of freedom.
-    """
-    m = groups.member
-    n_g, k = m.shape
-    n_par = 1 + 3 * k
-    length = int((groups.hi - groups.lo).max()) + 1
-    x = groups.lo[:, None] + np.arange(length)[None, :]
-    inside = x <= groups.hi[:, None]
-    xi = np.minimum(x, ctx.n - 1)
-    valid = inside & ctx.ok[xi]
-    bg_glob = ctx.background[xi]
-    # Data minus global background minus the other lines' current models.
-    c = state.centre[m]  # fancy indexing: copies
-    s = state.sigma[m]
-    f = state.flux[m]
-    edges = (groups.lo[:, None, None] - 0.5) + np.arange(length + 1.0)[None, None, :]
-    b0 = np.zeros(n_g)
-    # The groups' own current models (b0 = 0) also start the fit.
-    start = _profile_and_jacobian(edges, b0, c, s, f)
-    others = neighbours_model[xi] - start[0]
-    y = ctx.excess[xi] - others
-
-    base_level = bg_glob + others
-    c_lo = groups.lo[:, None] - 0.5
-    c_hi = groups.hi[:, None] + 0.5
-    s_lo = 0.2 * ctx.sigma_lsf
-    s_hi = np.maximum(6.0 * ctx.sigma_lsf, (groups.hi - groups.lo)[:, None] / 4.0)
-    valid_f = valid.astype(float)
-    fixed = {"y": y, "valid_f": valid_f, "edges": edges, "base_level": base_level,
-             "c_lo": c_lo, "c_hi": c_hi, "s_hi": s_hi}
-    b0, c, s, f, model, jac, frac, w, resid, chi2, converged = _levenberg_marquardt(
-        fixed, b0, c, s, f, noise, s_lo, tol, start)
-    on_diag = np.arange(n_par)
-
-    def covariance(jac):
-        wj = jac * w[:, None, :]
-        hess = wj @ jac.transpose(0, 2, 1)
-        dead = hess[:, on_diag, on_diag] <= 0
-        if not dead.any():
-            try:
-                return np.linalg.inv(hess), dead
-            except np.linalg.LinAlgError:
-                return np.linalg.pinv(hess), dead
-        eye = np.eye(n_par)
-        off = dead[:, :, None] | dead[:, None, :]
-        try:
-            cov = np.linalg.inv(np.where(off, eye, hess))
-        except np.linalg.LinAlgError:
-            cov = np.linalg.pinv(np.where(off, eye, hess))
-        return np.where(off, 0.0, cov), dead
-
-    # Covariance from the Jacobian at the solution -- with the width of a component that is
-    # consistent with the LSF taken at the LSF: noise in the fitted width would otherwise
-    # scatter the error bars themselves (too small for lines that came out narrow).
-    cov, dead = covariance(jac)
-    var_diag = np.maximum(cov[:, on_diag, on_diag], 0)
-    lsf_consistent = np.abs(s - ctx.sigma_lsf) < 2.0 * np.sqrt(var_diag[:, 2::3])
-    # Profiles at the LSF width: the matched-filter significance below and, in the final
-    # pass, the Jacobian rows of the LSF-consistent components.
-    if final and lsf_consistent.any():
-        _, jac_lsf, frac_lsf = _profile_and_jacobian(edges, b0, c, np.full_like(s, ctx.sigma_lsf),
-                                                     f)
-        rows_lsf = np.concatenate([np.zeros((n_g, 1), bool),
-                                   np.repeat(lsf_consistent, 3, axis=1)], axis=1)
-        cov, dead = covariance(np.where(rows_lsf[:, :, None], jac_lsf, jac))
-        var_diag = np.maximum(cov[:, on_diag, on_diag], 0)
-    else:
-        cdf_lsf = ndtr((edges - c[..., None]) / ctx.sigma_lsf)
-        frac_lsf = cdf_lsf[..., 1:] - cdf_lsf[..., :-1]
-    n_free = n_par - np.count_nonzero(dead, axis=1) if dead.any() else n_par
-    dof = np.add.reduce(valid, axis=1) - n_free
-    # Leverage of each pixel (for the noise re-estimate).
-    lev = np.einsum("gpl,gpl->gl", cov @ jac, jac) * w
-    # Detection significance: the matched filter (LSF-shaped, known background) applied at
-    # the fitted centre to the data minus every other component -- a statistic with unit
-    # spread under noise, unlike the flux over its free-shape error.
-    alone = resid[:, None, :] + f[..., None] * frac
-    info_f = np.einsum("gkl,gl->gk", frac_lsf * frac_lsf, w)
-    mf_num = np.einsum("gkl,gl->gk", frac_lsf * alone, w)
-    comp = m
-    state.centre[comp] = c
-    state.sigma[comp] = s
-    state.flux[comp] = f
-    state.bg_offset[comp] = b0[:, None]
-    errors = np.sqrt(var_diag)
-    state.centre_err[comp] = errors[:, 1::3]
-    state.sigma_err[comp] = errors[:, 2::3]
-    state.flux_err[comp] = errors[:, 3::3]
-    with np.errstate(divide="ignore", invalid="ignore"):
-        state.snr[comp] = np.where(info_f > 0, mf_num / np.sqrt(info_f), 0.0)
-    state.chi2[comp] = chi2[:, None]
-    state.dof[comp] = dof[:, None]
-    state.converged[comp] = converged[:, None]
-    state.group_size[comp] = k
-    # Groups whose widths all match the LSF (no unresolved blend) inform the noise estimate.
-    lsf_like = (k == 1) & (np.abs(s[:, 0] / ctx.sigma_lsf - 1.0) < 0.15)
-    use = valid & lsf_like[:, None]
-    return {
-        "x": xi[use], "resid": resid[use], "lev": lev[use], "level": (base_level + model)[use],
-        "chi2": chi2, "dof": dof,
-    }
-
-
-@dataclass
-class _State:
-    centre: np.ndarray
-    sigma: np.ndarray
-    flux: np.ndarray
-
-    def __post_init__(self):
-        n = self.centre.size
-        z = np.zeros(n)
-        self.bg_offset = z.copy()
-        self.centre_err = z.copy()
-        self.sigma_err = z.copy()
-        self.flux_err = z.copy()
-        self.snr = z.copy()
-        self.chi2 = z.copy()
-        self.dof = np.zeros(n, int)
-        self.converged = np.zeros(n, bool)
-        self.group_size = np.ones(n, int)
-
-    def subset(self, keep):
-        """The components where the boolean mask ``keep`` is True (copies, every attribute)."""
-        new = object.__new__(_State)
-        new.__dict__.update({name: value[keep] for name, value in self.__dict__.items()})
-        return new
-
-    def extend(self, centre, sigma, flux):
-        new = _State(_cat(self.centre, centre), _cat(self.sigma, sigma),
-                     _cat(self.flux, flux))
-        return new
-
-
-@dataclass(frozen=True)
-class _Context:
-    n: int
-    excess: np.ndarray  # counts - background
-    background: np.ndarray
-    ok: np.ndarray  # usable for fitting
-    sigma_lsf: float
-
-
-def _lines_model(state, n):
-    """Noise-free counts of all components on the full pixel grid."""
-    c, s, f = state.centre, state.sigma, state.flux
-    out = np.zeros(n)
-    if c.size == 0:
-        return out
-    half = int(np.ceil(6.0 * float(np.max(s)))) + 1
-    near = np.rint(c)
-    pix = near[:, None].astype(int) + np.arange(-half, half + 1)[None, :]
-    edges = near[:, None] + np.arange(-half - 0.5, half + 1.0)[None, :]
-    cdf = ndtr((edges - c[:, None]) / s[:, None])
-    counts = f[:, None] * (cdf[:, 1:] - cdf[:, :-1])
-    if near.min() - half < 0 or near.max() + half >= n:  # a window passes an end
-        ok = (pix >= 0) & (pix < n)
-        pix, counts = pix[ok], counts[ok]
-    return np.bincount(pix.ravel(), weights=counts.ravel(), minlength=n)
-
-
-def _fit_all(state, ctx, noise, near=None, tol=1e-2, final=True, lines=None):
-    """Fit every component (grouped jointly), other lines' models held fixed.
-
-    With ``near`` (pixel positions), only the groups within reach of those are refitted.
-    ``lines`` is the model of all components (``_lines_model(state, n)``) when the caller
-    has it already.
-    """
-    if state.centre.size == 0:
-        return []
-    everything = _lines_model(state, ctx.n) if lines is None else lines
-    diag = []
-    fwhm = ctx.sigma_lsf * FWHM_PER_SIGMA
-    for groups in _make_groups(state.centre, fwhm, ctx.n):
-        if near is not None:
-            reach = (_WINDOW_HALF + _GROUP_SEPARATION) * fwhm + 1.0
-            hit = ((near[None, :] > groups.lo[:, None] - reach)
-                   & (near[None, :] < groups.hi[:, None] + reach)).any(axis=1)
-            if not hit.any():
-                continue
-            groups = _Groups(member=groups.member[hit], lo=groups.lo[hit], hi=groups.hi[hit])
-        diag.append(_fit_batch(groups, state, ctx, noise, everything, tol, final))
-    return diag
-
-
-def _variance_slope_from_background(counts, bg, quiet, ref, block=64):
-    """Fit ``var = a + b (level - ref)`` to the noise of quiet pixels in blocks of the spectrum.
-
-    Returns ``(a, b)`` when the background spans enough levels to pin the slope down to 25 %,
-    else None.  The noise per block is the MAD of second differences (white-noise sigma).
-    """
-    n = counts.size
-    nb = n // block
-    if nb < 4:
-        return None
-    d2 = np.zeros(n)
-    d2[1:-1] = counts[1:-1] - 0.5 * (counts[:-2] + counts[2:])
-    good = quiet.copy()
-    good[0] = good[-1] = False
-    good[1:-1] &= quiet[:-2] & quiet[2:]
-    good = good[: nb * block].reshape(nb, block)
-    n_q = np.count_nonzero(good, axis=1)
-    use = n_q >= 16
-    if np.count_nonzero(use) < 4:
-        return None
-    good, n_q = good[use], n_q[use]
-    d = d2[: nb * block].reshape(nb, block)[use]
-    x = bg[: nb * block].reshape(nb, block)[use, block // 2] - ref
-    rows = np.arange(n_q.size)
-
-    def masked_median(v):
-        srt = np.sort(np.where(good, v, np.inf), axis=1)
-        return 0.5 * (srt[rows, (n_q - 1) // 2] + srt[rows, n_q // 2])
-
-    med = masked_median(d)
-    var = (1.4826 * masked_median(np.abs(d - med[:, None]))) ** 2 / 1.5
-    # Weighted least squares (a straight line: normal equations solved in closed form); the
-    # relative error of a MAD variance is about 2.3/sqrt(n).
-    model = np.full(x.size, max(float(_median(var)), 1e-12))
-    for _ in range(2):
-        w = n_q / (2.3 * model) ** 2
-        s0, s1, s2 = float(np.sum(w)), float(w @ x), float(w @ (x * x))
-        t0, t1 = float(w @ var), float(w @ (x * var))
-        det = s0 * s2 - s1 * s1
-        if not det > 0:
-            return None
-        a, b = (s2 * t0 - s1 * t1) / det, (s0 * t1 - s1 * t0) / det
-        model = np.maximum(a + b * x, 1e-12)
-    b_var = s0 / det
-    if not (a > 0 and b > 0 and np.sqrt(b_var) < 0.25 * b):
-        return None
-    return a, b
-
-
-def _slope_for_quantile(e2, delta, a, b0, q, chi2_q):
-    """The slope b at which the ``q`` quantile of ``e2 / (a + b delta)`` equals ``chi2_q``.
-
-    All ``delta`` are positive.  Term i is at most ``chi2_q`` exactly when b reaches its
-    threshold ``(e2_i / chi2_q - a) / delta_i``, so the ``q`` quantile of the terms is at
-    most ``chi2_q`` exactly when b reaches the same order statistic of the thresholds: that
-    order statistic is the answer (no search).  It is kept within 0.05-20 times the
-    starting slope ``b0``.
-    """
-    kth = int(q * (e2.size - 1))
-    thresholds = (e2 * (1.0 / chi2_q) - a) / delta
-    b = float(np.partition(thresholds, kth)[kth])
-    return min(max(b, 0.05 * b0), 20.0 * b0)
-
-
-def _reestimate_slope(noise, diag):
-    """Re-estimate the variance slope b (1/gain) from fit residuals (leverage-corrected).
-
-    Only pixels where the line's own photon noise is at least the background noise are used
-    (fainter ones cannot tell the slope).  b is chosen so that the median of the normalised
-    squared residuals equals that of chi-square with one degree of freedom -- or, when more
-    than 2 % of them then exceed 9 (profile mismatches such as faint unresolved companions
-    in a lamp spectrum, which only ever inflate residuals), so that their 30 % quantile
-    does.  On dense lamp spectra it still tends to overestimate b (errors on the safe side).
-    """
-    if not diag:
-        return noise
-    x_res = np.concatenate([d["resid"] for d in diag])
-    lev = np.concatenate([d["lev"] for d in diag])
-    level = np.concatenate([d["level"] for d in diag])
-    e2_all = x_res * x_res / np.clip(1.0 - lev, 0.2, 1.0)
-    delta_all = level - noise.ref
-    b = noise.b if noise.b > 0 else noise.a / max(noise.ref, np.sqrt(noise.a))
-    use = (delta_all > 5.0 * np.sqrt(noise.a)) & (b * delta_all > noise.a)
-    if np.count_nonzero(use) < 30:
-        return noise
-    e2, delta = e2_all[use], delta_all[use]
-    if e2.size > 400:  # 400 pixels pin the slope to a few per cent
-        take = np.linspace(0, e2.size - 1, 400).astype(int)
-        e2, delta = e2[take], delta[take]
-    # Quantiles of chi-square with 1 dof (common practice): the median (efficient) and the
-    # 30 % point (robust); the robust one is used when the residuals show misfits.
-    median_b = _slope_for_quantile(e2, delta, noise.a, b, 0.5, 0.45493642311957283)
-    misfit = np.mean(e2 / (noise.a + median_b * delta) > 9.0)  # 0.27 % for pure noise
-    b = median_b if misfit < 0.02 else _slope_for_quantile(e2, delta, noise.a, b, 0.3,
-                                                           0.14847186183254)
-    return _Noise(a=noise.a, b=float(b), ref=noise.ref, method=noise.method)
-
-
 # ---------------------------------------------------------------------------------------
 # Public functions
 
@@ -932,6 +356,8 @@ def find_lines(
     gain: float | None = None,
     read_noise: float | None = None,
     dark=None,
+    offset: float | None = None,
+    instrument: Instrument | None = None,
 ) -> Table:
     """Find the emission lines of a spectrum and fit each with a pixel-integrated Gaussian.
 
@@ -948,13 +374,19 @@ def find_lines(
         Saturation level (ADU) of the raw counts; otherwise ``meta["saturation"]`` of the
         spectrum, otherwise detected from repeated maximum values.
     gain : float, optional
-        Electrons per ADU.  Estimated from the fit residuals when omitted.
+        Effective electrons per ADU.  Otherwise from ``instrument``, else estimated (from the
+        background when the offset and read noise are known, from the background's level
+        variation, or from the fit residuals of the lines, whichever pins it best).
     read_noise : float, optional
-        Read noise (ADU).  With ``gain`` and ``read_noise`` both given the variance is
-        ``counts / gain + read_noise**2``; otherwise the variance at the background is
-        measured from the data.
+        Read noise (ADU rms).  With ``gain`` it fixes the electronic offset as well.
     dark : specutils.Spectrum or array, optional
         A dark/background exposure of the same detector, subtracted first.
+    offset : float, optional
+        Electronic offset (bias) in the counts, ADU.  Otherwise from ``instrument``, from
+        leading optical-black pixels, or (counts near zero) taken as already removed.
+    instrument : ritzline.instrument.Instrument, optional
+        A measured instrument model (e.g. ``solution.instrument``): its gain, read noise and
+        line width are used instead of being estimated again.
 
     Returns
     -------
@@ -990,12 +422,18 @@ def find_lines(
     with 50 % error), and pixels
     within 2.5 FWHM of a run are left out of other fits.
     """
+    shape = None
+    if instrument is not None:
+        shape = (instrument.fwhm, instrument.asymmetry, instrument.wing)
+        if fwhm_guess is None:
+            fwhm_guess = instrument.median_fwhm
     return _find_lines(spectrum, min_snr=min_snr, fwhm_guess=fwhm_guess,
                        saturation=saturation, gain=gain, read_noise=read_noise, dark=dark,
-                       rerun=False)
+                       offset=offset, instrument=instrument, shape_coeffs=shape, rerun=False)
 
 
-def _find_lines(spectrum, *, min_snr, fwhm_guess, saturation, gain, read_noise, dark, rerun):
+def _find_lines(spectrum, *, min_snr, fwhm_guess, saturation, gain, read_noise, dark, offset,
+                instrument, shape_coeffs, rerun, lsf_known=None):
     from . import __version__
 
     arr = spectrum_arrays(spectrum)
@@ -1017,9 +455,25 @@ def _find_lines(spectrum, *, min_snr, fwhm_guess, saturation, gain, read_noise, 
             f"the spectrum has {n} samples, shorter than one line-fit window ({min_len} "
             "pixels for the line width); give a longer spectrum"
         )
+    flags = []
+    offset_known, offset_source, r_ob = offset, "given" if offset is not None else None, None
+    if offset_known is None and instrument is not None:
+        offset_known, offset_source = instrument.offset, "instrument model"
     if dark is not None:
         d_counts, d_mask = _as_counts(dark, n, "dark frame")
         mask |= d_mask
+        offset_known, offset_source = 0.0, "dark frame subtracted"
+        flags.append("dark_subtracted")
+    else:
+        n_ob, ob_level, ob_sigma = optical_black(raw, mask)
+        if n_ob:
+            # Shielded pixels read the offset: measure it there and keep them out of the search.
+            mask[:n_ob] = True
+            meta["optical_black_pixels"] = n_ob
+            if offset is None:
+                offset_known = ob_level
+                offset_source = f"optical-black pixels 0-{n_ob - 1}"
+            r_ob = ob_sigma
     if saturation is None:
         saturation = arr.meta.get("saturation")
     sat_source = "given" if saturation is not None else None
@@ -1073,25 +527,13 @@ def _find_lines(spectrum, *, min_snr, fwhm_guess, saturation, gain, read_noise, 
     quiet = ok & (np.abs(excess) < 4.0 * sigma0)
     quiet = quiet & _cat(quiet[1:], True) & _cat(True, quiet[:-1])
     sig_bg = _second_diff_sigma(counts, quiet) or sigma0
-    if gain is not None and read_noise is not None:
-        noise = _Noise(a=read_noise**2 + max(ref, 0.0) / gain, b=1.0 / gain, ref=ref,
-                       method="given gain and read noise")
-    else:
-        a = sig_bg**2
-        if gain is not None:
-            b, method = 1.0 / gain, "given gain; variance at background measured"
-        else:
-            slope = _variance_slope_from_background(counts, bg, quiet, ref)
-            if slope is not None:
-                a, b = slope
-                method = ("estimated: variance against background level from second "
-                          "differences")
-            else:
-                # Until the fit residuals say otherwise: all background variance photon noise.
-                b = a / max(ref, a) if ref > 0 else 1.0
-                method = ("estimated: background variance from second differences, gain from "
-                          "fit residuals")
-        noise = _Noise(a=a, b=b, ref=ref, method=method)
+    if offset_known is None and (abs(ref) < 5.0 * sig_bg or raw[valid].min() < -5.0 * sig_bg):
+        # Counts at or below zero: the offset was removed before (a dark-corrected frame).
+        offset_known, offset_source = 0.0, "counts near zero: offset already removed"
+        flags.append("dark_corrected")
+    noise = _noise_model(counts, bg, quiet, ref, sig_bg, gain=gain, read_noise=read_noise,
+                         offset=offset_known, offset_source=offset_source, r_ob=r_ob,
+                         instrument=instrument)
     var_null = noise.variance(bg)
 
     # Spikes narrower than the LSF: masked everywhere downstream.
@@ -1105,6 +547,9 @@ def _find_lines(spectrum, *, min_snr, fwhm_guess, saturation, gain, read_noise, 
 
     # LSF width from the brightest isolated, unsaturated peaks.
     lsf_method = "given"
+    # Only an LSF known beforehand or seen on several lines can call one line too wide.
+    if lsf_known is None:
+        lsf_known = fwhm is not None
     if fwhm is None:
         sig = np.where(ok, excess / np.sqrt(var_null), 0.0)
         pk = _local_maxima(sig, 15.0)
@@ -1117,9 +562,13 @@ def _find_lines(spectrum, *, min_snr, fwhm_guess, saturation, gain, read_noise, 
         widths = _half_max_widths(excess, ok, pk) if pk.size else np.zeros(0)
         widths = widths[np.isfinite(widths) & (widths > 0.8)]
         if widths.size >= 1:
+            # The narrowest well-populated widths are the lines; broad features (phosphor
+            # bands, continuum humps) are far wider and stay out of the line width.
+            narrow_set = widths[widths <= 2.0 * np.quantile(widths, 0.25)]
             # Pixel integration adds 1/12 px^2 to the profile variance.
-            fwhm = float(np.sqrt(max(_median(widths) ** 2 - FWHM_PER_SIGMA**2 / 12, 0.64)))
+            fwhm = float(np.sqrt(max(_median(narrow_set) ** 2 - FWHM_PER_SIGMA**2 / 12, 0.64)))
             lsf_method = f"half-maximum widths of {widths.size} bright peaks, then fits"
+            lsf_known = narrow_set.size >= 3
         else:
             fwhm = _DEFAULT_FWHM
             lsf_method = "default (no bright isolated line)"
@@ -1132,23 +581,28 @@ def _find_lines(spectrum, *, min_snr, fwhm_guess, saturation, gain, read_noise, 
             f"{fwhm:.2f}-pixel FWHM; give a longer spectrum"
         )
     sigma_lsf = fwhm / FWHM_PER_SIGMA
+    shape = None if shape_coeffs is None else _shape_from_coeffs(shape_coeffs, n)
     if saturated_px.any():
-        # The wings of a clipped line are not modelled: keep them out of every other fit.
-        ok &= ~_near_saturation(sat_zone, np.arange(n), fwhm, _WING_REACH)
+        # A clipped line is fitted to its unclipped wings; pixels close to full well (where
+        # detectors lose linearity) are left out with the clipped ones.
+        ok &= ~(valid & (raw >= _NONLINEAR * float(saturation)))
 
     # Detection: matched filter on the background-subtracted counts.
     weight = np.where(ok, 1.0 / noise.variance(bg), 0.0)
     f_mf, snr_mf = _matched_filter(excess, weight, fwhm)
     cand = _local_maxima(snr_mf, 0.7 * min_snr)
-    # Lines whose cores are clipped are measured from their clipped runs (see _clipped_lines);
-    # no other candidate is taken inside a run or within 1.5 FWHM of it.
+    # Each clipped run is one line (added below); no other candidate is taken inside a run or
+    # within 1.5 FWHM of it.
     if saturated_px.any():
-        cand = cand[~_near_saturation(sat_zone, cand, fwhm)]
+        cand = cand[~_near_saturation(sat_zone, cand, fwhm, 1.0)]
     cand_c = cand.astype(float)
     cand_f = f_mf[cand]
-    clipped = _clipped_lines(counts, bg, saturated_px, float(saturation or 0.0), fwhm, noise)
-    if cand_c.size == 0 and clipped["pixel"].size == 0:
+    clip_c, clip_f, clip_half = _clipped_runs(counts, bg, saturated_px,
+                                              float(saturation or 0.0), sigma_lsf)
+    if cand_c.size == 0 and clip_c.size == 0:
         meta.update(_meta_tail(noise, fwhm, None, lsf_method, rejected, 0, min_snr))
+        meta["instrument"] = _instrument_record(noise, n, fwhm, lsf_method, flags, instrument,
+                                            offset_source, shape_coeffs)
         return empty(f"no line reaches the detection threshold (min_snr={min_snr:g})")
     # Sub-pixel start: parabola through the filter peak.
     ic = np.minimum(np.maximum(cand, 1), n - 2)
@@ -1157,20 +611,29 @@ def _find_lines(spectrum, *, min_snr, fwhm_guess, saturation, gain, read_noise, 
     shift = np.where(den < 0, 0.5 * (zl - zr) / np.where(den < 0, den, -1), 0.0)
     cand_c = cand_c + np.clip(shift, -0.5, 0.5)
     state = _State(cand_c, np.full(cand_c.size, sigma_lsf), cand_f)
-    n_candidates = int(cand_c.size + clipped["pixel"].size)
-    ctx = _Context(n=n, excess=excess, background=bg, ok=ok, sigma_lsf=sigma_lsf)
+    if clip_c.size:
+        clip_s = np.full(clip_c.size, sigma_lsf) if shape is None else shape.sigma[
+            np.clip(np.rint(clip_c), 0, n - 1).astype(int)]
+        state = state.extend(clip_c, clip_s, clip_f, saturated=True)
+        state.run_half[-clip_c.size:] = clip_half
+        state.run_centre[-clip_c.size:] = clip_c
+        state.run_flux[-clip_c.size:] = clip_f
+    n_candidates = int(state.centre.size)
+    ctx = _Context(n=n, excess=excess, background=bg, ok=ok, sigma_lsf=sigma_lsf, shape=shape)
 
     # Pass 1; in an uncrowded spectrum its residuals already give the slope (1/gain).
     diag = _fit_all(state, ctx, noise, final=False)
-    estimate_slope = gain is None and "fit residuals" in noise.method
+    estimate_slope = gain is None and instrument is None
     if estimate_slope:
         noise = _reestimate_slope(noise, diag)
     state, rejected = _prune(state, ctx, fwhm, 0.5 * min_snr, rejected, final=False)
+    if lsf_known:
+        state = _split_wide(state, ctx, min_snr)
     # Background again, from the spectrum minus the fitted lines.
-    lines_now = _lines_model(state, n)
+    lines_now = _lines_model(state, n, shape)
     bg = _block_background(counts - lines_now, ok, max(12.0, 8.0 * fwhm), q=None)
     excess = counts - bg
-    ctx = _Context(n=n, excess=excess, background=bg, ok=ok, sigma_lsf=sigma_lsf)
+    ctx = _Context(n=n, excess=excess, background=bg, ok=ok, sigma_lsf=sigma_lsf, shape=shape)
     # Residual search for components the first pass missed (close blends).
     resid = excess - lines_now
     weight = np.where(ok, 1.0 / noise.variance(bg + lines_now), 0.0)
@@ -1182,7 +645,7 @@ def _find_lines(spectrum, *, min_snr, fwhm_guess, saturation, gain, read_noise, 
     n_candidates += int(extra.size)
     if extra.size:
         extra_state = _State(extra.astype(float), np.full(extra.size, sigma_lsf), f_r[extra])
-        lines_now = lines_now + _lines_model(extra_state, n)
+        lines_now = lines_now + _lines_model(extra_state, n, shape)
         state = state.extend(extra_state.centre, extra_state.sigma, extra_state.flux)
     # Pass 2, neighbours from pass 1.
     diag = _fit_all(state, ctx, noise, lines=lines_now)
@@ -1190,11 +653,12 @@ def _find_lines(spectrum, *, min_snr, fwhm_guess, saturation, gain, read_noise, 
         # The slope again from the converged fits (neighbours and background settled); refit
         # with it when it moved (crowded spectra).
         new_noise = _reestimate_slope(noise, diag)
-        if abs(new_noise.b / noise.b - 1.0) > 0.1:
+        if abs(new_noise.b / noise.b - 1.0) > 0.1 or new_noise.b_rel_err != noise.b_rel_err:
             noise = new_noise
             _fit_all(state, ctx, noise, tol=0.5)
     before = state
-    state, rejected = _prune(state, ctx, fwhm, min_snr, rejected, final=True)
+    broad = []
+    state, rejected = _prune(state, ctx, fwhm, min_snr, rejected, final=True, broad=broad)
     # A component dropped from a joint fit shared flux with its partners: refit those.
     joint = before.group_size > 1
     gone = np.setdiff1d(before.centre[joint], state.centre) if joint.any() else joint[:0]
@@ -1209,7 +673,46 @@ def _find_lines(spectrum, *, min_snr, fwhm_guess, saturation, gain, read_noise, 
     if np.count_nonzero(clean) < 3:
         clean = single & (state.snr >= min_snr)  # a faint spectrum: use what there is
     lsf_fit = None
-    if np.count_nonzero(clean) >= 3:
+    measured = None
+    if shape_coeffs is None and fwhm_guess is None:
+        measured = _measure_shape(state, ctx, noise)
+    if measured is not None:
+        fw_coef, skew_coef, eta, n_used = measured
+        new = _shape_from_coeffs((fw_coef, skew_coef, eta), n)
+        fw_new = new.sigma * FWHM_PER_SIGMA
+        med = float(_median(fw_new))
+        differs = (eta > 0 or new.skewed or np.ptp(fw_new) > 0.1 * med
+                   or abs(med / fwhm - 1.0) > 0.05)
+        how = (f"line shape measured on {n_used} bright lines (FWHM {fw_new.min():.2f}-"
+               f"{fw_new.max():.2f} px, skew up to {np.max(np.abs(new.alpha)):.2f}, Lorentzian "
+               f"fraction {eta:.3f})")
+        if differs and not rerun and abs(med / fwhm - 1.0) <= 0.1:
+            # The detection width holds: refit the lines found with the measured shape (and
+            # the gain from the new residuals) instead of searching again.
+            ctx = replace(ctx, shape=new)
+            diag = _fit_all(state, ctx, noise)
+            if estimate_slope:
+                new_noise = _reestimate_slope(noise, diag)
+                if abs(new_noise.b / noise.b - 1.0) > 0.1:
+                    noise = new_noise
+                    _fit_all(state, ctx, noise, tol=0.5)
+            state, rejected = _prune(state, ctx, fwhm, min_snr, rejected, final=True,
+                                     broad=broad)
+        elif differs and not rerun:
+            # Detect and fit again with the measured shape (grouping, significance, the
+            # fitted profile and the noise estimate from residuals all depend on it).
+            again = _find_lines(spectrum, min_snr=min_snr, fwhm_guess=med,
+                                saturation=saturation, gain=gain, read_noise=read_noise,
+                                dark=dark, offset=offset, instrument=instrument,
+                                shape_coeffs=(fw_coef, skew_coef, eta), rerun=True,
+                                lsf_known=True)
+            again.meta["lsf_method"] = f"{lsf_method}; {how}"
+            again.meta["instrument"]["sources"]["fwhm"] = again.meta["lsf_method"]
+            return again
+        shape_coeffs = (fw_coef, skew_coef, eta)
+        lsf_fit = fwhm = med
+        lsf_method += f"; {how}"
+    elif np.count_nonzero(clean) >= 3:
         lsf_fit = float(_median(fw[clean]))
         if fwhm_guess is None:
             if abs(lsf_fit / fwhm - 1.0) > 0.1 and not rerun:
@@ -1217,7 +720,8 @@ def _find_lines(spectrum, *, min_snr, fwhm_guess, saturation, gain, read_noise, 
                 # measured one (matched filter, grouping and significance depend on it).
                 again = _find_lines(spectrum, min_snr=min_snr, fwhm_guess=lsf_fit,
                                     saturation=saturation, gain=gain, read_noise=read_noise,
-                                    dark=dark, rerun=True)
+                                    dark=dark, offset=offset, instrument=instrument,
+                                    shape_coeffs=None, rerun=True, lsf_known=lsf_known)
                 again.meta["lsf_method"] = (
                     f"{lsf_method}; refitted with the median fitted FWHM of "
                     f"{np.count_nonzero(clean)} lines")
@@ -1225,14 +729,19 @@ def _find_lines(spectrum, *, min_snr, fwhm_guess, saturation, gain, read_noise, 
             fwhm = lsf_fit
             lsf_method += f" (median fitted FWHM of {np.count_nonzero(clean)} lines)"
     meta.update(_meta_tail(noise, fwhm, lsf_fit, lsf_method, rejected, n_candidates, min_snr))
+    meta["broad_features"] = [
+        {"pixel": round(p, 2), "fwhm_pixel": round(w, 2), "flux": f, "snr": round(z, 1)}
+        for p, w, f, z in sorted(broad)]
+    meta["instrument"] = _instrument_record(noise, n, fwhm, lsf_method, flags, instrument,
+                                            offset_source, shape_coeffs)
     meta["background_method"] = (
         "block quantile (25%, corrected to the mean) then block median of the spectrum "
         f"minus the fitted lines, blocks of {max(12.0, 8.0 * fwhm):.0f} px, linear "
         "interpolation; plus a constant offset fitted in each line window")
-    if state.centre.size == 0 and clipped["pixel"].size == 0:
+    if state.centre.size == 0:
         return empty(f"no line reaches min_snr={min_snr:g} after fitting")
 
-    table = _table_from_state(state, ctx, fwhm, clipped, meta, n)
+    table = _table_from_state(state, ctx, fwhm, meta, n, noise)
     if has_wavelength:
         table = attach_wavelengths(table, _AxisSolution(arr.axis))
     return table
@@ -1245,51 +754,28 @@ def _near_saturation(sat_zone, idx, fwhm, reach_fwhm=1.5):
     return zone[idx]
 
 
-def _clipped_lines(counts, bg, saturated_px, level, fwhm, noise):
-    """Lines whose cores are clipped: one per run of saturated pixels, measured from the run.
+def _clipped_runs(counts, bg, saturated_px, level, sigma):
+    """One line per run of clipped pixels: a starting centre and flux for the wing fit.
 
     The centre is the middle of the run, each end extended by the fraction of the clip level
-    its outer neighbour reaches.  Blooming and the unknown shape of the clipped core make the
-    centre uncertain by far more than photon noise (the data cannot tell which way charge
-    bloomed): the error is 0.25 px plus 0.15 px per clipped pixel, an allowance that covers
-    blooming split up to 65/35 between the two sides at one sigma (measured in the
-    benchmark; symmetric blooming does ten times better), the flux is the counts above the
-    background within 2 FWHM of the run (a lower bound, 50 % error), the FWHM the run length
-    plus the LSF (an upper bound, error half the run length).
+    its outer neighbour reaches; the flux is that of a line of the LSF width whose peak
+    clears the clip level over the run's length (the fit to the unclipped wings refines both).
     """
     n = counts.size
     edges = np.diff(_cat(0, saturated_px.astype(np.int8), 0))
     starts, stops = np.flatnonzero(edges == 1), np.flatnonzero(edges == -1)
     if starts.size == 0:
-        return {k: np.zeros(0) for k in ("pixel", "pixel_err", "fwhm", "fwhm_err", "flux",
-                                         "flux_err", "snr", "background", "run")}
+        return np.zeros(0), np.zeros(0), np.zeros(0)
     bl = bg[starts]
     br = bg[stops - 1]
     left = counts[np.maximum(starts - 1, 0)]
     right = counts[np.minimum(stops, n - 1)]
-    fl = np.clip((left - bl) / np.maximum(level - bl, 1e-9), 0, 1)
-    fr = np.clip((right - br) / np.maximum(level - br, 1e-9), 0, 1)
-    fl = np.where(starts > 0, fl, 0.0)
-    fr = np.where(stops < n, fr, 0.0)
+    fl = np.where(starts > 0, np.clip((left - bl) / np.maximum(level - bl, 1e-9), 0, 1), 0.0)
+    fr = np.where(stops < n, np.clip((right - br) / np.maximum(level - br, 1e-9), 0, 1), 0.0)
     centre = 0.5 * ((starts - fl) + (stops - 1 + fr))
-    run = (stops - starts).astype(float)
-    reach = int(np.ceil(2.0 * fwhm))
-    cs = _cat(0, np.cumsum(counts - bg))
-    cv = _cat(0, np.cumsum(noise.variance(np.maximum(counts, bg))))
-    lo = np.clip(starts - reach, 0, n)
-    hi = np.clip(stops + reach, 0, n)
-    flux = cs[hi] - cs[lo]
-    return {
-        "pixel": centre,
-        "pixel_err": 0.25 + _CLIPPED_ERR_PER_PX * run,
-        "fwhm": run + fwhm,
-        "fwhm_err": 0.5 * run,
-        "flux": flux,
-        "flux_err": 0.5 * np.abs(flux),
-        "snr": flux / np.sqrt(cv[hi] - cv[lo]),
-        "background": 0.5 * (bl + br),
-        "run": run,
-    }
+    half_run = 0.5 * (stops - starts + fl + fr)
+    height = (level - 0.5 * (bl + br)) * np.exp(0.5 * np.minimum(half_run / sigma, 5.0) ** 2)
+    return centre, height * _SQRT2PI * sigma, half_run
 
 
 def _meta_tail(noise, fwhm, lsf_fit, lsf_method, rejected, n_candidates, min_snr):
@@ -1305,18 +791,81 @@ def _meta_tail(noise, fwhm, lsf_fit, lsf_method, rejected, n_candidates, min_snr
     }
 
 
-def _prune(state, ctx, fwhm, snr_cut, rejected, *, final):
-    """Drop components that are not credible lines; count each reason in ``rejected``."""
+def _split_wide(state, ctx, min_snr):
+    """Components significantly wider than the local LSF become two lines of that width.
+
+    An unresolved pair fitted as one line comes out wide; two components at the LSF width,
+    as far apart as the excess width implies, start the next fit, which (with the pruning
+    of weak, merged or duplicate components) decides whether the pair is real.
+    """
+    if state.centre.size == 0:
+        return state
+    local = ctx.shape_at(state.centre)[0]
+    s, err = state.sigma, state.sigma_err
+    wide = ((s > 1.25 * local) & (s - local > 3.0 * err) & (s < 3.0 * local)
+            & (state.snr > 2.0 * min_snr) & state.converged & ~state.saturated)
+    if not wide.any():
+        return state
+    half = np.sqrt(s[wide] ** 2 - local[wide] ** 2)
+    keep = state.subset(~wide)
+    c = state.centre[wide]
+    f = 0.5 * state.flux[wide]
+    return keep.extend(_cat(c - half, c + half), _cat(local[wide], local[wide]), _cat(f, f))
+
+
+def _misfit_companions(state, local, snr_cut):
+    """Components no more significant than a brighter neighbour's profile misfit could make.
+
+    The misfit scale is measured on the bright isolated lines: ``eps = sqrt(chi2 - dof) /
+    snr`` (the share of a line's significance its best-fit residuals keep; 0 for a perfect
+    profile), upper quartile over lines with snr > 30.  A component within 3 FWHM of a line
+    of significance ``S`` needs ``snr >= snr_cut + 3 eps S``.
+    """
+    single = (state.group_size == 1) & (state.snr > 30) & ~state.saturated
+    if np.count_nonzero(single) < 3 or state.centre.size < 2:
+        return np.zeros(state.centre.size, bool)
+    excess = np.maximum(state.chi2[single] - state.dof[single], 0.0)
+    eps = float(np.quantile(np.sqrt(excess) / state.snr[single], 0.5))
+    if eps <= 0:
+        return np.zeros(state.centre.size, bool)
+    c = state.centre
+    near = np.abs(c[:, None] - c[None, :]) < 3.0 * np.maximum(local[:, None], local[None, :])
+    np.fill_diagonal(near, False)
+    brighter = np.where(near, np.abs(state.snr)[None, :], 0.0).max(axis=1)
+    return (state.snr < snr_cut + 2.0 * eps * brighter) & (brighter > state.snr)
+
+
+def _prune(state, ctx, fwhm, snr_cut, rejected, *, final, broad=None):
+    """Drop components that are not credible lines; count each reason in ``rejected``.
+
+    Significant components far wider than the local LSF are broad features (phosphor bands,
+    continuum humps, stray-light shoulders): appended to ``broad`` (pixel, FWHM, flux, snr).
+    """
     if state.centre.size == 0:
         return state, rejected
     fw = FWHM_PER_SIGMA * state.sigma
     fw_err = FWHM_PER_SIGMA * state.sigma_err
     outside = (state.centre < -0.5) | (state.centre > ctx.n - 0.5) | ~np.isfinite(state.centre)
-    narrow = (fw < 0.5 * fwhm) & ((0.5 * fwhm - fw) > 2.0 * fw_err) & ~outside
+    local = FWHM_PER_SIGMA * ctx.shape_at(np.where(outside, 0.0, state.centre))[0]
+    # A one-pixel event fits better as one pixel than as a line of the local width, and its
+    # free width collapses (a real line's width follows the LSF).
+    spike = state.one_pixel & (fw < 0.75 * local) & ~outside & ~state.saturated
+    narrow = (fw < 0.5 * local) & ((0.5 * local - fw) > 2.0 * fw_err) & ~outside & ~spike
     # Far wider than the LSF: a background wiggle or a fit gone astray, not a line.
-    wide = (fw > _MAX_WIDTH * fwhm) & ~outside & ~narrow
-    weak = (state.snr < snr_cut) & ~outside & ~narrow & ~wide
-    drop = outside | narrow | wide | weak
+    wide = (fw > _MAX_WIDTH * local) & ~outside & ~narrow & ~spike & ~state.saturated
+    weak = (state.snr < snr_cut) & ~outside & ~narrow & ~wide & ~spike & ~state.saturated
+    drop = outside | narrow | wide | weak | spike
+    if final:
+        # A faint component beside a much brighter line must stand out from what the bright
+        # line's own misfit (an unmodelled tail or wing) can leave in the residuals.
+        echo = _misfit_companions(state, local, snr_cut) & ~drop
+        rejected["misfit_companion"] = rejected.get("misfit_companion", 0) + int(
+            np.count_nonzero(echo))
+        drop |= echo
+    if final and broad is not None and np.any(wide & (state.snr >= snr_cut)):
+        sel = wide & (state.snr >= snr_cut)
+        broad.extend(zip(state.centre[sel].tolist(), fw[sel].tolist(),
+                         state.flux[sel].tolist(), state.snr[sel].tolist(), strict=True))
     # Duplicates: two components within 0.6 FWHM; keep the brighter.
     order = np.argsort(state.centre)
     c = state.centre[order]
@@ -1326,6 +875,7 @@ def _prune(state, ctx, fwhm, snr_cut, rejected, *, final):
     weaker = np.where(state.flux[for_idx_a] < state.flux[for_idx_b], for_idx_a, for_idx_b)
     dup[weaker] = True
     dup &= ~drop
+    rejected["spike"] += int(np.count_nonzero(spike))
     if final:
         rejected["outside"] += int(np.count_nonzero(outside))
         rejected["too_narrow"] += int(np.count_nonzero(narrow))
@@ -1351,35 +901,41 @@ def _flag_combinations():
     return np.array(words), np.array([len(w) for w in words])
 
 
-def _table_from_state(state, ctx, fwhm, clipped, meta, n):
+def _table_from_state(state, ctx, fwhm, meta, n, noise):
     st = state
     dof = np.maximum(st.dof, 1)
     poor = chdtrc(dof, st.chi2) < 0.01
     scale = np.where(poor, np.sqrt(st.chi2 / dof), 1.0)
+    # The gain behind the weights was itself estimated: Student-t inflation of the photon share.
+    peak = st.flux / (_SQRT2PI * st.sigma)
+    level = np.interp(st.centre, np.arange(n), ctx.background) + st.bg_offset + peak
+    scale = scale * np.sqrt(noise.inflation(level))
     fw = FWHM_PER_SIGMA * st.sigma
     fw_err = FWHM_PER_SIGMA * st.sigma_err * scale
+    centre, centre_err = st.centre, st.centre_err * scale
+    # A clipped line whose wing fit failed (several lines under one clipped run, a wing cut
+    # by the detector end) keeps the middle of its run, uncertain by the run's half-length.
+    failed = st.saturated & ~((np.abs(st.centre - st.run_centre) <= st.run_half + 0.5 * fw)
+                              & (st.flux > 0) & np.isfinite(centre_err)
+                              & (centre_err < st.run_half + 0.5))
+    if failed.any():
+        centre = np.where(failed, st.run_centre, centre)
+        centre_err = np.where(failed, st.run_half / math.sqrt(3.0) + 0.25, centre_err)
     cols = {
-        "pixel": st.centre,
-        "pixel_err": st.centre_err * scale,
+        "pixel": centre,
+        "pixel_err": centre_err,
         "fwhm_pixel": fw,
         "fwhm_pixel_err": fw_err,
         "amplitude": st.flux / (_SQRT2PI * st.sigma),
-        "flux": st.flux,
-        "flux_err": st.flux_err * scale,
+        "flux": np.where(failed, st.run_flux, st.flux),
+        "flux_err": np.where(failed, 0.5 * st.run_flux, st.flux_err * scale),
         "background": np.interp(st.centre, np.arange(n), ctx.background) + st.bg_offset,
-        "snr": st.snr,
+        "snr": np.where(failed, np.abs(st.snr), st.snr),
     }
     # Flags as bit codes (1 saturated, 2 blended, 4 blend_suspect, 8 edge).
-    code = 2 * (st.group_size > 1) + 4 * ((fw > 1.1 * fwhm) & ((fw - fwhm) > 3.0 * fw_err))
-    n_sat = clipped["pixel"].size
-    if n_sat:
-        extra = {"pixel": clipped["pixel"], "pixel_err": clipped["pixel_err"],
-                 "fwhm_pixel": clipped["fwhm"], "fwhm_pixel_err": clipped["fwhm_err"],
-                 "amplitude": np.full(n_sat, np.nan), "flux": clipped["flux"],
-                 "flux_err": clipped["flux_err"], "background": clipped["background"],
-                 "snr": clipped["snr"]}
-        cols = {k: np.concatenate([v, extra[k]]) for k, v in cols.items()}
-        code = np.concatenate([code, np.ones(n_sat, code.dtype)])
+    local = FWHM_PER_SIGMA * ctx.shape_at(st.centre)[0]
+    code = (1 * st.saturated + 2 * (st.group_size > 1)
+            + 4 * ((fw > 1.1 * local) & ((fw - local) > 3.0 * fw_err) & ~st.saturated))
     c = cols["pixel"]
     code = code + 8 * ((c < 1.5 * fwhm - 0.5) | (c > n - 0.5 - 1.5 * fwhm))
     # Every combination of the four words is one of 16 strings: look them up by bit code.
