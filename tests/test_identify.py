@@ -554,3 +554,15 @@ def test_match_command_reports_the_axis_correction(demo_solution):
     bad = CliRunner().invoke(main, ["match", str(data / "helium_glow.csv"), "--solution",
                                     str(sol_path), "--axis-err", "two"])
     assert bad.exit_code == 2
+
+
+def test_a_saturated_line_is_identified_from_its_position_whatever_its_flux():
+    # Hg I 435.8328 nm (NIST Handbook) clipped at full well: the fitted flux of a clipped top
+    # can be wildly off, so it must not decide the assignment
+    t = measured(HG_LINES, HG_FLUX)
+    k = HG_LINES.index(435.8328)
+    t["flux"][k] = 1e6 * HG_FLUX[k]
+    t["flags"] = np.where(np.arange(len(t)) == k, "saturated", "")
+    res = identify_lines(lines=t, species=None, wavelength_range=(240.0, 600.0))
+    row = row_at(res, 435.8328)
+    assert row["species"] == "Hg I" and row["probability"] > 0.9

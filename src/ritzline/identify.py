@@ -661,6 +661,7 @@ class _Model:
     near_lnf: np.ndarray  # per group: ln flux of that line
     capacity: np.ndarray  # per group: measured lines it can take (listed members)
     generic: np.ndarray  # log density of each line's flux under "unknown line"
+    flux_known: np.ndarray  # per line: the flux is measured (else it counts for nothing)
     opts: IdentifyOptions
     siblings: tuple  # CSR (ptr, idx) of same-level first-order groups
     active: np.ndarray = None  # bool per species
@@ -787,6 +788,7 @@ class _Model:
             rated = np.logaddexp(
                 np.log1p(-eps) + _lognorm(self.lnf[li], np.nan_to_num(lnmu[gi]), tot),
                 np.log(eps) + self.generic[li])
+        rated = np.where(self.flux_known[li], rated, 0.0)
         flux_term = np.where(has_mu, rated, self.generic[li] + lnq)
         lw = lw + flux_term + self.log_prior_group()[gi] + self.coherence(lnmu)
         act = self.active[g.species[gi]] & ((g.order[gi] == 1) | self.second_active)
@@ -1004,8 +1006,10 @@ def _line_arrays(table, solution, calibration_err, fwhm_nm, wavelength_range, op
 
 
 def _flux_terms(m: _LineArrays, corr: np.ndarray):
-    """ln flux and its error per line, the ln detection limit, and the "unknown line" flux
-    density (a broad fit to all lines, cut at the detection limit)."""
+    """ln flux and its error per line, the ln detection limit, the "unknown line" flux
+    density (a broad fit to all lines, cut at the detection limit), and whether each flux is
+    known at all (a relative error of 1 or more, or a clipped top, says nothing: such a
+    line's flux counts for no hypothesis)."""
     n = m.lam.size
     fl = np.where(np.isfinite(m.flux) & (m.flux > 0), m.flux, np.nan) / corr
     fe = np.where(np.isfinite(m.flux_err) & (m.flux_err > 0), m.flux_err, np.nan) / corr
@@ -1013,19 +1017,21 @@ def _flux_terms(m: _LineArrays, corr: np.ndarray):
     floor = np.nanmin(fl) if good_f.any() else 1.0
     lnf = np.log(np.where(good_f, fl, floor))
     lnf_err = np.where(good_f & np.isfinite(fe), fe / np.where(good_f, fl, 1.0), 2.0)
-    # a saturated line's flux says little: make it (nearly) uninformative
+    # a saturated line's flux is at best a bound from its clipped top: it counts for nothing
     saturated = np.char.find(m.flags.astype(str), "saturated") >= 0
-    lnf_err = np.where(saturated, 2.0, np.minimum(lnf_err, 2.0))
+    known = good_f & (lnf_err < 1.0) & ~saturated
+    lnf_err = np.where(known, lnf_err, 10.0)  # keeps it out of the scale fits too
     if good_f.any() and np.isfinite(fe).any():
         noise = np.nanpercentile(fe, 10)
         snr_min = np.nanpercentile(m.snr, 2) if np.isfinite(m.snr).any() else 5.0
         ln_lim = float(np.log(max(noise * max(snr_min, 3.0), 1e-300)))
     else:
         ln_lim = float(np.min(lnf)) if n else 0.0
-    mean_f = float(np.mean(lnf)) if n else 0.0
-    sd_f = max(float(np.std(lnf)) if n > 1 else 1.0, 0.7)
+    ref = lnf[known] if known.any() else lnf
+    mean_f = float(np.mean(ref)) if ref.size else 0.0
+    sd_f = max(float(np.std(ref)) if ref.size > 1 else 1.0, 0.7)
     generic = _lognorm(lnf, mean_f, sd_f) - log_ndtr((mean_f - ln_lim) / sd_f)
-    return lnf, lnf_err, ln_lim, generic
+    return lnf, lnf_err, ln_lim, np.where(known, generic, 0.0), known
 
 
 def _select_species(model: _Model, opts: IdentifyOptions):
@@ -1210,7 +1216,7 @@ def identify_lines(
                 "the response does not cover every measured line "
                 f"({lo:.1f}–{hi:.1f} nm); extend it over the whole spectrum"
             )
-    lnf, lnf_err, ln_lim, generic = _flux_terms(m, corr)
+    lnf, lnf_err, ln_lim, generic, flux_known = _flux_terms(m, corr)
 
     # the axis correction comes first; the candidate search then runs in the corrected frame
     disp, x_det = _line_dispersion(table, solution, nm_axis)
@@ -1232,7 +1238,8 @@ def identify_lines(
     n_sp = len(names)
     model = _Model(
         groups=groups, n_species=n_sp, lnf=lnf, lnf_err=lnf_err, ln_lim=ln_lim,
-        width=width, **pos, generic=generic, opts=opts, siblings=_siblings(groups),
+        width=width, **pos, generic=generic, flux_known=flux_known, opts=opts,
+        siblings=_siblings(groups),
         capacity=np.array([len(mm) for mm in groups.members], float),
     )
     model.active = np.array([bool(np.any(groups.species == k)) for k in range(n_sp)])
