@@ -54,6 +54,28 @@ def parse_wavelength_range(_ctx, _param, value: str | None):
     return lo, hi
 
 
+def parse_axis_err(_ctx, _param, value: str | None):
+    """Click callback: "2px", "2 px", "0.5nm" or a bare number of pixels -> a Quantity."""
+    if value is None:
+        return None
+    import astropy.units as u
+
+    text = value.strip().lower().replace(" ", "")
+    unit = u.pix
+    for suffix, un in (("px", u.pix), ("pix", u.pix), ("nm", u.nm)):
+        if text.endswith(suffix):
+            text, unit = text[: -len(suffix)], un
+            break
+    try:
+        number = float(text)
+    except ValueError:
+        raise click.BadParameter(f"expected a distance such as 2px or 0.5nm, not {value!r}") \
+            from None
+    if not number >= 0:
+        raise click.BadParameter(f"the axis uncertainty cannot be negative, got {value!r}")
+    return number * unit
+
+
 def echo_json(data) -> None:
     click.echo(json.dumps(data, indent=2, default=str))
 
@@ -506,6 +528,17 @@ def _match_print(result, max_rows: int) -> None:
     import numpy as np
 
     t = result.lines
+    ax = result.meta["axis_correction"]
+    unit = ax["unit"]
+    click.echo(f"wavelength axis: searched within ±{ax['axis_err_told']:.3g} {unit}; "
+               f"correction offset {ax['offset']:+.3f} ± {ax['offset_err']:.3f} {unit}, "
+               f"tilt {ax['tilt']:+.3f} ± {ax['tilt_err']:.3f} {unit} (edge to centre)")
+    if "shift_nm" in ax:
+        lo, mid, hi = ax["shift_nm"]
+        elo, emid, ehi = ax["shift_err_nm"]
+        click.echo(f"  subtracted from the measured wavelengths: {lo:+.4f} ± {elo:.4f} nm at the "
+                   f"first pixel, {mid:+.4f} ± {emid:.4f} nm mid-way, {hi:+.4f} ± {ehi:.4f} nm at "
+                   "the last")
     click.echo(f"{'measured':>10s} {'±':>7s} {'SNR':>6s}  {'species':7s} {'listed':>9s} "
                f"{'upper level':28s} {'E_up/eV':>7s} {'p':>5s}  flags")
     for k, row in enumerate(t):
@@ -564,6 +597,9 @@ def _match_print(result, max_rows: int) -> None:
               help="Relative spectral response file (wavelength nm, response) for level "
               "populations and the excitation temperature.")
 @click.option("--column", default=None, help="Counts column of the spectrum file.")
+@click.option("--axis-err", default=None, metavar="DIST", callback=parse_axis_err,
+              help="How far off the wavelength axis may be, e.g. 2px or 0.5nm (a bare "
+              "number is px; default 0.5 px). An offset and tilt are searched within it.")
 @click.option("-o", "--output", type=click.Path(dir_okay=False), default=None,
               help="Write the line assignments (ECSV).")
 @click.option("--levels", "levels_path", type=click.Path(dir_okay=False), default=None,
@@ -579,8 +615,8 @@ def _match_print(result, max_rows: int) -> None:
 @click.option("--max-rows", type=click.IntRange(min=1), default=200, show_default=True,
               help="Print at most this many lines.")
 @handle_errors
-def match(file, species, solution_path, medium, max_energy, response, column, output,
-          levels_path, species_table, plot, diagram, boltzmann, max_rows) -> None:
+def match(file, species, solution_path, medium, max_energy, response, column, axis_err,
+          output, levels_path, species_table, plot, diagram, boltzmann, max_rows) -> None:
     """Identify the atomic transitions behind the emission lines of FILE.
 
     Prints each line's assignment with its probability, the species judged present, and the
@@ -600,7 +636,7 @@ def match(file, species, solution_path, medium, max_energy, response, column, ou
               or (spectrum.meta or {}).get("medium") or "air")
     resp = read_response(response) if response else None
     result = identify_lines(spectrum, species, solution=solution, medium=medium,
-                            max_electron_energy=max_energy, response=resp)
+                            max_electron_energy=max_energy, response=resp, axis_err=axis_err)
     _match_print(result, max_rows)
     for table, path in ((result.lines, output), (result.levels, levels_path),
                         (result.species, species_table)):
