@@ -54,6 +54,28 @@ def parse_wavelength_range(_ctx, _param, value: str | None):
     return lo, hi
 
 
+def parse_axis_err(_ctx, _param, value: str | None):
+    """Click callback: "2px", "2 px", "0.5nm" or a bare number of pixels -> a Quantity."""
+    if value is None:
+        return None
+    import astropy.units as u
+
+    text = value.strip().lower().replace(" ", "")
+    unit = u.pix
+    for suffix, un in (("px", u.pix), ("pix", u.pix), ("nm", u.nm)):
+        if text.endswith(suffix):
+            text, unit = text[: -len(suffix)], un
+            break
+    try:
+        number = float(text)
+    except ValueError:
+        raise click.BadParameter(f"expected a distance such as 2px or 0.5nm, not {value!r}") \
+            from None
+    if not number >= 0:
+        raise click.BadParameter(f"the axis uncertainty cannot be negative, got {value!r}")
+    return number * unit
+
+
 def echo_json(data) -> None:
     click.echo(json.dumps(data, indent=2, default=str))
 
@@ -261,8 +283,10 @@ def transitions_command(
     fwhm: float | None,
     output: str | None,
 ) -> None:
-    """List the electric-dipole transitions of SPECIES (e.g. Ne, "Hg I", NeI) with Ritz
-    wavelengths computed from published energy levels, joined to the published lines.
+    """List the electric-dipole transitions of SPECIES (e.g. Ne, "Hg I", NeI, "Ar II": any
+    neutral or singly ionised spectrum of the NIST ASD level data) with Ritz wavelengths
+    computed from published energy levels, joined to the published lines (intensity shown
+    blank where no source gives one).
 
     Flags: obs = in the published line list; intercomb = spin-changing; ground/metastable =
     kind of lower level; memory = values recalled without a readable published table.
@@ -329,6 +353,24 @@ def _peaks_print(lines) -> None:
         summary += (f"; gain {gain:.3g} e-/ADU, read noise {noise.get('read_noise', 0.0):.3g}"
                     f" ADU ({noise.get('method', '?')})")
     click.echo(summary)
+    inst = meta.get("instrument")
+    if inst:
+        shape = (f"line shape: FWHM {inst['fwhm_chebyshev_px'][0]:.2f} px"
+                 + (" (varies along the detector)" if len(inst["fwhm_chebyshev_px"]) > 1 else "")
+                 + (f", skew {inst['asymmetry_chebyshev'][0]:+.2f}"
+                    if any(inst["asymmetry_chebyshev"]) else "")
+                 + (f", Lorentzian fraction {inst['lorentzian_fraction']:.3f}"
+                    if inst["lorentzian_fraction"] else ""))
+        click.echo(f"{shape}; offset {inst['offset_adu']:.6g} ADU "
+                   f"({inst['sources'].get('offset', '?')})")
+        if inst["flags"]:
+            click.echo("not constrained by this exposure (conservative values used): "
+                       + ", ".join(inst["flags"]))
+    broad = meta.get("broad_features") or []
+    if broad:
+        click.echo(f"broad features (not lines): {len(broad)}, at pixel "
+                   + ", ".join(f"{b['pixel']:.0f} (FWHM {b['fwhm_pixel']:.0f} px)"
+                               for b in broad[:6]))
     if rejected:
         click.echo(f"rejected candidates: {rejected}")
 
@@ -349,6 +391,12 @@ def _peaks_print(lines) -> None:
               help="Detector gain in e-/ADU (default: estimated).")
 @click.option("--read-noise", type=click.FloatRange(min=0), default=None,
               help="Read noise in ADU (used with --gain).")
+@click.option("--instrument", "instrument_path", type=click.Path(exists=True, dir_okay=False),
+              default=None, help="Instrument model (JSON, or a solution carrying one) of this "
+              "spectrometer: its offset, gain, read noise and line shape are used instead of "
+              "being estimated again (default: the --solution's, if it has one).")
+@click.option("--save-instrument", "save_instrument", type=click.Path(dir_okay=False),
+              default=None, help="Write the instrument model measured on FILE (JSON).")
 @click.option("--column", default=None, help="Counts column of a table file.")
 @click.option("-o", "--output", type=click.Path(dir_okay=False), default=None,
               help="Write the line table (ECSV).")
@@ -356,26 +404,41 @@ def _peaks_print(lines) -> None:
               help="Draw the spectrum with the lines marked (PNG).")
 @handle_errors
 def peaks_cmd(file, solution_path, dark_path, min_snr, fwhm_guess, saturation, gain,
-              read_noise, column, output, plot_path):
-    """Find the emission lines of FILE: centroids, widths, fluxes and their errors."""
+              read_noise, instrument_path, save_instrument, column, output, plot_path):
+    """Find the emission lines of FILE: centroids, widths, fluxes and their errors.
+
+    The detector's offset, gain and read noise and the line shape along the detector (the
+    instrument model) are measured on FILE unless --instrument or --solution gives them;
+    --save-instrument keeps them for the exposures that follow.
+    """
     import warnings
 
     from ._io import write_table
+    from .instrument import Instrument
     from .peaks import attach_wavelengths, find_lines
     from .spectrum import read_spectrum
 
     spectrum = read_spectrum(file, column=column, saturation=saturation)
     dark = read_spectrum(dark_path, column=column) if dark_path else None
-    with warnings.catch_warnings(record=True) as caught:
-        warnings.simplefilter("always")
-        lines = find_lines(spectrum, min_snr=min_snr, fwhm_guess=fwhm_guess,
-                           saturation=saturation, gain=gain, read_noise=read_noise, dark=dark)
-    for w in caught:
-        click.echo(f"warning: {w.message}", err=True)
+    solution = None
     if solution_path:
         from .calibration import Solution
 
-        lines = attach_wavelengths(lines, Solution.load(solution_path))
+        solution = Solution.load(solution_path)
+    instrument = (Instrument.load(instrument_path) if instrument_path
+                  else getattr(solution, "instrument", None))
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        lines = find_lines(spectrum, min_snr=min_snr, fwhm_guess=fwhm_guess,
+                           saturation=saturation, gain=gain, read_noise=read_noise, dark=dark,
+                           instrument=instrument)
+    for w in caught:
+        click.echo(f"warning: {w.message}", err=True)
+    if save_instrument:
+        Instrument.from_dict(lines.meta["instrument"]).save(save_instrument)
+        click.echo(f"instrument model written to {save_instrument}")
+    if solution is not None:
+        lines = attach_wavelengths(lines, solution)
     lines.meta["input"] = str(file)
     _peaks_print(lines)
     if output:
@@ -465,6 +528,17 @@ def _match_print(result, max_rows: int) -> None:
     import numpy as np
 
     t = result.lines
+    ax = result.meta["axis_correction"]
+    unit = ax["unit"]
+    click.echo(f"wavelength axis: searched within ±{ax['axis_err_told']:.3g} {unit}; "
+               f"correction offset {ax['offset']:+.3f} ± {ax['offset_err']:.3f} {unit}, "
+               f"tilt {ax['tilt']:+.3f} ± {ax['tilt_err']:.3f} {unit} (edge to centre)")
+    if "shift_nm" in ax:
+        lo, mid, hi = ax["shift_nm"]
+        elo, emid, ehi = ax["shift_err_nm"]
+        click.echo(f"  subtracted from the measured wavelengths: {lo:+.4f} ± {elo:.4f} nm at the "
+                   f"first pixel, {mid:+.4f} ± {emid:.4f} nm mid-way, {hi:+.4f} ± {ehi:.4f} nm at "
+                   "the last")
     click.echo(f"{'measured':>10s} {'±':>7s} {'SNR':>6s}  {'species':7s} {'listed':>9s} "
                f"{'upper level':28s} {'E_up/eV':>7s} {'p':>5s}  flags")
     for k, row in enumerate(t):
@@ -510,8 +584,9 @@ def _match_print(result, max_rows: int) -> None:
 @main.command("match")
 @click.argument("file", type=click.Path(exists=True, dir_okay=False))
 @click.option("--species", default=None, metavar="LIST",
-              help="Species to consider, comma-separated (e.g. Ne,Ar or 'Ne I,Hg I'); "
-              "default: detect among every shipped species.")
+              help="Species to consider, comma-separated (e.g. Ne,Ar or 'Ne I,Hg I,Ar II'): "
+              "any neutral or singly ionised spectrum of the NIST ASD data; default: detect "
+              "among the eight lamp species H, He, Ne, Ar, Kr, Xe, Hg, Na.")
 @click.option("--solution", "solution_path", type=click.Path(exists=True, dir_okay=False),
               help="Wavelength solution (JSON from `calibrate`); needed for a pixel-axis file.")
 @click.option("--medium", type=click.Choice(["air", "vacuum"]), default=None,
@@ -522,6 +597,9 @@ def _match_print(result, max_rows: int) -> None:
               help="Relative spectral response file (wavelength nm, response) for level "
               "populations and the excitation temperature.")
 @click.option("--column", default=None, help="Counts column of the spectrum file.")
+@click.option("--axis-err", default=None, metavar="DIST", callback=parse_axis_err,
+              help="How far off the wavelength axis may be, e.g. 2px or 0.5nm (a bare "
+              "number is px; default 0.5 px). An offset and tilt are searched within it.")
 @click.option("-o", "--output", type=click.Path(dir_okay=False), default=None,
               help="Write the line assignments (ECSV).")
 @click.option("--levels", "levels_path", type=click.Path(dir_okay=False), default=None,
@@ -537,8 +615,8 @@ def _match_print(result, max_rows: int) -> None:
 @click.option("--max-rows", type=click.IntRange(min=1), default=200, show_default=True,
               help="Print at most this many lines.")
 @handle_errors
-def match(file, species, solution_path, medium, max_energy, response, column, output,
-          levels_path, species_table, plot, diagram, boltzmann, max_rows) -> None:
+def match(file, species, solution_path, medium, max_energy, response, column, axis_err,
+          output, levels_path, species_table, plot, diagram, boltzmann, max_rows) -> None:
     """Identify the atomic transitions behind the emission lines of FILE.
 
     Prints each line's assignment with its probability, the species judged present, and the
@@ -558,7 +636,7 @@ def match(file, species, solution_path, medium, max_energy, response, column, ou
               or (spectrum.meta or {}).get("medium") or "air")
     resp = read_response(response) if response else None
     result = identify_lines(spectrum, species, solution=solution, medium=medium,
-                            max_electron_energy=max_energy, response=resp)
+                            max_electron_energy=max_energy, response=resp, axis_err=axis_err)
     _match_print(result, max_rows)
     for table, path in ((result.lines, output), (result.levels, levels_path),
                         (result.species, species_table)):
