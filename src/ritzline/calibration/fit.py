@@ -69,6 +69,7 @@ class Fit:
     sig: np.ndarray  # 1-sigma of each matched line, nm
     lev: np.ndarray  # leverage of each matched line
     dropped: dict = field(default_factory=dict)  # (di, ri) -> reason
+    model: Model | None = None
     log10_p: float = 0.0
     n_trials: int = 1
     method: str = "search"
@@ -119,7 +120,32 @@ def fit_pairs(det: Lines, ref: Refs, di, ri, model: Model, dropped=None) -> Fit 
     n_eff = float(lev.sum())
     chi2r = chi2 / max(1.0, di.size - 2.0)
     return Fit(di, ri, coef, cov * max(1.0, chi2r), chi2r, n_eff, sig, lev,
-               dict(dropped or {}))
+               dict(dropped or {}), model)
+
+
+def loo(det: Lines, ref: Refs, fit: Fit):
+    """Predicted wavelength (and 1-sigma) at every detection, a matched line's from the map
+    of the others: in closed form through its leverage, by refitting without it when it
+    pins the map alone (leverage above 0.9)."""
+    mu, sd, _ = predict(det, fit)
+    y = ref.wavelength[fit.ri]
+    keep = 1.0 - fit.lev
+    soft = keep > 0.1
+    d = fit.di[soft]
+    mu[d] = y[soft] - (y[soft] - mu[d]) / keep[soft]
+    sd[d] = np.sqrt(fit.scale) * fit.sig[soft] * np.sqrt(1 / keep[soft] - 1)
+    for k in np.flatnonzero(~soft):
+        sel = np.arange(fit.di.size) != k
+        other = fit_pairs(det, ref, fit.di[sel], fit.ri[sel], fit.model)
+        if other is None:
+            mu[fit.di[k]], sd[fit.di[k]] = y[k], np.inf
+            continue
+        m, s_, _ = predict(det, other)
+        mu[fit.di[k]] = m[fit.di[k]]
+        sd[fit.di[k]] = math.sqrt(max(s_[fit.di[k]] ** 2 - other.scale * (
+            det.pixel_err[fit.di[k]] * abs(float(_dispersion(other, det.pixel[fit.di[k]],
+                                                             det.n_pixels)))) ** 2, 0.0))
+    return mu, sd
 
 
 def predict(det: Lines, fit: Fit):
@@ -174,7 +200,7 @@ def _odds(det: Lines, ref: Refs, fit: Fit, like, rows, cols) -> np.ndarray:
     fraction ``UNLISTED`` of the detections spread over the span), and, for the listed
     line, every other detection."""
     best = like[rows, cols]
-    span = abs(float(np.ptp(predict(det, fit)[0]))) or 1.0
+    span = 2 * abs(float(fit.coef[1])) or 1.0  # nm over the detector
     unlisted = UNLISTED * np.bincount(det.frame)[det.frame[rows]] / span
     others = like[rows].sum(axis=1) - best + unlisted
     rivals = like[:, cols].sum(axis=0) - best
@@ -202,32 +228,31 @@ def _reject(det: Lines, ref: Refs, fit: Fit, model: Model, banned: set) -> Fit |
     while fit is not None and fit.di.size > 3:
         x = xnorm(det.pixel[fit.di], det.n_pixels)
         y = ref.wavelength[fit.ri]
-        keep = np.clip(1.0 - fit.lev, 1e-3, None)
         r = (y - _cheb.chebval(x, fit.coef)) / fit.sig
-        z = np.abs(r) / np.sqrt(keep)
+        z = np.abs(r) / np.sqrt(np.clip(1.0 - fit.lev, 1e-3, None))
         s = max(1.0, 1.4826 * float(np.median(z)))
-        mu, sd, _ = predict(det, fit)
-        mu[fit.di] = y - (y - mu[fit.di]) / keep
-        sd[fit.di] = np.sqrt(fit.scale) * fit.sig * np.sqrt(np.clip(1 / keep - 1, 0, None))
-        like, _ = _likelihoods(det, ref, fit, mu, sd)
-        odds = _odds(det, ref, fit, like, fit.di, fit.ri)
-        bad = np.maximum(z / (Z_REJECT * s), np.where(odds < 1.0, 1.0 + 1.0 / (1.0 + odds), 0))
-        worst = int(np.argmax(bad))
-        if bad[worst] < 1.0:
-            break
+        worst = int(np.argmax(z))
+        odds = None
+        if z[worst] < Z_REJECT * s:
+            mu, sd = loo(det, ref, fit)
+            like, _ = _likelihoods(det, ref, fit, mu, sd)
+            odds = _odds(det, ref, fit, like, fit.di, fit.ri)
+            worst = int(np.argmin(odds))
+            if odds[worst] >= 1.0:
+                break
         key = (int(fit.di[worst]), int(fit.ri[worst]))
         banned.add(key)
         sel = np.arange(fit.di.size) != worst
-        why = (f"outlier {z[worst] / s:.1f} sigma" if z[worst] >= Z_REJECT * s else
+        why = (f"outlier {z[worst] / s:.1f} sigma" if odds is None else
                f"identity not the likeliest at the map of the others (odds {odds[worst]:.2g})")
         fit = fit_pairs(det, ref, fit.di[sel], fit.ri[sel], model, {**fit.dropped, key: why})
     return fit
 
 
 def _core(det: Lines, ref: Refs, di, ri, model: Model):
-    """The consistent part of a start (which may hold look-alike pairs): the map through the
-    60 % of pairs it fits best, refitted until that subset no longer changes (least trimmed
-    squares by concentration steps), then every pair within its window."""
+    """The consistent part of a start (which may hold look-alike pairs): the 60 % of pairs
+    the map through them fits best, refitted until that subset no longer changes (least
+    trimmed squares by concentration steps)."""
     di, ri = np.asarray(di, int), np.asarray(ri, int)
     if di.size < 5:
         return di, ri
@@ -245,9 +270,8 @@ def _core(det: Lines, ref: Refs, di, ri, model: Model):
         if np.array_equal(new, np.sort(sub)):
             break
         sub = new
-    s = max(1.0, 1.4826 * float(np.median(r[sub])))
-    keep = r < Z_WINDOW * s
-    return di[keep], ri[keep]
+    # the rest of the start joins only as growth admits any line: as a clear identity
+    return di[sub], ri[sub]
 
 
 def grow(det: Lines, ref: Refs, di, ri, model: Model, *, max_rounds=40) -> Fit | None:
@@ -314,12 +338,10 @@ def log10_chance(det: Lines, ref: Refs, fit: Fit, n_trials: int) -> float:
     """
     from scipy.stats import binom, gamma
 
-    mu, sd, disp = predict(det, fit)
+    _, sd, disp = predict(det, fit)
     floor = sd + math.sqrt(fit.scale) * float(np.median(ref.wavelength_err))
-    y = ref.wavelength[fit.ri]
-    keep = np.clip(1.0 - fit.lev, 1e-6, None)
-    mu[fit.di] = y - (y - mu[fit.di]) / keep
-    floor[fit.di] = math.sqrt(fit.scale) * fit.sig / np.sqrt(keep)
+    mu, sd_loo = loo(det, ref, fit)
+    floor[fit.di] = np.hypot(sd_loo[fit.di], math.sqrt(fit.scale) * fit.sig)
     span = abs(float(np.ptp(mu))) + float(np.median(disp)) * det.n_pixels * 0.1
     half = 0.05 * span
     terms = []

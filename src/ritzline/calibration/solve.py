@@ -21,6 +21,9 @@ CONFIDENT_P = 1e-3  # largest look-elsewhere-corrected chance probability accept
 MAX_CHI2 = 25.0  # residuals above 5x the measured centroid errors are not a solution
 MIN_LINES = 4  # a map checked by fewer lines is never returned without a guess
 WELL_GROWN = 8  # a candidate with this many lines needs no other start from its cell
+# a candidate this many orders of magnitude below chance (after the look-elsewhere factor)
+# ends the search: no other start could do better by enough to matter
+DECISIVE = 20.0
 
 
 def calibrate(
@@ -230,6 +233,9 @@ def _blind(det: Lines, refs_at, raw: Refs, wrange, degree):
         return f
 
     for _count, direction, pairs, d_cell in seeds:
+        if candidates and min(c[0].log10_p for c in candidates) < -DECISIVE - math.log10(
+                max(n_cells, 1)):
+            break
         pairs = pairs[det.frame[pairs[:, 0]] == raw.frame[pairs[:, 1]]]
         if pairs.shape[0] < 3:
             continue
