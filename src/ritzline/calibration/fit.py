@@ -124,16 +124,17 @@ def fit_pairs(det: Lines, ref: Refs, di, ri, model: Model, dropped=None) -> Fit 
 
 
 def loo(det: Lines, ref: Refs, fit: Fit):
-    """Predicted wavelength (and 1-sigma) at every detection, a matched line's from the map
-    of the others: in closed form through its leverage, by refitting without it when it
-    pins the map alone (leverage above 0.9)."""
-    mu, sd, _ = predict(det, fit)
+    """Predicted wavelength and its 1-sigma (map and centroid, as :func:`predict`) at every
+    detection, a matched line's from the map of the others: in closed form through its
+    leverage, by refitting without it when it pins the map alone (leverage above 0.9)."""
+    mu, sd, disp = predict(det, fit)
     y = ref.wavelength[fit.ri]
     keep = 1.0 - fit.lev
     soft = keep > 0.1
     d = fit.di[soft]
     mu[d] = y[soft] - (y[soft] - mu[d]) / keep[soft]
-    sd[d] = np.sqrt(fit.scale) * fit.sig[soft] * np.sqrt(1 / keep[soft] - 1)
+    sd[d] = np.sqrt(fit.scale * (fit.sig[soft] ** 2 * fit.lev[soft] / keep[soft]
+                                 + (det.pixel_err[d] * disp[d]) ** 2))
     for k in np.flatnonzero(~soft):
         sel = np.arange(fit.di.size) != k
         other = fit_pairs(det, ref, fit.di[sel], fit.ri[sel], fit.model)
@@ -141,10 +142,7 @@ def loo(det: Lines, ref: Refs, fit: Fit):
             mu[fit.di[k]], sd[fit.di[k]] = y[k], np.inf
             continue
         m, s_, _ = predict(det, other)
-        mu[fit.di[k]] = m[fit.di[k]]
-        sd[fit.di[k]] = math.sqrt(max(s_[fit.di[k]] ** 2 - other.scale * (
-            det.pixel_err[fit.di[k]] * abs(float(_dispersion(other, det.pixel[fit.di[k]],
-                                                             det.n_pixels)))) ** 2, 0.0))
+        mu[fit.di[k]], sd[fit.di[k]] = m[fit.di[k]], s_[fit.di[k]]
     return mu, sd
 
 
@@ -341,7 +339,7 @@ def log10_chance(det: Lines, ref: Refs, fit: Fit, n_trials: int) -> float:
     _, sd, disp = predict(det, fit)
     floor = sd + math.sqrt(fit.scale) * float(np.median(ref.wavelength_err))
     mu, sd_loo = loo(det, ref, fit)
-    floor[fit.di] = np.hypot(sd_loo[fit.di], math.sqrt(fit.scale) * fit.sig)
+    floor[fit.di] = sd_loo[fit.di]
     span = abs(float(np.ptp(mu))) + float(np.median(disp)) * det.n_pixels * 0.1
     half = 0.05 * span
     terms = []
