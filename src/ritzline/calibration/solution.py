@@ -386,6 +386,7 @@ class Solution:
             "verdict": self.verdict,
             "medium": self.medium,
             "lamps": list(self.lamps),
+            "degree_limited": self.meta.get("degree_limited", ""),
         }
 
 
@@ -551,9 +552,14 @@ def write_calibrated(spectrum, solution: Solution, path: str | os.PathLike) -> P
     return path
 
 
-def with_input(solution: Solution, path: str | os.PathLike) -> Solution:
-    """The solution with its input file's name and SHA-256 recorded in ``meta``."""
+def with_input(solution: Solution, *paths: str | os.PathLike) -> Solution:
+    """The solution with its input files' names and SHA-256 recorded in ``meta`` (one
+    string each for one file, lists for several)."""
     from dataclasses import replace
 
-    meta = dict(solution.meta, input=str(path), input_sha256=file_sha256(path))
+    names = [str(p) for p in paths]
+    sums = [file_sha256(p) for p in paths]
+    one = len(names) == 1
+    meta = dict(solution.meta, input=names[0] if one else names,
+                input_sha256=sums[0] if one else sums)
     return replace(solution, meta=meta)
