@@ -22,7 +22,7 @@ from .inputs import Lines, Refs
 DEGREE = 5  # highest Chebyshev degree; what the lines cannot determine the prior holds
 # 1-sigma prior of |c_k / c_1| for k = 2, 3, 4, 5 (grating spectrometers depart from a
 # linear map by up to a few per cent of the span, common practice)
-CURVATURE_PRIOR = (0.015, 0.008, 0.001, 0.0005)
+CURVATURE_PRIOR = (0.02, 0.01, 0.0005, 0.0002)
 Z_WINDOW = 4.0  # a detection joins a listed line within this many sigma of the prediction
 # lamp exposures show lines their list does not hold (impurities, ghosts, unlisted weak
 # lines): about this fraction of the detections (common practice)
