@@ -22,6 +22,8 @@ DEFAULT_RANGE_NM = (200.0, 1100.0)
 # see: on simulated wrong-lamp and random-line exposures (tests/benchmarks/
 # bench_calibrate.py) the best corrected chance reaches ~3e-5, so the bar sits below it.
 CONFIDENT_P = 1e-5
+# with a guess the map's shape is the earlier one: the shift hypotheses are the whole search
+CONFIDENT_P_GUESS = 1e-3
 MAX_CHI2 = 25.0  # residuals above 5x the measured centroid errors are not a solution
 MIN_LINES = 4  # a map checked by fewer lines is never returned without a guess
 WELL_GROWN = 8  # a candidate with this many lines needs no other start from its cell
@@ -140,10 +142,11 @@ def calibrate(
             f"larger than the centroid errors (reduced chi-square {fit.chi2r:.0f} > "
             f"{MAX_CHI2:g}): misidentified or blended lines, after {what}: {tried}. Check the "
             "lamp and range, or give --degree/--guess.")
-    if fit.log10_p > math.log10(CONFIDENT_P):
+    bar = CONFIDENT_P if guess is None else CONFIDENT_P_GUESS
+    if fit.log10_p > math.log10(bar):
         raise CalibrationError(
             f"best match ({n_used} lines) could be chance (p = {10**fit.log10_p:.2g} > "
-            f"{CONFIDENT_P:g}, {fit.n_trials} candidate maps examined) after {what}: "
+            f"{bar:g}, {fit.n_trials} candidate maps examined) after {what}: "
             f"{tried}. Wrong lamp or range, or too few lines: add a lamp or an exposure of "
             "another lamp, expose longer, or give --range/--guess.")
     meta = {
