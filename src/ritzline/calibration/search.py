@@ -133,15 +133,19 @@ def vote_cells(det: Lines, ref: Refs, wrange, *, max_lines=60, max_seeds=6):
     return seeds, len(occupied)
 
 
+def _one_to_one(pairs: np.ndarray, order: np.ndarray) -> np.ndarray:
+    """The first pair (in ``order``) of each detection, then of each listed line."""
+    key = pairs[order]
+    _, first = np.unique(key[:, 0], return_index=True)
+    key = key[np.sort(first)]
+    _, first = np.unique(key[:, 1], return_index=True)
+    return key[np.sort(first)]
+
+
 def initial_pairs(pairs: np.ndarray):
     """One reference per detection and one detection per reference, by vote count."""
     key, counts = np.unique(pairs, axis=0, return_counts=True)
-    order = np.argsort(-counts, kind="stable")
-    key = key[order]
-    _, first_d = np.unique(key[:, 0], return_index=True)
-    key = key[np.sort(first_d)]
-    _, first_r = np.unique(key[:, 1], return_index=True)
-    key = key[np.sort(first_r)]
+    key = _one_to_one(key, np.argsort(-counts, kind="stable"))
     return key[:, 0], key[:, 1]
 
 
@@ -150,21 +154,12 @@ def pairs_along_cell(det: Lines, ref: Refs, pairs: np.ndarray, dispersion: float
     the median offset of all the pairs; those further than twice the median distance are
     left out."""
     offset = ref.wavelength[pairs[:, 1]] - dispersion * det.pixel[pairs[:, 0]]
-    dist = np.abs(offset - np.median(offset))
-    order = np.argsort(dist, kind="stable")
-    key, dist = pairs[order], dist[order]
-    _, first_d = np.unique(key[:, 0], return_index=True)
-    first_d = np.sort(first_d)
-    key, dist = key[first_d], dist[first_d]
-    _, first_r = np.unique(key[:, 1], return_index=True)
-    first_r = np.sort(first_r)
-    key, dist = key[first_r], dist[first_r]
-    close = dist <= 2.0 * np.median(dist)
-    key = key[close]
+    mid = np.median(offset)
+    key = _one_to_one(pairs, np.argsort(np.abs(offset - mid), kind="stable"))
+    dist = np.abs(ref.wavelength[key[:, 1]] - dispersion * det.pixel[key[:, 0]] - mid)
+    key = key[dist <= 2.0 * np.median(dist)]
     key = key[np.argsort(key[:, 0])]
     return key[:, 0], key[:, 1]
-
-
 
 
 def pair_starts(det: Lines, ref: Refs, wrange, *, max_lines=12, keep=20):

@@ -75,40 +75,10 @@ class Solution:
     ``x = 2 p / (n_pixels - 1) - 1`` (the domain ``[0, n_pixels - 1]`` maps to ``[-1, 1]``) and
     ``wavelength(p) = sum_k coefficients[k] T_k(x)`` in nm in ``medium``.
 
-    Attributes
-    ----------
-    coefficients, covariance : ndarray
-        Chebyshev coefficients (nm) and their covariance (nm^2), already scaled by the
-        reduced chi-square when that exceeds 1.
-    n_pixels : int
-        Detector length the map was made for.
-    medium : str
-        "air" or "vacuum".
-    lamps : tuple of str
-        Lamp names used.
-    lines : dict of ndarray
-        One entry per detection associated with a reference line: ``pixel, pixel_err,
-        wavelength_ref, wavelength_ref_err, species, designation, flux, snr, residual_nm,
-        used, reason, exposure``; :attr:`matches` is the same as an astropy Table (built on
-        first use,
-        so that loading a solution does not import astropy).
-    rms_nm, rms_pixel : float
-        Unweighted RMS of the residuals of the used lines.
-    confidence : float
-        One minus the look-elsewhere-corrected chance of a match this good by accident.
-    verdict : str
-        "confident" (the only verdict a returned solution carries without a guess),
-        "confident (from guess)" for re-calibrations.
-    fwhm_pixel : float
-        Median FWHM (pixels) of the used lamp lines (NaN when unknown).
-    model_spread : ndarray
-        Chebyshev coefficients of a model doubt added in quadrature to the covariance band
-        (zeros when the covariance, which carries the curvature prior, says it all).
-    meta : dict
-        Provenance: ``created``, ``ritzline_version``, ``input``, ``input_sha256``,
-        ``method``, ``p_chance``, ``n_trials``, ``chi2_reduced``, ``wavelength_range``...
-    instrument : ritzline.instrument.Instrument or None
-        The instrument model the lines were measured with, when known.
+    The fields are those of the JSON file (see the module docstring); ``lines`` holds its
+    ``lines`` as columns (numpy arrays), :attr:`matches` the same as an astropy Table (built
+    on first use, so that loading a solution does not import astropy), ``instrument`` the
+    :class:`~ritzline.instrument.Instrument` the lines were measured with (or None).
     """
 
     coefficients: np.ndarray

@@ -149,19 +149,14 @@ def calibrate(
             f"{bar:g}, {fit.n_trials} candidate maps examined) after {what}: "
             f"{tried}. Wrong lamp or range, or too few lines: add a lamp or an exposure of "
             "another lamp, expose longer, or give --range/--guess.")
-    meta = {
-        "created": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
-        "ritzline_version": _version(),
-        "wavelength_range": list(wrange),
-        "n_detected": int(det.pixel.size),
-        "n_reference": int(ref.wavelength.size),
-        "input": infos[0].get("source") if len(infos) == 1 else
-        [i.get("source") for i in infos],
-        "input_sha256": infos[0].get("sha256") if len(infos) == 1 else
-        [i.get("sha256") for i in infos],
-        "exposures": [list(f) for f in lamps_per_frame],
-        "solve_seconds": time.perf_counter() - t0,
-    }
+    one = len(infos) == 1
+    meta = {"created": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
+            "ritzline_version": _version(), "wavelength_range": list(wrange),
+            "n_detected": int(det.pixel.size), "n_reference": int(ref.wavelength.size),
+            **{k: infos[0].get(s) if one else [i.get(s) for i in infos]
+               for k, s in (("input", "source"), ("input_sha256", "sha256"))},
+            "exposures": [list(f) for f in lamps_per_frame],
+            "solve_seconds": time.perf_counter() - t0}
     return _solution(det, ref, fit, all_lamps, medium, meta, verdict, infos[0])
 
 
@@ -187,14 +182,10 @@ def _frames(spectrum, lamps):
 def _as_nm_range(wavelength_range) -> tuple[float, float]:
     if wavelength_range is None:
         return DEFAULT_RANGE_NM
-    vals = []
-    for v in wavelength_range:
-        if hasattr(v, "unit"):
-            import astropy.units as u
+    import astropy.units as u
 
-            v = v.to_value(u.nm, equivalencies=u.spectral())
-        vals.append(float(v))
-    lo, hi = sorted(vals)
+    lo, hi = sorted(float(v.to_value(u.nm, equivalencies=u.spectral()) if hasattr(v, "unit")
+                          else v) for v in wavelength_range)
     if not (math.isfinite(lo) and math.isfinite(hi)) or hi - lo <= 0:
         raise CalibrationError(f"wavelength_range {wavelength_range!r} is empty or not finite")
     return lo, hi
@@ -207,12 +198,9 @@ def _resolution_key(fwhm_nm: float) -> int | None:
 
 def _remap(raw: Refs, ref: Refs, ri) -> np.ndarray:
     """Index in ``ref`` (a merged list) of each ``raw`` line: the same exposure's nearest."""
-    out = np.empty(np.size(ri), int)
-    for k, r in enumerate(np.asarray(ri, int)):
-        d = np.abs(ref.wavelength - raw.wavelength[r]) + np.where(ref.frame == raw.frame[r],
-                                                                  0, np.inf)
-        out[k] = int(np.argmin(d))
-    return out
+    ri = np.asarray(ri, int)
+    d = np.abs(ref.wavelength[None, :] - raw.wavelength[ri, None])
+    return np.argmin(np.where(ref.frame[None, :] == raw.frame[ri, None], d, np.inf), axis=1)
 
 
 def _fwhm_nm(det: Lines, fit) -> float:
