@@ -93,7 +93,9 @@ def test_an_unresolved_multiplet_is_fitted_at_its_middle_with_its_extent_as_erro
     lamp = {"wavelength": wl[keep], "intensity": np.asarray(he["intensity"], float)[keep],
             "usable": np.asarray(he["usable"], bool)[keep]}
     ins = _instrument(lo=390.0, hi=1090.0, n=2048, fwhm=2.0)
-    counts, truth = _exposure(ins, lamp, missing=(0.0, 0.0))
+    # no unlisted lines: with one 6 nm from the group, 1000 px beyond the other lines, no
+    # calibrator can tell which of the two is the group (the extrapolation is wider)
+    counts, truth = _exposure(ins, lamp, missing=(0.0, 0.0), extra=(0.0, 0.0))
     sol = calibrate(counts, "He")
     m = sol.matches
     ref = np.asarray(m["wavelength_ref"], float)
@@ -351,3 +353,97 @@ def test_vacuum_solution_is_the_air_solution_converted():
     # solutions must differ by exactly that conversion
     np.testing.assert_allclose(vac.wavelength(grid), air_to_vacuum(air.wavelength(grid)),
                                atol=2e-3)
+
+
+def test_a_neon_and_a_mercury_exposure_make_one_solution():
+    # one spectrometer, two frames taken one after the other, each with its own lamp: the
+    # mercury lines hold the blue end that neon leaves empty, neon the red end
+    ins = _instrument(lo=360.0, hi=720.0, n=2048)
+    ne, truth_ne = _exposure(ins, "Ne", seed=1)
+    hg, truth_hg = _exposure(ins, "Hg", seed=2)
+    sol = calibrate([ne, hg], lamps=[("Ne",), ("Hg",)])
+    m = sol.matches[np.asarray(sol.matches["used"], bool)]
+    frame = np.asarray(m["exposure"], int)
+    species = np.asarray(m["species"], str)
+    assert set(frame) == {0, 1}
+    assert all(s.startswith("Ne") for s in species[frame == 0])
+    assert all(s.startswith("Hg") for s in species[frame == 1])
+    true_wl = ins.wavelength(np.asarray(m["pixel"], float))
+    fwhm_nm = ins.fwhm_px * np.abs(ins.dispersion(np.asarray(m["pixel"], float)))
+    assert np.all(np.abs(true_wl - np.asarray(m["wavelength_ref"], float)) < 0.5 * fwhm_nm)
+    for truth in (truth_ne, truth_hg):
+        assert _max_error_over_fwhm(sol, ins, truth) < 0.1  # issue 5 success criterion
+    assert sol.lamps == ("Ne", "Hg")
+
+
+def test_exposures_without_one_lamp_each_are_refused():
+    ins = _instrument()
+    ne, _ = _exposure(ins, "Ne")
+    with pytest.raises(CalibrationError, match="one lamp entry each"):
+        calibrate([ne, ne], lamps=[("Ne",)])
+
+
+def test_cli_calibrates_two_exposures_into_one_solution(tmp_path):
+    ins = _instrument(lo=360.0, hi=720.0, n=2048)
+    files = []
+    for k, lamp in enumerate(("Ne", "Hg")):
+        counts, _ = _exposure(ins, lamp, seed=k + 1)
+        files.append(tmp_path / f"{lamp}.txt")
+        np.savetxt(files[-1], counts)
+    out = tmp_path / "s.json"
+    res = CliRunner().invoke(main, ["calibrate", *map(str, files), "--lamp", "Ne", "--lamp",
+                                    "Hg", "-o", str(out)])
+    assert res.exit_code == 0, res.output
+    doc = json.loads(out.read_text())
+    assert len(doc["meta"]["input_sha256"]) == 2
+    assert {line["exposure"] for line in doc["lines"]} == {0, 1}
+    res = CliRunner().invoke(main, ["calibrate", *map(str, files), "--lamp", "Ne", "-o",
+                                    str(out)])
+    assert res.exit_code == 2
+
+
+def test_a_flagged_listed_line_takes_part_with_a_larger_reference_error():
+    # Hg I 253.65 nm is flagged in the lamp definition (self-absorbed resonance line): it is
+    # fitted, with more than its listed uncertainty, not dropped
+    # (resolved from Hg I 253.48 nm, 0.17 nm away, at 0.09 nm/px and a 1.5 px LSF)
+    ins = _instrument(lo=240.0, hi=600.0, n=4096, fwhm=1.5)
+    counts, _ = _exposure(ins, "Hg", missing=(0.0, 0.0), extra=(0.0, 0.0))
+    sol = calibrate(counts, "Hg")
+    m = sol.matches
+    ref = np.asarray(m["wavelength_ref"], float)
+    # 253.6517 nm in air: Sansonetti & Martin, Handbook of Basic Atomic Spectroscopic Data
+    # (2005) (memory)
+    hit = np.abs(ref - 253.6517) < 2e-3
+    assert hit.sum() == 1 and bool(np.asarray(m["used"], bool)[hit][0])
+    listed = levels.lamp_lines("Hg")
+    listed_err = float(np.asarray(listed["wavelength_err"], float)[
+        np.argmin(np.abs(np.asarray(listed["wavelength"], float) - 253.6517))])
+    assert float(np.asarray(m["wavelength_ref_err"], float)[hit][0]) > listed_err
+
+
+def test_a_guess_lets_the_curvature_change_not_only_shift_and_stretch():
+    ins = _instrument()
+    counts, _ = _exposure(ins, "Ne")
+    first = calibrate(counts, "Ne")
+    # the same spectrometer after a rebuild: shifted, stretched and bent by 0.3 nm
+    c = list(ins.coeffs)
+    later = Instrument(n_pixels=ins.n_pixels, coeffs=(c[0] + 1.0, c[1] * 1.001, c[2] + 0.3,
+                                                      c[3]), fwhm_px=ins.fwhm_px, gain=2.0,
+                       read_noise=5.0, background=100.0)
+    counts2, truth2 = _exposure(later, "Ne", seed=7)
+    sol = calibrate(counts2, "Ne", guess=first)
+    assert sol.verdict == "confident (from guess)"
+    assert _max_error_over_fwhm(sol, later, truth2) < 0.1  # issue 5 success criterion
+
+
+def test_a_map_from_few_lines_says_its_degree_was_limited():
+    ins = _instrument(lo=560.0, hi=660.0, n=2048)
+    counts, _ = _exposure(ins, "Ne")
+    from ritzline.peaks import find_lines
+
+    lines = find_lines(counts)
+    lines = lines[np.argsort(np.asarray(lines["snr"]))[::-1][:4]]
+    lines.meta["n_pixels"] = ins.n_pixels
+    sol = calibrate(lines, "Ne", guess=calibrate(counts, "Ne"))
+    assert "curvature prior" in sol.meta["degree_limited"]
+    assert "curvature prior" in sol.summary()["degree_limited"]

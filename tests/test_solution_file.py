@@ -122,3 +122,10 @@ def test_non_finite_covariance_is_refused(doc, tmp_path):
     doc["polynomial"]["covariance"][0][0] = float("inf")
     with pytest.raises(SolutionFormatError, match="non-finite"):
         Solution.load(_write(tmp_path, json.dumps(doc)))
+
+
+def test_the_instrument_model_travels_with_the_solution(solution, tmp_path):
+    pytest.importorskip("ritzline.instrument")
+    assert solution.instrument is not None  # find_lines measured it
+    back = Solution.load(solution.save(tmp_path / "s.json"))
+    assert back.instrument == solution.instrument

@@ -460,16 +460,21 @@ def peaks_cmd(file, solution_path, dark_path, min_snr, fwhm_guess, saturation, g
 
 
 @main.command("calibrate")
-@click.argument("lamp_file", type=click.Path(exists=True, dir_okay=False))
+@click.argument("lamp_files", nargs=-1, required=True,
+                type=click.Path(exists=True, dir_okay=False))
 @click.option("--lamp", "lamps", multiple=True, required=True,
-              help="Lamp species (repeat for mixed lamps: --lamp Hg --lamp Ar).")
+              help="Lamp species. One file: repeat for mixed lamps (--lamp Hg --lamp Ar). "
+                   "Several files of one detector: once per file, in order; join a mixed "
+                   "lamp with '+' (--lamp Ne --lamp Hg+Ar).")
 @click.option("--range", "wrange", default=None, metavar="MIN:MAX",
               callback=parse_wavelength_range,
               help="Coarse wavelength range of the detector in nm (default 200:1100).")
 @click.option("--degree", type=click.IntRange(1, 7), default=None,
-              help="Chebyshev degree (default: chosen from the data).")
+              help="Chebyshev degree (default: 5 under a curvature prior, the lines "
+                   "deciding what they can).")
 @click.option("--guess", "guess_path", type=click.Path(exists=True, dir_okay=False),
-              default=None, help="Earlier solution of this detector: search only a drift.")
+              default=None, help="Earlier solution of this detector: it seeds the search "
+                                 "and its shape is the prior of the new map.")
 @click.option("--medium", type=click.Choice(["air", "vacuum"]), default="air",
               show_default=True, help="Medium of the reference and solution wavelengths.")
 @click.option("--column", default=None, help="Counts column of a table file.")
@@ -478,32 +483,43 @@ def peaks_cmd(file, solution_path, dark_path, min_snr, fwhm_guess, saturation, g
 @click.option("--plot", "plot_path", type=click.Path(dir_okay=False), default=None,
               help="Write a residual plot (PNG).")
 @click.option("--write-calibrated", "calibrated_path", type=click.Path(dir_okay=False),
-              default=None, help="Write the exposure with its wavelength axis (ECSV).")
+              default=None, help="Write the exposure with its wavelength axis (ECSV; one "
+                                 "file only).")
 @click.option("--json", "as_json", is_flag=True, help="Print the summary as JSON.")
 @handle_errors
-def calibrate_cmd(lamp_file, lamps, wrange, degree, guess_path, medium, column, output,
+def calibrate_cmd(lamp_files, lamps, wrange, degree, guess_path, medium, column, output,
                   plot_path, calibrated_path, as_json):
-    """Solve the pixel -> wavelength map of a reference-lamp exposure LAMP_FILE.
+    """Solve the pixel -> wavelength map of reference-lamp exposures LAMP_FILES.
 
-    No line positions are needed: lines are found and matched to the lamp's published
-    wavelengths automatically.  Safety: lamps run at high voltage and some emit UV-C or
-    contain mercury; follow the lamp maker's instructions and your local safety rules.
+    No line positions are needed: lines are found and matched to the lamps' published
+    wavelengths automatically.  Several files (e.g. a neon and a mercury exposure of one
+    spectrometer) give one solution.  Safety: lamps run at high voltage and some emit UV-C
+    or contain mercury; follow the lamp maker's instructions and your local safety rules.
     """
     from .calibration import Solution, calibrate, with_input, write_calibrated
     from .spectrum import read_spectrum
 
-    spectrum = read_spectrum(lamp_file, column=column)
+    if len(lamp_files) > 1 and len(lamps) != len(lamp_files):
+        raise click.UsageError(f"{len(lamp_files)} files need one --lamp each (in order), got "
+                               f"{len(lamps)}")
+    if len(lamp_files) > 1 and calibrated_path:
+        raise click.UsageError("--write-calibrated takes one lamp file")
+    spectra = [read_spectrum(f, column=column) for f in lamp_files]
     guess = Solution.load(guess_path) if guess_path else None
-    solution = calibrate(spectrum, tuple(lamps), wavelength_range=wrange,
+    if len(spectra) == 1:
+        spectrum, lamp_arg = spectra[0], tuple(lamps)
+    else:
+        spectrum, lamp_arg = spectra, [tuple(name.split(",")) for name in lamps]
+    solution = calibrate(spectrum, lamp_arg, wavelength_range=wrange,
                          degree=degree, guess=guess, medium=medium)
-    solution = with_input(solution, lamp_file)
+    solution = with_input(solution, *lamp_files)
     solution.save(output)
     if plot_path:
         from .plots import calibration_residuals
 
         calibration_residuals(solution, plot_path)
     if calibrated_path:
-        write_calibrated(spectrum, solution, calibrated_path)
+        write_calibrated(spectra[0], solution, calibrated_path)
     info = solution.summary()
     if as_json:
         echo_json(info)
@@ -513,7 +529,8 @@ def calibrate_cmd(lamp_file, lamps, wrange, degree, guess_path, medium, column, 
     click.echo(f"lamp          {'+'.join(info['lamps'])} ({info['medium']})")
     click.echo(f"lines used    {info['lines_used']} (rejected {info['lines_rejected']})")
     click.echo(f"RMS           {info['rms_nm'] * 1e3:.3f} pm = {info['rms_pixel']:.3f} px")
-    click.echo(f"degree        {info['degree']}")
+    click.echo(f"degree        {info['degree']}"
+               + (f" ({info['degree_limited']})" if info.get("degree_limited") else ""))
     click.echo(f"dispersion    {lo:.5f} - {hi:.5f} nm/px ({info['direction']})")
     click.echo(f"coverage      {wl_lo:.3f} - {wl_hi:.3f} nm")
     click.echo(f"confidence    {info['confidence']:.6f} ({info['verdict']}; chance of a match "
