@@ -913,11 +913,13 @@ def _table_from_state(state, ctx, fwhm, meta, n, noise):
     centre, centre_err = st.centre, st.centre_err * scale
     # A clipped line whose wing fit failed (several lines under one clipped run, a wing cut
     # by the detector end) keeps the middle of its run, uncertain by the run's half-length.
-    # A fitted peak more than 30 times the clip level extrapolates far beyond the data (wings
-    # shaped by blooming or a neighbour): no honest error comes out of such a fit.
+    # The run's length bounds the peak: a line of this width whose top stood higher would be
+    # clipped over more pixels (one pixel of slack).  A fit beyond that bound extrapolates far
+    # past the data (wings shaped by blooming or a neighbour): no honest error comes from it.
     peak_fit = st.flux / (_SQRT2PI * st.sigma)
+    reach = np.minimum(0.5 * ((st.run_half + 1.0) / st.sigma) ** 2, 50.0)
     failed = st.saturated & ~((np.abs(st.centre - st.run_centre) <= st.run_half + 0.5 * fw)
-                              & (st.flux > 0) & (peak_fit <= 30.0 * st.run_clip)
+                              & (st.flux > 0) & (peak_fit <= st.run_clip * np.exp(reach))
                               & np.isfinite(centre_err) & (centre_err < st.run_half + 0.5))
     if failed.any():
         centre = np.where(failed, st.run_centre, centre)
