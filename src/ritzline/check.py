@@ -574,11 +574,12 @@ class ExposureChecker:
         arrays = spectrum_arrays(spectrum)
         meta = arrays.meta
         row["timestamp"] = str(meta.get("timestamp") or "")
-        if arrays.counts.size != ref.n_pixels:
+        if arrays.counts.size != ref.n_pixels or arrays.first_pixel != 0:
             row["status"] = "fail"
             row["reasons"] = (
-                f"exposure has {arrays.counts.size} pixels but the reference solution has "
-                f"{ref.n_pixels}; it was taken with another detector setting"
+                f"exposure covers detector pixels {arrays.first_pixel}-{arrays.last_pixel} "
+                f"but the reference solution has pixels 0-{ref.n_pixels - 1}; it was cropped "
+                "or taken with another detector setting"
             )
             return
         # a solution that does not know its line width: the finder estimates it, and the

@@ -1,13 +1,16 @@
 """Every figure ritzline draws.  Matplotlib is imported lazily with the Agg backend; the
-library never calls ``plt.show``.  Each function takes results and a path, writes a PNG
-(atomically) and returns the path.
+library never calls ``plt.show``.  Each function takes results and a path, writes the
+figure atomically in the format the path's suffix names (.png, .pdf or .svg) and returns
+the path.
 """
 
 from pathlib import Path
 
 from ._io import atomic_write
 
-__all__ = ["new_figure", "save_figure"]
+__all__ = ["FIGURE_FORMATS", "figure_format", "new_figure", "save_figure"]
+
+FIGURE_FORMATS = {".png": "png", ".pdf": "pdf", ".svg": "svg"}
 
 
 def new_figure(*args, **kwargs):
@@ -22,11 +25,29 @@ def new_figure(*args, **kwargs):
     return fig, axes
 
 
+def figure_format(path) -> str:
+    """The format a figure is written in, from the suffix of ``path``: png, pdf or svg.
+
+    Any other suffix is refused (RitzlineError) instead of writing a PNG under a name that
+    says otherwise.
+    """
+    from .errors import RitzlineError
+
+    suffix = Path(path).suffix.lower()
+    if suffix not in FIGURE_FORMATS:
+        raise RitzlineError(
+            f"{path}: figures are written as .png, .pdf or .svg; "
+            f"{suffix or 'no suffix'} is not one of them"
+        )
+    return FIGURE_FORMATS[suffix]
+
+
 def save_figure(fig, path, *, dpi: int = 110) -> Path:
-    """Write ``fig`` as PNG atomically and return the path."""
+    """Write ``fig`` atomically in the format of the path's suffix and return the path."""
     path = Path(path)
+    fmt = figure_format(path)
     with atomic_write(path, "wb") as fh:
-        fig.savefig(fh, format="png", dpi=dpi)
+        fig.savefig(fh, format=fmt, dpi=dpi)
     return path
 
 
