@@ -436,7 +436,8 @@ class Solution:
         if not isinstance(meta, dict):
             raise bad("field 'meta' must be an object")
         line_cols = _lines_columns(lines, bad)
-        return cls(
+        _check_covariance(cov, bad)
+        solution = cls(
             coefficients=coef,
             covariance=cov,
             n_pixels=n_pixels,
@@ -451,6 +452,8 @@ class Solution:
             model_spread=spread,
             meta=dict(meta, loaded_from=source),
         )
+        _check_stored_residuals(solution, bad)
+        return solution
 
     def summary(self) -> dict:
         """The figures a person reads first (used by the CLI report)."""
@@ -484,6 +487,42 @@ _LINE_FIELDS = {
     "used": bool,
     "reason": str,
 }
+
+
+def _check_covariance(cov: np.ndarray, bad) -> None:
+    """A covariance matrix is symmetric with no negative variance (positive semi-definite)."""
+    scale = float(np.max(np.abs(cov))) if cov.size else 0.0
+    if not np.allclose(cov, cov.T, rtol=1e-9, atol=1e-12 * scale):
+        raise bad("polynomial.covariance is not symmetric")
+    if np.any(np.diag(cov) < 0):
+        raise bad("polynomial.covariance has a negative variance on its diagonal")
+    if scale > 0 and np.linalg.eigvalsh(0.5 * (cov + cov.T)).min() < -1e-9 * scale:
+        raise bad("polynomial.covariance is not positive semi-definite (an impossible "
+                  "covariance: edited or damaged)")
+
+
+def _check_stored_residuals(solution: Solution, bad) -> None:
+    """The file stores, per matched line, ``residual_nm`` = fit minus reference and the RMS
+    of the used ones: the coefficients must reproduce them, or the file was edited."""
+    m = solution.lines
+    if not len(m["pixel"]):
+        return
+    fit = solution.wavelength(m["pixel"]) - m["wavelength_ref"]
+    tol = 1e-7 + 1e-9 * np.abs(m["wavelength_ref"])
+    off = np.abs(fit - m["residual_nm"])
+    if np.any(off > tol):
+        k = int(np.argmax(off - tol))
+        raise bad(
+            f"polynomial.coefficients do not reproduce the stored residual of the line at "
+            f"pixel {m['pixel'][k]:.2f} ({m['residual_nm'][k]:.6f} nm stored, "
+            f"{fit[k]:.6f} nm from the coefficients): the file was edited or damaged"
+        )
+    used = np.asarray(m["used"], bool)
+    if used.any():
+        rms = float(np.sqrt(np.mean(np.asarray(m["residual_nm"])[used] ** 2)))
+        if not math.isclose(rms, solution.rms_nm, rel_tol=1e-6, abs_tol=1e-9):
+            raise bad(f"rms_nm {solution.rms_nm:g} does not match the RMS of the used lines' "
+                      f"residuals ({rms:g} nm): the file was edited or damaged")
 
 
 def _numbers(value, name: str, bad) -> np.ndarray:

@@ -1314,7 +1314,9 @@ def check_exposures(
         info = {
             "totals": totals,
             "thresholds": asdict(limits),
-            "reference": {k: meta[k] for k in ref_keys},
+            # a solution may not know its line width (fwhm_pixel null): NaN -> null
+            "reference": {k: None if isinstance(meta[k], float) and not np.isfinite(meta[k])
+                          else meta[k] for k in ref_keys},
             "complete": result.complete,
             "resumed_exposures": result.n_skipped,
             "checked_exposures": result.n_run,
