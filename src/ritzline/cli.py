@@ -25,8 +25,15 @@ def _one_line(text: str) -> str:
     return " ".join(str(text).split())
 
 
+_READING: list[str] = []  # the input file being worked on, for messages that lack it
+
+
 class _WarningPrinter:
-    """Prints every warning once as ``warning: <file>: <where>: <what>`` (no source paths)."""
+    """Prints every warning once as ``warning: <file>: <where>: <what>`` (no source paths).
+
+    ritzline's own warnings carry their file and place; any other library's warning is
+    prefixed with the input file being worked on and its category.
+    """
 
     def __init__(self):
         self.seen: set[str] = set()
@@ -37,6 +44,8 @@ class _WarningPrinter:
         text = _one_line(message)
         if not issubclass(category, RitzlineWarning):
             text = f"{category.__name__}: {text}"
+            if _READING and not text.startswith(_READING[-1]):
+                text = f"{_READING[-1]}: {text}"
         if text not in self.seen:
             self.seen.add(text)
             click.echo(f"warning: {text}", err=True)
@@ -60,6 +69,12 @@ def handle_errors(func):
         try:
             with warnings.catch_warnings():
                 warnings.simplefilter("always")
+                if not debug:
+                    # numerical notes from inside numpy ("Mean of empty slice") say nothing
+                    # a user can act on; an empty line table is reported by each command
+                    warnings.filterwarnings("ignore", category=RuntimeWarning,
+                                            module=r"numpy(\.|$)")
+                    warnings.filterwarnings("ignore", message=r"find_lines: .*empty line table")
                 warnings.showwarning = _WarningPrinter()
                 return func(*args, **kwargs)
         except BrokenPipeError:
@@ -67,7 +82,7 @@ def handle_errors(func):
         except (RitzlineError, OSError) as exc:
             if debug:
                 raise
-            _fail(_one_line(exc) or type(exc).__name__)
+            _fail(_with_file(_one_line(exc) or type(exc).__name__))
         except (click.exceptions.Exit, click.ClickException, click.Abort, SystemExit,
                 KeyboardInterrupt):
             raise
@@ -78,6 +93,16 @@ def handle_errors(func):
                   "`ritzline --debug ...` for the traceback, and please report it)")
 
     return wrapper
+
+
+def _with_file(message: str) -> str:
+    """The message, prefixed with the input file when it names no file itself."""
+    import os
+
+    head = message.split(": ", 1)[0]
+    if not _READING or os.path.exists(head) or any(p in message for p in _READING):
+        return message
+    return f"{_READING[-1]}: {message}"
 
 
 def _quiet_broken_pipe() -> None:
@@ -104,6 +129,7 @@ def read_input(path, column=None, hdu=None, pixel_origin=None, **kwargs):
     """read_spectrum with the command-line reader options."""
     from .spectrum import read_spectrum
 
+    _READING.append(str(path))
     return read_spectrum(path, column=_column_arg(column), hdu=hdu, pixel_origin=pixel_origin,
                          **kwargs)
 
@@ -301,52 +327,67 @@ def _transitions_flags(row, blend_label: str) -> str:
     return " ".join(flags)
 
 
-def _transitions_print(table, medium: str, blend_of: dict[int, str]) -> None:
+def _transitions_print(table, medium: str, blend_of: dict[int, str], *,
+                       console=None) -> None:
+    """The transitions table.  Numbers are never cut: the level names and flags wrap, and
+    on a terminal too narrow for every column the optional ones are left out, with a line
+    saying which (``-o`` writes them all)."""
     import math
 
+    from rich import box
     from rich.console import Console
     from rich.table import Table as RichTable
 
     def num(value, fmt: str) -> str:
         return "" if value is None or not math.isfinite(float(value)) else format(value, fmt)
 
-    from rich import box
-
+    columns = [  # (header, justify, optional, cell)
+        ("species", "left", False, lambda r, i: str(r["species"])),
+        ("λ (nm)", "right", False, lambda r, i: num(r["wavelength"], ".4f")),
+        ("±", "right", False, lambda r, i: num(r["wavelength_err"], ".4f")),
+        ("published", "right", True, lambda r, i: num(r["wavelength_obs"], ".5f")),
+        ("lower", "left", False, lambda r, i: str(r["lower"])),
+        ("upper", "left", False, lambda r, i: str(r["upper"])),
+        ("E_up (eV)", "right", False, lambda r, i: num(r["upper_ev"], ".3f")),
+        ("rel. int.", "right", True, lambda r, i: num(r["intensity"], "g")),
+        ("A_ki (s⁻¹)", "right", True, lambda r, i: num(r["aki"], ".3g")),
+        ("flags", "left", False, lambda r, i: _transitions_flags(r, blend_of.get(i, ""))),
+    ]
+    cells = [[cell(row, i) for (_, _, _, cell) in columns] for i, row in enumerate(table)]
+    widths = [max([len(h)] + [len(c[k]) for c in cells]) for k, (h, *_) in enumerate(columns)]
+    if console is None:
+        console = Console()
+        if not console.is_terminal:
+            console = Console(width=220)  # files and pipes get whole rows
+    wrapping = {"lower", "upper", "flags"}
+    # words of the wrapping columns need room too: their longest word
+    for k, (h, *_) in enumerate(columns):
+        if h in wrapping:
+            widths[k] = max([len(h)] + [len(w) for c in cells for w in c[k].split()] or [0])
+    keep = list(range(len(columns)))
+    dropped = []
+    for k in (8, 7, 3):  # A_ki, rel. int., published: left out first
+        if sum(widths[j] + 3 for j in keep) <= console.width:
+            break
+        keep.remove(k)
+        dropped.append(columns[k][0])
     rt = RichTable(
         title=f"{len(table)} transitions, wavelengths in {medium}",
         title_justify="left",
         box=box.SIMPLE_HEAD,
     )
-    for name, justify in (
-        ("species", "left"),
-        ("λ (nm)", "right"),
-        ("±", "right"),
-        ("published", "right"),
-        ("lower", "left"),
-        ("upper", "left"),
-        ("E_up (eV)", "right"),
-        ("rel. int.", "right"),
-        ("A_ki (s⁻¹)", "right"),
-        ("flags", "left"),
-    ):
-        rt.add_column(name, justify=justify, no_wrap=True)
-    for i, row in enumerate(table):
-        rt.add_row(
-            str(row["species"]),
-            num(row["wavelength"], ".4f"),
-            num(row["wavelength_err"], ".4f"),
-            num(row["wavelength_obs"], ".5f"),
-            str(row["lower"]),
-            str(row["upper"]),
-            num(row["upper_ev"], ".3f"),
-            num(row["intensity"], "g"),
-            num(row["aki"], ".3g"),
-            _transitions_flags(row, blend_of.get(i, "")),
-        )
-    console = Console()
-    if not console.is_terminal:
-        console = Console(width=220)  # files and pipes get whole rows
+    for k in keep:
+        header, justify, _, _ = columns[k]
+        if header in wrapping:
+            rt.add_column(header, justify=justify, overflow="fold", min_width=widths[k])
+        else:
+            rt.add_column(header, justify=justify, no_wrap=True, min_width=widths[k])
+    for row_cells in cells:
+        rt.add_row(*(row_cells[k] for k in keep))
     console.print(rt)
+    if dropped:
+        console.print(f"(terminal too narrow: left out {', '.join(reversed(dropped))}; "
+                      "widen it or write the table with -o)")
 
 
 @main.command("transitions")
@@ -519,7 +560,11 @@ def peaks_cmd(file, solution_path, dark_path, min_snr, fwhm_guess, saturation, g
     if solution is not None:
         lines = attach_wavelengths(lines, solution)
     lines.meta["input"] = str(file)
-    _peaks_print(lines)
+    if len(lines):
+        _peaks_print(lines)
+    else:
+        reason = lines.meta.get("warning") or f"no line reaches min_snr={min_snr:g}"
+        click.echo(f"no lines found in {file}: {reason}")
     if output:
         write_table(lines, output)
         click.echo(f"lines written to {output}")
@@ -715,7 +760,10 @@ def match(file, species, solution_path, medium, max_energy, response, column, ou
     resp = read_response(response) if response else None
     result = identify_lines(spectrum, species, solution=solution, medium=medium,
                             max_electron_energy=max_energy, response=resp)
-    _match_print(result, max_rows)
+    if len(result.lines):
+        _match_print(result, max_rows)
+    else:
+        click.echo(f"no lines found in {file}: nothing to identify")
     for table, path in ((result.lines, output), (result.levels, levels_path),
                         (result.species, species_table)):
         if path:

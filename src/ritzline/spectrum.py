@@ -603,8 +603,8 @@ def _check_last_row(block, delim, n_fields, path, start, end, *, raw_ends_newlin
             tail = "" if raw_ends_newline or end < start + len(block) else " and no line end"
             raise SpectrumFormatError(
                 f"{path}: line {lineno}: last data row has {sum(1 for f in fields if f)} of "
-                f"{n_fields} values{tail}: the file looks truncated (cut off while being written or "
-                "copied); re-export it, or delete that row"
+                f"{n_fields} values{tail}: the file looks truncated (cut off while being "
+                "written or copied); re-export it, or delete that row"
             )
         return
 
@@ -1089,6 +1089,36 @@ def _header_facts(text: str, path: Path) -> dict:
     return facts
 
 
+def _counts_look(finite: np.ndarray, where: str) -> str | None:
+    """Refuse sign-flipped counts, warn about counts that cannot be raw detector counts.
+
+    ritzline finds emission lines as upward peaks over a noise model in ADU: a spectrum
+    whose values are mostly negative with its strong features pointing down (a flipped
+    sign, an absorption-style export) would give fake lines at the edges of every dip, so
+    it is refused.  Counts spanning less than one ADU are scaled or normalised: lines can
+    still be found, their significance comes from the scatter, but gain, read noise and
+    saturation levels do not apply; recorded in ``meta["counts_note"]`` with a warning.
+    """
+    if finite.size == 0:
+        return None
+    med = float(np.median(finite))
+    down, up = med - float(finite.min()), float(finite.max()) - med
+    if med < 0 and down > 0 and down > 5.0 * up:
+        raise SpectrumFormatError(
+            f"{where}: the counts are mostly negative (median {med:g}) and their strong "
+            "features point down: the spectrum looks sign-flipped or is an absorption "
+            "spectrum; ritzline finds emission lines in raw counts: flip the sign first"
+        )
+    span = float(finite.max() - finite.min())
+    if 0 < span <= 1.0 and not np.all(finite == np.rint(finite)):
+        note = (f"the counts span only {span:.3g}: they look scaled or normalised, not raw "
+                "ADU; line significance comes from the scatter, gain and saturation do not "
+                "apply")
+        _warn(f"{where}: {note}")
+        return note
+    return None
+
+
 def _detect_saturation(counts: np.ndarray) -> float | None:
     """A full-scale ADC value reached by several samples is taken as the saturation level."""
     finite = counts[np.isfinite(counts)]
@@ -1197,6 +1227,7 @@ def _build(parsed: _Parsed, path: Path, *, axis_unit, saturation, pixel_origin=N
             f"{path}: pixel_origin={pixel_origin!r} given but the axis is a wavelength axis"
         )
 
+    counts_note = _counts_look(counts[finite], where)
     mask = ~finite
     if parsed.mask is not None and parsed.mask.shape == mask.shape:
         mask = mask | parsed.mask
@@ -1226,6 +1257,7 @@ def _build(parsed: _Parsed, path: Path, *, axis_unit, saturation, pixel_origin=N
         n_saturated=int(np.count_nonzero(counts >= sat)) if sat is not None else 0,
         timestamp=parsed.timestamp or facts.get("timestamp"),
         medium=parsed.medium or facts.get("medium"),
+        counts_note=counts_note,
         **pixel_meta,
     )
     if sat is not None and np.count_nonzero(counts[finite] >= sat) > 0.5 * finite.sum():
