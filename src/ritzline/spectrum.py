@@ -377,6 +377,13 @@ def _decode(raw: bytes, path: Path) -> str:
     head = raw[:4096]
     if b"\x00" in head:
         raise SpectrumFormatError(f"{path}: binary data (NUL bytes), not a text, FITS or ECSV file")
+    nul = raw.find(b"\x00")
+    if nul >= 0:
+        line = raw.count(b"\n", 0, nul) + 1
+        raise SpectrumFormatError(
+            f"{path}: line {line}: binary data (NUL bytes) inside the text: the file is "
+            "damaged (a full disk or an interrupted copy?); re-export it"
+        )
     try:
         text = raw.decode("utf-8-sig")
     except UnicodeDecodeError:
@@ -444,10 +451,18 @@ def _data_rows(lines: list[str], start: int, delim, decimal_comma) -> int:
         fields = _split(stripped, delim)
         if decimal_comma:
             fields = [f.replace(",", ".") for f in fields]
-        if any(_is_number(f) for f in fields if f):
+        if any(_is_number(f) for f in fields if f) or not _is_footer(stripped):
             return k + 1
         end = k
     return end
+
+
+def _is_footer(line: str) -> bool:
+    """A closing marker or note after the data: printable text that does not start like a
+    number (a row cut in the middle of a number is damage, not a footer)."""
+    if line[0] in "0123456789+-.,":
+        return False
+    return all(ch.isprintable() or ch == "\t" for ch in line)
 
 
 def _header_row(lines: list[str], start: int, delim, n_fields: int, path: Path):
