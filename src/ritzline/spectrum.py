@@ -506,9 +506,11 @@ def _check_decimal_comma_ambiguity(data, delim, header_names, path: Path, start:
     """
     if delim != "," or data.ndim != 2 or data.shape[1] < 2 or data.shape[0] < 3:
         return
+    if header_names is not None:  # the header says how many columns there are
+        return
     first = data[:, 0]
     steps = np.diff(first)
-    if np.all(steps > 0) or np.all(steps < 0):
+    if np.mean(steps == 0) < 0.3:  # a decimal axis split at its comma repeats its integers
         return
     frac = data[:, 1]
     if not np.all((frac >= 0) & (frac == np.rint(frac))):
@@ -709,6 +711,8 @@ def _unit_from_name(name: str | None) -> str | None:
     bracket = re.search(r"[\(\[\{]\s*([^\)\]\}]+?)\s*[\)\]\}]", low)
     if bracket and bracket.group(1) in _UNIT_WORDS:
         return _UNIT_WORDS[bracket.group(1)]
+    if bracket and bracket.group(1) not in ("air", "vacuum", "vac", "in air", "in vacuum"):
+        return bracket.group(1)  # a unit ritzline does not know: refused, not guessed
     for sep in ("/", "_", " ", "-"):
         if sep in low:
             tail = low.rsplit(sep, 1)[1].strip()
@@ -792,7 +796,8 @@ def _parse_fits(raw: bytes, path: Path, column, hdu=None) -> _Parsed:
                 warnings.simplefilter("ignore")
                 return h.data
         except Exception as exc:
-            raise SpectrumFormatError(f"{path}: HDU {k}: data cannot be read ({exc})") from None
+            raise SpectrumFormatError(f"{path}: HDU {k}: data cannot be read ({exc}); the "
+                                      "file may be truncated") from None
 
     usable = [(k, h) for k, h in enumerate(hdus)
               if isinstance(h, fits.BinTableHDU | fits.TableHDU | fits.PrimaryHDU
