@@ -341,8 +341,10 @@ class Solution:
         ------
         SolutionFormatError
             Naming the file and the problem: missing, unreadable, not JSON, wrong schema or
-            version, a missing or wrong-typed field, a covariance of the wrong shape, or
-            non-finite numbers.
+            version, a missing or wrong-typed field, a covariance of the wrong shape, not
+            symmetric or not positive semi-definite, non-finite numbers, or coefficients
+            that do not reproduce the residuals and RMS stored with the matched lines (an
+            edited file).
         """
         path = Path(path)
         try:
@@ -357,7 +359,11 @@ class Solution:
             raise SolutionFormatError(
                 f"{path}: not a JSON solution file ({exc.msg} at line {exc.lineno})"
             ) from None
-        return cls.from_dict(doc, source=str(path))
+        solution = cls.from_dict(doc, source=str(path))
+        # a file carries its own checks: the stored residuals and RMS of the matched lines
+        _check_stored_residuals(solution, lambda problem: SolutionFormatError(
+            f"{path}: {problem}; re-create it with ritzline calibrate"))
+        return solution
 
     @classmethod
     def from_dict(cls, doc: Any, *, source: str = "solution") -> Solution:
@@ -452,7 +458,6 @@ class Solution:
             model_spread=spread,
             meta=dict(meta, loaded_from=source),
         )
-        _check_stored_residuals(solution, bad)
         return solution
 
     def summary(self) -> dict:

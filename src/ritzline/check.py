@@ -577,9 +577,10 @@ class ExposureChecker:
         if arrays.counts.size != ref.n_pixels or arrays.first_pixel != 0:
             row["status"] = "fail"
             row["reasons"] = (
-                f"exposure covers detector pixels {arrays.first_pixel}-{arrays.last_pixel} "
-                f"but the reference solution has pixels 0-{ref.n_pixels - 1}; it was cropped "
-                "or taken with another detector setting"
+                f"exposure has {arrays.counts.size} pixels (detector pixels "
+                f"{arrays.first_pixel}-{arrays.last_pixel} in the file) but the reference "
+                f"solution has {ref.n_pixels}; it was cropped or taken with another detector "
+                "setting"
             )
             return
         # a solution that does not know its line width: the finder estimates it, and the
