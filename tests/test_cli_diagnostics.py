@@ -298,3 +298,18 @@ def test_read_table_refuses_what_it_cannot_read(tmp_path):
     (tmp_path / "x.ecsv").write_text("not a table")
     with pytest.raises(RitzlineError, match=r"x\.ecsv"):
         read_table(tmp_path / "x.ecsv")
+
+
+def test_check_records_what_the_reader_doubted_in_the_row(calibrated, tmp_path):
+    rows = (DATA / "series" / "frame_00.csv").read_text().splitlines()
+    start = rows.index("pixel,counts")
+    scaled = [f"{r.split(',')[0]},{float(r.split(',')[1]) * 1e-9:.6e}"
+              for r in rows[start + 1:]]
+    (tmp_path / "in").mkdir()
+    (tmp_path / "in" / "scaled.csv").write_text("\n".join(rows[: start + 1] + scaled) + "\n")
+    result = run("check", tmp_path / "in", "--solution", calibrated / "solution.json",
+                 "-o", tmp_path / "chk", "--workers", "2")
+    table = read_table(tmp_path / "chk" / "summary.ecsv")
+    assert table["status"][0] == "warn"
+    assert "look scaled or normalised" in table["reasons"][0]
+    assert "warning:" not in result.stderr or "scaled.csv" in result.stderr

@@ -545,10 +545,19 @@ class ExposureChecker:
 
     def __call__(self, path: str) -> dict:
         row = _blank_row(str(path))
+        import warnings
+
+        from .errors import RitzlineWarning
+
         try:
             from .spectrum import read_spectrum
 
-            spectrum = read_spectrum(path)
+            with warnings.catch_warnings(record=True) as caught:
+                warnings.simplefilter("always", RitzlineWarning)
+                spectrum = read_spectrum(path)
+            # what the reader doubted goes into the row (worker processes print nothing)
+            notes = [" ".join(str(w.message).split()) for w in caught
+                     if issubclass(w.category, RitzlineWarning)]
         except (RitzlineError, OSError) as exc:
             row["status"] = "error"
             row["reasons"] = " ".join(str(exc).split()) or type(exc).__name__
@@ -564,6 +573,9 @@ class ExposureChecker:
             row["status"] = "error"
             msg = " ".join(str(exc).split())
             row["reasons"] = f"check failed: {type(exc).__name__}: {msg}"
+        if notes and row["status"] != "error":
+            row["status"] = "warn" if row["status"] == "pass" else row["status"]
+            row["reasons"] = "; ".join([r for r in [row["reasons"]] if r] + notes)
         return row
 
     def _measure(self, spectrum, row: dict) -> None:
