@@ -287,3 +287,47 @@ def test_fuzzed_solution_file_loads_or_is_refused(tmp_path_factory, edits, cut):
     assert np.all(np.isfinite(band)) and np.all(band >= 0)
     assert np.all(np.linalg.eigvalsh(sol.covariance) > -1e-9 * np.abs(sol.covariance).max()
                   - 1e-300)
+
+
+def _text_export(counts):
+    return "pixel,counts\n" + "\n".join(f"{i},{c:.0f}" for i, c in enumerate(counts)) + "\n"
+
+
+@_FUZZ
+@given(cut=st.integers(14, 2000))
+def test_a_text_file_cut_anywhere_is_refused_flagged_or_read_exactly(tmp_path_factory, cut):
+    counts = _counts(150) + 10000  # five-digit values: a cut number is always shorter
+    text = _text_export(counts)
+    path = tmp_path_factory.mktemp("cut") / "c.csv"
+    path.write_text(text[:cut])
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        try:
+            spec = read_spectrum(path)
+        except SpectrumFormatError as exc:
+            assert str(path) in str(exc)
+            return
+    if any("cut off" in str(w.message) for w in caught):
+        return
+    # read without a word: every value read is the value written
+    n = spec.flux.size
+    np.testing.assert_array_equal(spec.flux.value, counts[:n])
+
+
+_FOOTERS = ["", ">>>>>End Spectral Data<<<<<\n", "[EndOfData]\nnotes: lamp warm\n", "END\n"]
+_PREAMBLES = ["", "Acquisition export\nIntegration Time (usec): 1000\n", "# comment\n"]
+
+
+@_FUZZ
+@given(pre=st.sampled_from(_PREAMBLES), foot=st.sampled_from(_FOOTERS),
+       sep=st.sampled_from([",", "\t", ";", " "]), header=st.booleans())
+def test_exports_with_preamble_and_closing_lines_read_every_value(tmp_path_factory, pre, foot,
+                                                                  sep, header):
+    counts = _counts(80)
+    body = "\n".join(f"{i}{sep}{c:.0f}" for i, c in enumerate(counts)) + "\n"
+    head = f"pixel{sep}counts\n" if header else ""
+    path = tmp_path_factory.mktemp("exp") / "e.txt"
+    path.write_text(pre + head + body + foot)
+    spec = read_spectrum(path)
+    np.testing.assert_array_equal(spec.flux.value, counts)
+    assert spec.meta["axis_kind"] == "pixel"

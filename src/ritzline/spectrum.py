@@ -623,6 +623,15 @@ def _check_last_row(block, delim, n_fields, path, start, end, *, raw_ends_newlin
                 f"{n_fields} values{tail}: the file looks truncated (cut off while being "
                 "written or copied); re-export it, or delete that row"
             )
+        if not raw_ends_newline and k == len(block) - 1:
+            # no line end after the last row: a cut inside its last number leaves a shorter
+            # number that parses; say so when it is shorter than every one before it
+            before = [_split(b.strip(), delim) for b in block[max(0, k - 50):k]]
+            widths = [len(f[-1]) for f in before if len(f) == n_fields and f[-1]]
+            if widths and len(fields[-1]) < min(widths):
+                _warn(f"{path}: line {lineno}: the last row has no line end and its last "
+                      f"value {fields[-1]!r} is shorter than all before it: the file may "
+                      "have been cut off; check that value or re-export the file")
         return
 
 

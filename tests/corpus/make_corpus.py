@@ -121,6 +121,8 @@ def spectra_text():
     text("err_truncated_last_row.csv", body[: body.rindex(",") + 1], "error", "truncated")
     text("err_truncated_last_row_one_field.csv", body[: body.rindex(",")], "error",
          "truncated")
+    cut_body = "pixel,counts\n" + rows(PIX, COUNTS + 10000)
+    text("warn_cut_inside_the_last_number.csv", cut_body[:-2], "warning", "cut off")
     text("err_nul_bytes_at_the_end.csv", body[:-40].encode() + b"\x00" * 30, "error",
          "NUL bytes")
     text("err_binary_file.bin", bytes(range(256)) * 8, "error", "binary data")
