@@ -270,6 +270,7 @@ def _spectrum_summary(path: str, column, hdu=None, pixel_origin=None) -> dict:
         "medium": meta.get("medium"),
         "pixel_range": meta.get("pixel_range"),
         "pixel_gaps": meta.get("pixel_gaps"),
+        "footer": meta.get("footer"),
     }
 
 
@@ -308,6 +309,8 @@ def info(files: tuple[str, ...], column: str | None, as_json: bool, hdu, pixel_o
             click.echo(f"  exposure    {s['exposure_time_s']:g} s")
         if s["timestamp"]:
             click.echo(f"  time        {s['timestamp']}")
+        if s["footer"]:
+            click.echo(f"  after data  {_one_line(s['footer'])[:60]} (ignored)")
 
 # ---- transitions -----------------------------------------------------------------------
 
@@ -691,12 +694,15 @@ def _match_print(result, max_rows: int) -> None:
     if not result.meta["response_corrected"]:
         click.echo("intensities are uncorrected for the spectral response (no --response): "
                    "no excitation temperature")
+    from .plots import boltzmann_label
+
     for bp in result.boltzmann:
-        if bp.corrected and np.isfinite(bp.temperature_k):
+        label = boltzmann_label(bp)  # the same rule as the Boltzmann plot's legend
+        if bp.corrected and " T = " in label:
             click.echo(f"{bp.species}: excitation temperature {bp.temperature_k:.0f} ± "
                        f"{bp.temperature_err_k:.0f} K ({bp.message})")
         elif bp.corrected:
-            click.echo(f"{bp.species}: {bp.message}")
+            click.echo(label)
 
 
 @main.command("match")
