@@ -478,11 +478,21 @@ def _header_row(lines: list[str], start: int, delim, n_fields: int, path: Path):
             continue
         body = candidate.lstrip("#%").strip()
         names = _split(body, delim)
+        if delim is None:  # 'wavelength (nm) counts': a bracketed unit belongs to its name
+            merged: list[str] = []
+            for name in names:
+                if merged and name[:1] in "([{":
+                    merged[-1] += f" {name}"
+                else:
+                    merged.append(name)
+            names = merged
         if any(_is_number(n) for n in names if n):
             return None
         if len(names) == n_fields:
             return names
-        if delim is not None and delim in body and len(names) >= 2 and all(names):
+        named = any(_COLUMN_WORDS.match(_bare_name(n)) for n in names)
+        if len(names) >= 2 and all(names) and (
+                (delim is not None and delim in body) or (delim is None and named)):
             hint = ""
             if delim == "," and len(names) < n_fields:
                 hint = (
@@ -497,7 +507,15 @@ def _header_row(lines: list[str], start: int, delim, n_fields: int, path: Path):
     return None
 
 
-def _check_decimal_comma_ambiguity(data, delim, header_names, path: Path, start: int):
+_COLUMN_WORDS = re.compile(
+    r"^(pix(el)?s?|px|index|channel|wave\w*|lambda|wl|counts?|intensity|flux|signal|"
+    r"adu|dark|exp_?\d+)$"
+)
+_LEADING_ZERO = re.compile(r"(^|,)0\d")
+
+
+def _check_decimal_comma_ambiguity(data, delim, header_names, path: Path, start: int,
+                                   block=()):
     """Refuse comma-separated rows that read just as well as decimal-comma numbers.
 
     ``500,1,1234`` can be three values or 500.1 and 1234; when the comma-split axis repeats
@@ -508,6 +526,15 @@ def _check_decimal_comma_ambiguity(data, delim, header_names, path: Path, start:
         return
     if header_names is not None:  # the header says how many columns there are
         return
+    # '0,1234,05': a field with a leading zero is the fraction of a decimal-comma number
+    sample = [line.strip() for line in block[:500]]
+    if any(_LEADING_ZERO.search(line.split(",", 1)[1]) for line in sample if "," in line):
+        raise SpectrumFormatError(
+            f"{path}: line {start + 1}: a value with a leading zero ('05') after a comma: "
+            "the comma seems to be both the decimal mark and the column separator, so the "
+            "values cannot be read safely; re-export with a semicolon or tab separator, or "
+            "with a decimal point"
+        )
     first = data[:, 0]
     steps = np.diff(first)
     if np.mean(steps == 0) < 0.3:  # a decimal axis split at its comma repeats its integers
@@ -550,7 +577,7 @@ def _parse_text(text: str, path: Path, column) -> _Parsed:
     data = _fast_block(block, delim, decimal_comma, n_fields)
     if data is None:
         data = _slow_block(block, delim, decimal_comma, n_fields, path, first_line=start + 1)
-    _check_decimal_comma_ambiguity(data, delim, header_names, path, start)
+    _check_decimal_comma_ambiguity(data, delim, header_names, path, start, block)
 
     names = header_names or (
         ["counts"] if n_fields == 1 else ["axis"] + [f"counts_{k}" for k in range(1, n_fields)]
@@ -628,7 +655,7 @@ def _check_last_row(block, delim, n_fields, path, start, end, *, raw_ends_newlin
             # number that parses; say so when it is shorter than every one before it
             before = [_split(b.strip(), delim) for b in block[max(0, k - 50):k]]
             widths = [len(f[-1]) for f in before if len(f) == n_fields and f[-1]]
-            if widths and len(fields[-1]) < min(widths):
+            if widths and _is_number(fields[-1]) and len(fields[-1]) < min(widths):
                 _warn(f"{path}: line {lineno}: the last row has no line end and its last "
                       f"value {fields[-1]!r} is shorter than all before it: the file may "
                       "have been cut off; check that value or re-export the file")

@@ -135,6 +135,15 @@ def spectra_text():
     text("err_comma_decimal_with_header.csv", "wavelength (nm),counts\n" + "\n".join(
         f"{w:.1f},{v:.1f}".replace(".", ",") for w, v in zip(WL, COUNTS, strict=True))
          + "\n", "error", "decimal mark")
+    fractions = np.random.default_rng(4).integers(0, 100, N)
+    text("err_comma_decimal_counts_on_pixel_axis.csv", "\n".join(
+        f"{i},{c:.0f},{f:02d}" for i, c, f in zip(PIX, COUNTS, fractions, strict=True))
+         + "\n", "error", "leading zero")
+    text("err_whitespace_header_two_names_rows_of_three.txt", "pixel counts\n" + "\n".join(
+        f"{i} {v:g} {v:g}" for i, v in enumerate(COUNTS)) + "\n", "error",
+         "header names 2 columns")
+    text("ok_free_text_line_above_whitespace_data.txt", "Begin Spectral Data\n"
+         + rows(PIX, COUNTS, " ") + "\n", "ok", samples=N)
     lines = ("pixel,counts\n" + rows(PIX, COUNTS) + "\n").splitlines()
     lines[100] = "99"
     text("err_short_row_in_the_middle.csv", "\n".join(lines) + "\n", "error",
