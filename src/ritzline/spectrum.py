@@ -964,8 +964,14 @@ def _fits_spectral_axis(header, n: int, path: Path, where: str):
         axis = crval + w
     cunit = str(header.get("CUNIT1", "") or "").strip().lower()
     unit = _UNIT_WORDS.get(cunit, cunit or None)
-    if unit is None and kind in ("WAVE", "AWAV") and "CUNIT1" in header:
-        unit = "m"
+    if unit is None and kind in ("WAVE", "AWAV"):
+        # the standard's default unit of WAVE/AWAV is the metre; files often omit CUNIT1
+        # and write nm or Angstrom, so only metre-sized values are taken as metres
+        if np.all(np.abs(axis) < 1e-4):
+            unit = "m"
+        else:
+            _warn(f"{where}: CUNIT1 missing (the FITS default for {kind} is metres, which "
+                  f"{axis[0]:g} cannot be); the unit is taken from the values' range")
     if np.any(axis <= 0):
         first_bad = int(np.flatnonzero(axis <= 0)[0])
         raise SpectrumFormatError(
