@@ -451,7 +451,7 @@ def _data_rows(lines: list[str], start: int, delim, decimal_comma) -> int:
         fields = _split(stripped, delim)
         if decimal_comma:
             fields = [f.replace(",", ".") for f in fields]
-        if any(_is_number(f) for f in fields if f) or not _is_footer(stripped):
+        if all(_is_number(f) for f in fields if f) or not _is_footer(stripped):
             return k + 1
         end = k
     return end

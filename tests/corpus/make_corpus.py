@@ -67,6 +67,8 @@ def spectra_text():
          + "\n>>>>>End Spectral Data<<<<<\n", "ok", exposure_time=0.15, samples=N)
     text("ok_footer_several_lines.txt", preamble + rows(PIX, COUNTS, "\t")
          + "\n[EndOfData]\nchecksum ok\n\n", "ok", samples=N)
+    text("ok_footer_with_numbers.txt", rows(PIX, COUNTS, " ")
+         + "\nEnd of data\nTotal pixels: 200\nScans to average: 3\n", "ok", samples=N)
     text("ok_crlf_line_ends.csv", ("pixel,counts\n" + rows(PIX, COUNTS) + "\n")
          .replace("\n", "\r\n"), "ok", samples=N)
     text("ok_utf8_bom.csv", "\ufeffpixel,counts\n" + rows(PIX, COUNTS) + "\n", "ok")
