@@ -100,3 +100,18 @@ def test_corpus_file_on_the_command_line_is_one_line_per_diagnostic(entry):
         if entry["expect"] == "warning":
             assert any(line.startswith("warning: ") and entry["file"] in line
                        for line in diagnostics)
+
+
+READABLE = [e for e in MANIFEST if e["expect"] != "error" and e.get("kind") != "solution"]
+
+
+@pytest.mark.parametrize("entry", READABLE, ids=[e["file"] for e in READABLE])
+def test_every_readable_corpus_spectrum_goes_through_the_line_finder(entry):
+    args = ["peaks", str(CORPUS / entry["file"])]
+    for key, value in entry.get("read", {}).items():
+        args += [f"--{key.replace('_', '-')}", str(value)]
+    result = CliRunner().invoke(main, args)
+    assert result.exit_code == 0, result.stderr
+    assert "Traceback" not in result.output + result.stderr
+    assert ("no lines found" in result.output) or (" lines" in result.output)
+    assert all(line.startswith("warning: ") for line in result.stderr.splitlines() if line)
