@@ -514,6 +514,24 @@ def _peaks_print(lines) -> None:
         summary += (f"; gain {gain:.3g} e-/ADU, read noise {noise.get('read_noise', 0.0):.3g}"
                     f" ADU ({noise.get('method', '?')})")
     click.echo(summary)
+    inst = meta.get("instrument")
+    if inst:
+        shape = (f"line shape: FWHM {inst['fwhm_chebyshev_px'][0]:.2f} px"
+                 + (" (varies along the detector)" if len(inst["fwhm_chebyshev_px"]) > 1 else "")
+                 + (f", skew {inst['asymmetry_chebyshev'][0]:+.2f}"
+                    if any(inst["asymmetry_chebyshev"]) else "")
+                 + (f", Lorentzian fraction {inst['lorentzian_fraction']:.3f}"
+                    if inst["lorentzian_fraction"] else ""))
+        click.echo(f"{shape}; offset {inst['offset_adu']:.6g} ADU "
+                   f"({inst['sources'].get('offset', '?')})")
+        if inst["flags"]:
+            click.echo("not constrained by this exposure (conservative values used): "
+                       + ", ".join(inst["flags"]))
+    broad = meta.get("broad_features") or []
+    if broad:
+        click.echo(f"broad features (not lines): {len(broad)}, at pixel "
+                   + ", ".join(f"{b['pixel']:.0f} (FWHM {b['fwhm_pixel']:.0f} px)"
+                               for b in broad[:6]))
     if rejected:
         click.echo(f"rejected candidates: {rejected}")
 
@@ -534,6 +552,12 @@ def _peaks_print(lines) -> None:
               help="Detector gain in e-/ADU (default: estimated).")
 @click.option("--read-noise", type=click.FloatRange(min=0), default=None,
               help="Read noise in ADU (used with --gain).")
+@click.option("--instrument", "instrument_path", type=click.Path(exists=True, dir_okay=False),
+              default=None, help="Instrument model (JSON, or a solution carrying one) of this "
+              "spectrometer: its offset, gain, read noise and line shape are used instead of "
+              "being estimated again (default: the --solution's, if it has one).")
+@click.option("--save-instrument", "save_instrument", type=click.Path(dir_okay=False),
+              default=None, help="Write the instrument model measured on FILE (JSON).")
 @click.option("--column", default=None, help="Counts column of a table file.")
 @click.option("-o", "--output", type=click.Path(dir_okay=False), default=None,
               callback=table_path,
@@ -544,9 +568,16 @@ def _peaks_print(lines) -> None:
 @reader_options
 @handle_errors
 def peaks_cmd(file, solution_path, dark_path, min_snr, fwhm_guess, saturation, gain,
-              read_noise, column, output, plot_path, hdu, pixel_origin):
-    """Find the emission lines of FILE: centroids, widths, fluxes and their errors."""
+              read_noise, instrument_path, save_instrument, column, output, plot_path, hdu,
+              pixel_origin):
+    """Find the emission lines of FILE: centroids, widths, fluxes and their errors.
+
+    The detector's offset, gain and read noise and the line shape along the detector (the
+    instrument model) are measured on FILE unless --instrument or --solution gives them;
+    --save-instrument keeps them for the exposures that follow.
+    """
     from ._io import write_table
+    from .instrument import Instrument
     from .peaks import attach_wavelengths, find_lines
     from .spectrum import require_solution_pixels
 
@@ -558,8 +589,14 @@ def peaks_cmd(file, solution_path, dark_path, min_snr, fwhm_guess, saturation, g
 
         solution = Solution.load(solution_path)
         require_solution_pixels(spectrum, solution)
+    instrument = (Instrument.load(instrument_path) if instrument_path
+                  else getattr(solution, "instrument", None))
     lines = find_lines(spectrum, min_snr=min_snr, fwhm_guess=fwhm_guess,
-                       saturation=saturation, gain=gain, read_noise=read_noise, dark=dark)
+                       saturation=saturation, gain=gain, read_noise=read_noise, dark=dark,
+                       instrument=instrument)
+    if save_instrument:
+        Instrument.from_dict(lines.meta["instrument"]).save(save_instrument)
+        click.echo(f"instrument model written to {save_instrument}")
     if solution is not None:
         lines = attach_wavelengths(lines, solution)
     lines.meta["input"] = str(file)

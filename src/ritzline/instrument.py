@@ -181,8 +181,9 @@ class Instrument:
         """Write the instrument model as JSON (atomically)."""
         from ._io import atomic_write
 
-        text = json.dumps(self.to_dict(), indent=2) + "\n"
-        return atomic_write(path, text)
+        with atomic_write(path) as fh:
+            fh.write(json.dumps(self.to_dict(), indent=2) + "\n")
+        return Path(path)
 
     @classmethod
     def load(cls, path) -> Instrument:

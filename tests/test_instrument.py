@@ -1,0 +1,209 @@
+"""The instrument model: offset, gain, read noise and line shape measured on real-looking frames.
+
+Frames come from ``ritzline.synthetic`` with every detector effect of a real linear CCD
+(offset, optical-black pixels, dark pattern, hot pixels, spikes, averaged scans, clipping) so
+that the checks run on every test run.  The reference facts are textbook detector physics:
+the photon-transfer relation (variance = signal/gain + read noise^2, common practice), and
+scale invariance of a significance (a ratio of counts to their spread).
+"""
+
+import json
+import warnings
+
+import numpy as np
+import pytest
+
+from ritzline.errors import SolutionFormatError
+from ritzline.instrument import Instrument, measure_instrument, optical_black
+from ritzline.peaks import find_lines
+from ritzline.synthetic import (
+    Detector,
+    LineShape,
+    fluorescent_lamp_exposure,
+    line_profiles,
+    read_out,
+)
+
+warnings.filterwarnings("ignore", message="find_lines")
+
+
+def _lamp_like(rng, *, n=3000, fwhm=3.0, flux=(2e3, 4e5), n_lines=40, shape=None):
+    """Isolated lines of a known shape on a flat background (light in ADU at gain 1)."""
+    centres = np.sort(rng.uniform(40, n - 40, n_lines))
+    keep = np.concatenate([[True], np.diff(centres) > 6 * fwhm])
+    centres = centres[keep]
+    fluxes = np.exp(rng.uniform(np.log(flux[0]), np.log(flux[1]), centres.size))
+    shape = shape or LineShape(fwhm=(fwhm,))
+    light = line_profiles(n, centres, fluxes, shape) + 200.0
+    return light, centres, fluxes
+
+
+def test_offset_is_read_from_optical_black_pixels():
+    # Shielded leading pixels read the electronic offset (common practice for linear arrays).
+    rng = np.random.default_rng(1)
+    light, _, _ = _lamp_like(rng)
+    det = Detector(offset=1500.0, n_black=16)
+    counts, _ = read_out(light, rng, gain=2.0, read_noise=8.0, detector=det)
+    n, level, sigma = optical_black(counts)
+    assert n == 16
+    assert sigma == pytest.approx(4.0, rel=0.5)  # read noise 8 e- at 2 e-/ADU
+    assert level == pytest.approx(1500.0, abs=3 * 4.0 / np.sqrt(16) + 0.5)
+    t = find_lines(counts)
+    inst = t.meta["instrument"]
+    assert "optical-black" in inst["sources"]["offset"]
+    assert inst["offset_adu"] == pytest.approx(1500.0, abs=2.0)
+    assert t.meta["optical_black_pixels"] == 16
+
+
+def test_gain_pooled_over_lines_despite_a_large_offset():
+    # Photon transfer: var = (S - offset)/g + r^2.  With a 3000 ADU offset in the counts the
+    # gain must still come out right (the offset is not photo-electrons).
+    rng = np.random.default_rng(2)
+    light, _, _ = _lamp_like(rng)
+    counts, _ = read_out(light * 1.0, rng, gain=3.0, read_noise=6.0,
+                         detector=Detector(offset=3000.0))
+    t = find_lines(counts)
+    assert t.meta["instrument"]["gain_e_per_adu"] == pytest.approx(3.0, rel=0.25)
+
+
+def test_centroid_errors_are_honest_with_an_unknown_offset():
+    # Pull spread of isolated lines ~1 over many lines, gain and offset not given.
+    rng = np.random.default_rng(3)
+    pulls = []
+    for _ in range(4):
+        light, centres, _ = _lamp_like(rng, flux=(1e3, 2e5))
+        counts, _ = read_out(light, rng, gain=2.0, read_noise=5.0,
+                             detector=Detector(offset=2000.0))
+        t = find_lines(counts)
+        p = np.asarray(t["pixel"])
+        j = np.argmin(np.abs(p[None, :] - centres[:, None]), axis=1)
+        d = p[j] - centres
+        ok = np.abs(d) < 1.0
+        pulls.append(d[ok] / np.asarray(t["pixel_err"])[j][ok])
+    pulls = np.concatenate(pulls)
+    assert 0.8 < np.std(pulls) < 1.25
+
+
+def test_significance_does_not_depend_on_the_count_scale():
+    # A significance is a ratio of counts to their spread: scaling every count by a constant
+    # (processed, averaged or calibrated-intensity files) changes no SNR and adds no line.
+    rng = np.random.default_rng(4)
+    light, _, _ = _lamp_like(rng)
+    counts, _ = read_out(light, rng, gain=2.0, read_noise=5.0, detector=Detector(offset=500.0))
+    raw = find_lines(counts)
+    scaled = find_lines(counts * 1e-9)
+    assert len(scaled) == len(raw)
+    np.testing.assert_allclose(np.asarray(scaled["snr"]), np.asarray(raw["snr"]), rtol=1e-3)
+    np.testing.assert_allclose(np.asarray(scaled["pixel"]), np.asarray(raw["pixel"]), atol=1e-6)
+    assert "not_raw_adu" in scaled.meta["instrument"]["flags"]
+
+
+def test_inverted_counts_give_no_lines_from_the_dips():
+    # Inverted counts (a sign error upstream): the dips are not lines, and nothing found in
+    # what is left reaches a significance that pure noise over 3000 px would not.
+    rng = np.random.default_rng(5)
+    light, centres, _ = _lamp_like(rng, n_lines=10)
+    counts, _ = read_out(light, rng, gain=2.0, read_noise=5.0, detector=Detector(offset=500.0))
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        t = find_lines(-counts)
+    p = np.asarray(t["pixel"])
+    assert not np.any(np.abs(p[:, None] - centres[None, :]) < 10)
+    assert np.all(np.asarray(t["snr"]) < 10)
+
+
+def test_hot_pixels_and_spikes_are_rejected_at_every_amplitude():
+    # A one-pixel event fits better as one pixel than as a line of the local width.
+    rng = np.random.default_rng(6)
+    light, centres, _ = _lamp_like(rng, n_lines=15)
+    counts, _ = read_out(light, rng, gain=2.0, read_noise=5.0, detector=Detector(offset=800.0))
+    hits = np.array([500, 1200, 2100, 2700])
+    hits = hits[np.min(np.abs(hits[:, None] - centres[None, :]), axis=1) > 20]
+    counts[hits] += np.array([300.0, 3e3, 3e4, 3e5])[: hits.size]
+    t = find_lines(counts)
+    p = np.asarray(t["pixel"])
+    assert not np.any(np.min(np.abs(p[:, None] - hits[None, :]), axis=1) < 2)
+    assert t.meta["rejected"]["spike"] >= hits.size
+
+
+def test_skewed_lines_give_no_phantom_companions():
+    # A red-tailed line profile (compact spectrometers) is one line: the measured skew goes
+    # into the profile, and every true line is found once.
+    rng = np.random.default_rng(7)
+    shape = LineShape(fwhm=(3.5,), asymmetry=(0.3,))
+    light, centres, _ = _lamp_like(rng, fwhm=3.5, shape=shape, flux=(2e4, 5e5))
+    counts, _ = read_out(light, rng, gain=2.0, read_noise=5.0, detector=Detector(offset=800.0))
+    t = find_lines(counts)
+    p = np.asarray(t["pixel"])
+    nearest = np.min(np.abs(p[:, None] - centres[None, :]), axis=1)
+    assert np.all(nearest < 1.0), "a reported line with no true line under it"
+    assert len(t) == centres.size
+    assert t.meta["instrument"]["asymmetry_chebyshev"][0] > 0.1
+
+
+def test_line_width_is_measured_as_a_function_of_pixel():
+    rng = np.random.default_rng(8)
+    shape = LineShape(fwhm=(3.0, 0.9))  # FWHM 2.1 px at the blue end, 3.9 px at the red end
+    light, _, _ = _lamp_like(rng, shape=shape, fwhm=4.0, flux=(2e4, 5e5))
+    counts, _ = read_out(light, rng, gain=2.0, read_noise=5.0, detector=Detector(offset=300.0))
+    inst = Instrument.from_dict(find_lines(counts).meta["instrument"])
+    ends = inst.fwhm_at([100, 2900])
+    truth = shape.fwhm_at(np.array([100, 2900]), 3000)
+    np.testing.assert_allclose(ends, truth, rtol=0.1)
+
+
+def test_fluorescent_lamp_mercury_lines_keep_their_own_width():
+    # Broad phosphor bands stay out of the line width: the mercury lines on top of them are
+    # found with the instrument's width (Hg I 404.66, 435.83, 546.07 nm: NIST handbook).
+    rng = np.random.default_rng(9)
+    counts, truth = fluorescent_lamp_exposure(rng, phosphor_peaks=False)
+    t = find_lines(counts)
+    lines = truth.lines
+    hg = [k for k, w in enumerate(lines["wavelength"])
+          if any(abs(w - ref) < 0.05 for ref in (404.656, 435.833, 546.074))
+          and not lines["saturated"][k]]
+    assert hg
+    p = np.asarray(t["pixel"])
+    for k in hg:
+        j = int(np.argmin(np.abs(p - lines["pixel"][k])))
+        assert abs(p[j] - lines["pixel"][k]) < 0.5 * lines["fwhm"][k]
+        assert t["fwhm_pixel"][j] == pytest.approx(lines["fwhm"][k], rel=0.25)
+
+
+def test_a_given_instrument_is_used_as_it_is():
+    rng = np.random.default_rng(10)
+    light, centres, _ = _lamp_like(rng)
+    counts, _ = read_out(light, rng, gain=2.0, read_noise=5.0, detector=Detector(offset=900.0))
+    inst = measure_instrument(counts)
+    t = find_lines(counts, instrument=inst)
+    assert t.meta["noise_model"]["method"] == "gain from the instrument model"
+    assert t.meta["instrument"] == inst.to_dict()
+    assert len(t) >= 0.9 * centres.size
+
+
+def test_instrument_file_round_trip(tmp_path):
+    inst = Instrument(n_pixels=2048, offset=1000.0, gain=2.5, read_noise=3.0,
+                      fwhm=(2.5, 0.2), asymmetry=(0.1,), wing=0.03,
+                      sources={"gain": "given"}, flags=("offset_unconstrained",))
+    path = inst.save(tmp_path / "inst.json")
+    assert Instrument.load(path) == inst
+    # A solution file carrying the model is read the same way.
+    sol = tmp_path / "solution.json"
+    sol.write_text(json.dumps({"schema": "ritzline.solution/1", "instrument": inst.to_dict()}))
+    assert Instrument.load(sol) == inst
+
+
+@pytest.mark.parametrize("field, value", [("gain_e_per_adu", -1.0), ("read_noise_adu", -2.0),
+                                          ("fwhm_chebyshev_px", [0.1]),
+                                          ("lorentzian_fraction", 1.5),
+                                          ("schema", "other/1")])
+def test_an_invalid_instrument_is_refused(field, value):
+    good = Instrument(n_pixels=100, offset=0.0, gain=1.0, read_noise=1.0).to_dict()
+    with pytest.raises(SolutionFormatError):
+        Instrument.from_dict({**good, field: value})
+
+
+def test_variance_follows_photon_transfer():
+    # var = max(S - offset, 0)/gain + read^2 (photon transfer; common practice).
+    inst = Instrument(n_pixels=10, offset=100.0, gain=4.0, read_noise=3.0)
+    np.testing.assert_allclose(inst.variance([100.0, 500.0, 50.0]), [9.0, 109.0, 9.0])
