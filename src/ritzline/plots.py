@@ -425,14 +425,19 @@ def plot_identify_spectrum(identification, path, *, spectrum=None, solution=None
     idx = idx[np.argsort(-fl[idx])][:max_labels]
     unknown = np.flatnonzero(sp == "")
     ax.margins(x=0.01)
-    # headroom: the spectrum fills the lower 58 % of the (scaled) axis, labels the rest
+    # headroom: the spectrum fills the lower 70 % of the (scaled) axis, labels the rest
     ymin, ymax = ax.get_ylim()
     fwd = ax.yaxis.get_transform()
     tmin, tmax = fwd.transform([[ymin], [ymax]]).ravel()
-    new_top = fwd.inverted().transform([[tmin + (tmax - tmin) / 0.58]]).ravel()[0]
+    new_top = fwd.inverted().transform([[tmin + (tmax - tmin) / 0.70]]).ravel()[0]
     if np.isfinite(new_top) and new_top > ymax:
         ax.set_ylim(ymin, new_top)
     fig.canvas.draw()  # fixes the axes size, so label widths can be turned into nm
+    # counts ticks only where the spectrum is; the band above belongs to the labels
+    ticks = [v for v in ax.get_yticks() if ymin <= v <= ymax]
+    if len(ticks) >= 2:
+        ax.set_yticks(ticks)
+        ax.yaxis.set_minor_locator(__import__("matplotlib").ticker.NullLocator())
     lo, hi = ax.get_xlim()
     width_px = ax.get_window_extent().width
     min_gap = 9.0 / max(width_px, 1.0) * (hi - lo)  # a 6-pt rotated label is ~8 px wide
@@ -444,7 +449,7 @@ def plot_identify_spectrum(identification, path, *, spectrum=None, solution=None
         ymin, ymax = ax.get_ylim()
         to_axes = ax.transScale + ax.transLimits
         top_frac = np.clip([to_axes.transform((0, v))[1] for v in tops], 0, 1)
-        band = min(max(top_frac.max() + 0.04, 0.6), 0.7) if top_frac.size else 0.6
+        band = min(max(top_frac.max() + 0.03, 0.72), 0.8) if top_frac.size else 0.72
         for j, k in enumerate(both):
             known = sp[k] != ""
             label = (f"{sp[k]} {ref[k]:.2f}" + (" (2nd)" if order[k] == 2 else "")
