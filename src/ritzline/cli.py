@@ -66,6 +66,7 @@ def handle_errors(func):
 
         ctx = click.get_current_context()
         debug = bool(ctx.find_root().obj and ctx.find_root().obj.get("debug"))
+        _READING.clear()
         try:
             with warnings.catch_warnings():
                 warnings.simplefilter("always")
