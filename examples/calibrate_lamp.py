@@ -22,7 +22,7 @@ print(f"{n_used} lines, RMS {solution.rms_nm * 1e3:.2f} pm ({solution.rms_pixel:
 for pixel in (0, 1824, 3647):
     print(f"pixel {pixel:4d}: {solution.wavelength(pixel):9.4f} ± "
           f"{solution.wavelength_err(pixel) * 1e3:.2f} pm ({solution.medium})")
-print("Hg 546.0735 nm falls on pixel", f"{solution.pixel(546.0735):.2f}")
+print("Hg 546.0750 nm falls on pixel", f"{solution.pixel(546.0750):.2f}")
 
 solution.save(out / "solution.json")
 calibration_residuals(solution, out / "residuals.png")

@@ -239,15 +239,13 @@ def test_residual_rms_matches_the_centroid_errors():
     assert sol.rms_nm < 1.5 * predicted
 
 
-# Published air wavelengths (nm), J. E. Sansonetti and W. C. Martin, Handbook of Basic Atomic
-# Spectroscopic Data, J. Phys. Chem. Ref. Data 34, 1559 (2005), as carried in line_lists/;
-# the values below are from memory, as line_lists/README says of most of those files.
+# Published air wavelengths (nm): NIST ASD observed wavelengths (line_lists/asd/lines.csv),
+# which agree with the Ne and Ar values of J. E. Sansonetti and W. C. Martin, Handbook of
+# Basic Atomic Spectroscopic Data, J. Phys. Chem. Ref. Data 34, 1559 (2005) within 0.1 pm.
 PUBLISHED = {
-    "Ne": [585.24878, 588.18952, 594.48342, 609.61631, 614.30626, 640.2248, 703.24131],
-    "Ar": [696.54307, 706.72180, 738.39802, 750.38694, 763.51064, 811.53110],
-    # Hg: the Handbook's strong-line table gives 4046.563, 4358.328, 5460.735 A (memory);
-    # older compilations quote 404.6565/435.8335/546.0750, which this check would reject.
-    "Hg": [404.6563, 435.8328, 546.0735, 576.9598, 579.0663],
+    "Ne": [585.24878, 588.18950, 594.48340, 609.61630, 614.30627, 640.22480, 703.24128],
+    "Ar": [696.5431, 706.7218, 738.3980, 750.3869, 763.5106, 811.5311],
+    "Hg": [404.6565, 435.8335, 546.0750, 576.9610, 579.0670],
 }
 
 

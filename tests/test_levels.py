@@ -35,21 +35,32 @@ def _one(table: Table, near_nm: float, tol: float = 0.002) -> Table:
 # ---- published consistency (Ritz principle) --------------------------------------------
 
 
+#: Observed lines whose Ritz wavelength (NIST ASD levels) misses the observed one by more
+#: than the bound: Hg I 496.010 and 567.581 nm are ASD's own observed values (7 pm from its
+#: level-Ritz values); 1013.975 nm is the compiled list's value (memory, 3.7 pm).
+RITZ_EXCEPTIONS = {"Hg I": {496.010, 567.581, 1013.975}}
+
+
 @pytest.mark.parametrize("label", SPECIES)
 def test_ritz_wavelength_reproduces_published_air_wavelength(label):
-    # bound: 0.002 nm, 0.003 nm for natural-isotope Hg I (issue 3); published values from
-    # the Handbook (Sansonetti & Martin 2005) as compiled in line_lists/ (memory)
+    # Ritz wavelengths from the NIST ASD levels (line_lists/asd/levels) against the observed
+    # wavelengths: ASD's line export, and the compiled list (memory) where ASD has no line.
+    # Bound: 0.002 nm, 0.003 nm for natural-isotope Hg I (issue 3); values ASD quotes to two
+    # decimals or fewer (broad Na I lines from 2p5 3s3p levels, 342.7-574.4 nm) within five
+    # units of their last digit; exceptions named above.
     bound = 0.003 if label == "Hg I" else 0.002
     t = transitions(label, observed_only=True, medium="air")
     both = t[np.asarray(t["ritz"])]
     assert len(both) > 0
     diff = np.abs(np.asarray(both["wavelength"]) - np.asarray(both["wavelength_obs"]))
-    failing = [
-        f"{r['wavelength_obs']:.5f} {r['lower']} – {r['upper']}: {d:.5f} nm"
-        for r, d in zip(both, diff, strict=True)
-        if d > bound
-    ]
-    assert not failing, "\n".join(failing)
+    quoted = np.asarray(both["wavelength_obs_err"])
+    allowed = np.where(quoted >= 0.01, 5 * quoted, bound)
+    failing = {
+        round(float(r["wavelength_obs"]), 3): f"{r['lower']} – {r['upper']}: {d:.5f} nm"
+        for r, d, a in zip(both, diff, allowed, strict=True)
+        if d > a
+    }
+    assert set(failing) == RITZ_EXCEPTIONS.get(label, set()), failing
 
 
 @pytest.mark.parametrize("label", SPECIES)
@@ -63,10 +74,10 @@ def test_every_published_line_appears_exactly_once(label):
 
 
 def test_published_line_without_levels_keeps_published_wavelength():
-    # Xe I 480.7019 nm: upper level energy not given in the compiled list (memory)
-    row = _one(transitions("Xe", observed_only=True), 480.7019, 1e-4)
+    # Ne I 533.0778 nm: levels not given in the compiled list (memory), not in the ASD export
+    row = _one(transitions("Ne", observed_only=True), 533.0778, 1e-4)
     assert row["observed"] and not row["ritz"]
-    assert row["wavelength"] == pytest.approx(480.7019, abs=1e-9)
+    assert row["wavelength"] == pytest.approx(533.0778, abs=1e-9)
     assert np.isnan(row["upper_cm1"]) and np.isnan(row["upper_ev"])
 
 
@@ -175,7 +186,10 @@ def test_noble_gas_reference_lines_are_computed(species, wavelength):
 
 
 def test_leaving_out_intercombination_lines_drops_hg_253p65():
-    t = transitions("Hg", wavelength_range=(253.6, 253.7), intercombination=False)
+    kept = transitions("Hg", wavelength_range=(253.6, 253.7), observed_only=True)
+    assert len(kept) == 1
+    t = transitions("Hg", wavelength_range=(253.6, 253.7), observed_only=True,
+                    intercombination=False)
     assert len(t) == 0
 
 
@@ -245,9 +259,11 @@ def test_species_name_forms_give_the_canonical_label(name):
     assert species_label(name) == "Ne I"
 
 
-def test_unknown_species_is_a_ritzline_error():
-    with pytest.raises(RitzlineError, match="available"):
-        transitions("Fe II")
+@pytest.mark.parametrize("name", ["Fe III", "Zz", "Ne 2"])
+def test_unknown_species_is_a_ritzline_error(name):
+    # the ASD level dump holds neutral and singly ionised spectra only
+    with pytest.raises(RitzlineError, match="no line list"):
+        transitions(name)
 
 
 def test_table_has_contract_columns_units_and_meta():
@@ -259,7 +275,7 @@ def test_table_has_contract_columns_units_and_meta():
     ).split():
         assert name in t.colnames
     assert str(t["wavelength"].unit) == "nm" and str(t["upper_ev"].unit) == "eV"
-    assert t.meta["medium"] == "air" and "Sansonetti" in t.meta["source"]
+    assert t.meta["medium"] == "air" and "NIST Atomic Spectra Database" in t.meta["source"]
     assert t.meta["ritzline_version"]
     assert set(t["species"]) == {"Ne I", "Ar I"}
     wl = np.asarray(t["wavelength"])
@@ -278,11 +294,18 @@ def test_returned_tables_are_independent_copies():
     assert transitions("He")["wavelength"][0] > 0
 
 
-def test_memory_marks_are_kept_from_the_reference_notes():
+def test_memory_marks_stay_only_where_no_asd_value_replaced_the_recalled_one():
     t = transitions("Ne", observed_only=True)
-    confirmed = _one(t, 849.53595, 1e-3)
-    assert confirmed["memory"]  # its levels are memory values
-    assert np.all(t["memory"][~np.asarray(t["confirmed"])])
+    # Ne I 849.536 nm: in the ASD export (wavelength, intensity, gA) between ASD levels
+    assert not _one(t, 849.53591, 1e-4)["memory"]
+    # Ne I 533.0778 nm: only in the compiled list, from memory
+    assert _one(t, 533.0778, 1e-4)["memory"]
+    for label in SPECIES[1:]:
+        levels = Table.read(data_path("line_lists", f"{label.replace(' ', '_')}.levels.ecsv"))
+        assert not np.any(levels["memory"]), label  # every level is an ASD value
+        lines = Table.read(data_path("line_lists", f"{label.replace(' ', '_')}.lines.ecsv"))
+        from_asd = np.char.startswith(np.asarray(lines["source"], dtype=str), "ASD")
+        assert not np.any(np.asarray(lines["memory"])[from_asd]), label
 
 
 def test_shipped_files_name_source_and_compilation_date():
@@ -291,7 +314,8 @@ def test_shipped_files_name_source_and_compilation_date():
         names = [f"{stem}.lines.ecsv"] + ([] if label == "H I" else [f"{stem}.levels.ecsv"])
         for name in names:
             meta = Table.read(data_path("line_lists", name)).meta
-            assert "Sansonetti" in meta["source"] and meta["compiled"] == "2026-12-01"
+            assert "NIST Atomic Spectra Database" in meta["source"], name
+            assert meta["compiled"] == "2026-12-03"
 
 
 def test_lower_level_kinds():
@@ -360,9 +384,10 @@ def test_lamp_files_are_readable_json_with_species():
 
 
 def test_hg_resonance_line_is_not_usable_for_calibration():
-    row = _one(lamp_lines("Hg"), 253.6517, 1e-4)
+    # Hg I 253.6521 and 546.0750 nm (NIST ASD, line_lists/asd/lines.csv)
+    row = _one(lamp_lines("Hg"), 253.6521, 1e-4)
     assert not row["usable"] and "self-absorbed" in row["reason"]
-    assert _one(lamp_lines("Hg"), 546.0735, 1e-4)["usable"]
+    assert _one(lamp_lines("Hg"), 546.0750, 1e-4)["usable"]
 
 
 def test_lamp_lines_flag_unresolved_blends_at_the_instrument_fwhm():
@@ -374,7 +399,7 @@ def test_lamp_lines_flag_unresolved_blends_at_the_instrument_fwhm():
 
 
 def test_lamp_lines_flag_lines_without_a_ritz_cross_check():
-    row = _one(lamp_lines("Ne"), 352.0472, 1e-4)
+    row = _one(lamp_lines("Ne"), 533.0778, 1e-4)
     assert not row["usable"] and "Ritz" in row["reason"]
 
 

@@ -57,6 +57,11 @@ def test_built_wheel_contains_line_lists_and_calibration(tmp_path):
         assert f"ritzline/_data/line_lists/{name}" in names
     for name in shipped_lamps:
         assert f"ritzline/_data/calibration/lamps/{name}" in names
+    # the NIST ASD files that transitions() reads for spectra without shipped tables
+    for path in (ROOT / "line_lists" / "asd").rglob("*"):
+        if path.is_file():
+            rel = path.relative_to(ROOT / "line_lists").as_posix()
+            assert f"ritzline/_data/line_lists/{rel}" in names, rel
     for path in (ROOT / "examples" / "data").rglob("*.csv"):
         rel = path.relative_to(ROOT / "examples" / "data").as_posix()
         assert f"ritzline/_data/examples/{rel}" in names

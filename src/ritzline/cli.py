@@ -447,8 +447,10 @@ def transitions_command(
     fwhm: float | None,
     output: str | None,
 ) -> None:
-    """List the electric-dipole transitions of SPECIES (e.g. Ne, "Hg I", NeI) with Ritz
-    wavelengths computed from published energy levels, joined to the published lines.
+    """List the electric-dipole transitions of SPECIES (e.g. Ne, "Hg I", NeI, "Ar II": any
+    neutral or singly ionised spectrum of the NIST ASD level data) with Ritz wavelengths
+    computed from published energy levels, joined to the published lines (intensity shown
+    blank where no source gives one).
 
     Flags: obs = in the published line list; intercomb = spin-changing; ground/metastable =
     kind of lower level; memory = values recalled without a readable published table.
@@ -746,8 +748,9 @@ def _match_print(result, max_rows: int) -> None:
 @main.command("match")
 @click.argument("file", type=click.Path(exists=True, dir_okay=False))
 @click.option("--species", default=None, metavar="LIST",
-              help="Species to consider, comma-separated (e.g. Ne,Ar or 'Ne I,Hg I'); "
-              "default: detect among every shipped species.")
+              help="Species to consider, comma-separated (e.g. Ne,Ar or 'Ne I,Hg I,Ar II'): "
+              "any neutral or singly ionised spectrum of the NIST ASD data; default: detect "
+              "among the eight lamp species H, He, Ne, Ar, Kr, Xe, Hg, Na.")
 @click.option("--solution", "solution_path", type=click.Path(exists=True, dir_okay=False),
               help="Wavelength solution (JSON from `calibrate`); needed for a pixel-axis file.")
 @click.option("--medium", type=click.Choice(["air", "vacuum"]), default=None,

@@ -1,8 +1,11 @@
 """Energy levels → electric-dipole transitions (Ritz wavelengths), blends and lamp definitions.
 
-Level and observed-line tables ship as ECSV in ``line_lists/``; hydrogen is computed from
-physics.  :func:`transitions` lists every E1-allowed level pair of a species with its Ritz
-wavelength in an explicit medium, joined to the published (observed) lines;
+Level and observed-line tables of the eight default species ship as ECSV in ``line_lists/``
+(built from NIST ASD data, see ``line_lists/README.md``); hydrogen is computed from physics.
+Any other neutral or singly ionised spectrum is read from the ASD level dump and line export
+copied into ``line_lists/asd/``.  :func:`transitions` lists every E1-allowed level pair of
+a species with its Ritz wavelength in an explicit medium, joined to the published (observed)
+lines;
 :func:`blends` groups lines an instrument of a given FWHM cannot resolve;
 :func:`load_lamp` and :func:`lamp_lines` give a calibrator the reference lines of a lamp.
 
@@ -17,8 +20,7 @@ jK-coupled levels of the noble gases are never flagged.
 
 Uncertainties: a Ritz wavelength's error comes from the level energy errors in the tables
 (documented defaults, see ``line_lists/README.md``: one unit in the last quoted digit, at
-least 0.01 cm⁻¹, 0.05 cm⁻¹ for derived or doubtful levels, 0 for the ground level), added in
-quadrature and propagated as δλ = λ² δσ.
+least 0.05 cm⁻¹, 0 for the ground level), added in quadrature and propagated as δλ = λ² δσ.
 
 Hydrogen: levels from the Rydberg formula with the reduced-mass Rydberg constant and the
 Dirac fine-structure term, CODATA constants from :mod:`astropy.constants`; the Lamb shift
@@ -42,6 +44,7 @@ import numpy as np
 from astropy import units as u
 from astropy.table import Table, vstack
 
+from . import _asd
 from ._resources import data_path
 from .airvac import air_to_vacuum, vacuum_to_air
 from .errors import RitzlineError
@@ -53,6 +56,7 @@ __all__ = [
     "Lamp",
     "UnreliableLine",
     "allowed_pairs",
+    "available_species",
     "blends",
     "j_value",
     "lamp_lines",
@@ -61,13 +65,17 @@ __all__ = [
     "transitions",
 ]
 
-#: Species with shipped data, canonical labels.
+#: Species with shipped tables, canonical labels: the default candidate set of identification
+#: (the gases and vapours of discharge and calibration lamps).  :func:`transitions` also
+#: takes any other spectrum of the ASD level dump (:func:`available_species`).
 SPECIES = ("H I", "He I", "Ne I", "Ar I", "Kr I", "Xe I", "Hg I", "Na I")
 #: Lamp definitions shipped in ``calibration/lamps/``.
 LAMP_NAMES = ("Hg", "Ne", "Ar", "Kr", "Xe", "He", "Hg+Ar", "Ne+Ar")
-#: Largest |Ritz − published| (nm) accepted for an observed line; natural-isotope Hg lines
-#: are broader, hence the larger bound for Hg I.
-RITZ_TOLERANCE_NM = {"default": 0.002, "Hg I": 0.003}
+#: Largest |Ritz − published| (nm) accepted for an observed line of a calibration lamp.
+#: Natural-isotope Hg I lines are broad and ASD's own observed Hg I wavelengths differ from
+#: its level-Ritz values by up to 0.0074 nm (496.010 and 567.581 nm, line_lists/asd/), hence
+#: the larger bound for Hg I.
+RITZ_TOLERANCE_NM = {"default": 0.002, "Hg I": 0.008}
 #: Principal quantum numbers computed for hydrogen.
 HYDROGEN_N_MAX = 20
 #: (n_lower, n_upper) pairs of hydrogen listed as fine-structure components.
@@ -76,15 +84,18 @@ HYDROGEN_RESOLVED = ((1, 2), (2, 3), (2, 4))
 #: within this fraction of the FWHM of its own published wavelength.
 BLEND_SHIFT_TOLERANCE = 0.02
 SOURCE = (
-    "J. E. Sansonetti and W. C. Martin, Handbook of Basic Atomic Spectroscopic Data, "
-    "J. Phys. Chem. Ref. Data 34, 1559 (2005), NIST SRD 108 (intended source; most values "
-    "from memory, see line_lists/README.md)"
+    "NIST Atomic Spectra Database (Kramida, Ralchenko, Reader and NIST ASD Team): levels, "
+    "line export with intensities and gA; lines the export lacks from the compiled list "
+    "(J. E. Sansonetti and W. C. Martin, Handbook of Basic Atomic Spectroscopic Data, "
+    "J. Phys. Chem. Ref. Data 34, 1559 (2005), intended source, values from memory where "
+    "marked); see line_lists/README.md"
 )
-COMPILED = "2026-12-01"
+COMPILED = "2026-12-03"
 
 _L_LETTERS = "SPDFGHIKLMNOQ"
 _LS_TERM = re.compile(r"^(\d+)([SPDFGHIKLMNOQ])°?$")
 _SPECIES_RE = re.compile(r"^\s*([A-Za-z]{1,2})\s*([Ii]*)\s*$")
+_ROMAN = {"": "I", "I": "I", "II": "II"}
 _LEVEL_MATCH_CM1 = 1e-3
 _UNRELIABLE_MATCH_NM = 1e-4
 
@@ -92,22 +103,30 @@ _UNRELIABLE_MATCH_NM = 1e-4
 # ---- species names ---------------------------------------------------------------------
 
 
+def available_species() -> tuple[str, ...]:
+    """Every spectrum :func:`transitions` can list: the shipped species, then each neutral
+    and singly ionised spectrum of the ASD level dump ("Ag I", "Ag II", ...)."""
+    return tuple(dict.fromkeys([*SPECIES, *_asd.asd_spectra()]))
+
+
 def species_label(name: str) -> str:
-    """Canonical label ("Ne I") of a species written "Ne", "Ne I", "NeI" or "ne".
+    """Canonical label ("Ne I", "Ar II") of a spectrum written "Ne", "Ne I", "NeI", "ne",
+    "Ne_I", "Ar II" or "ArII"; a bare element symbol means the neutral atom.
 
     Raises
     ------
     RitzlineError
-        If the name is not a neutral species with shipped data.
+        If no level data exist for the spectrum.
     """
-    match = _SPECIES_RE.match(str(name))
-    if match and match.group(2) in ("", "I", "i"):
-        label = f"{match.group(1).capitalize()} I"
-        if label in SPECIES:
+    match = _SPECIES_RE.match(str(name).replace("_", " "))
+    if match and match.group(2).upper() in _ROMAN:
+        label = f"{match.group(1).capitalize()} {_ROMAN[match.group(2).upper()]}"
+        if label in SPECIES or label in _asd.asd_spectra():
             return label
     raise RitzlineError(
-        f"no line list for species {name!r}; available: {', '.join(SPECIES)} "
-        "(write e.g. 'Ne', 'Ne I' or 'NeI')"
+        f"no line list for species {name!r}; the default species are {', '.join(SPECIES)}, "
+        "and any neutral or singly ionised spectrum of the NIST ASD level dump can be named "
+        "(write e.g. 'Ne', 'Ne I', 'NeI' or 'Ar II')"
     )
 
 
@@ -153,22 +172,29 @@ def allowed_pairs(
     e = np.asarray(energy, dtype=float)
     lo_j, hi_j = np.asarray(j_min, dtype=float), np.asarray(j_max, dtype=float)
     odd = np.asarray(odd, dtype=bool)
-    gap = np.maximum(lo_j[None, :] - hi_j[:, None], lo_j[:, None] - hi_j[None, :])
-    both_zero = (hi_j[:, None] == 0) & (hi_j[None, :] == 0)
-    ok = (e[None, :] > e[:, None]) & (odd[:, None] != odd[None, :]) & (gap <= 1) & ~both_zero
-    lower, upper = np.nonzero(ok)
-    return lower, upper
+    # only odd-even pairs can combine: test that block alone (a quarter of all pairs)
+    a, b = np.flatnonzero(odd), np.flatnonzero(~odd)
+    gap = np.maximum(lo_j[None, b] - hi_j[a, None], lo_j[a, None] - hi_j[None, b])
+    both_zero = (hi_j[a, None] == 0) & (hi_j[None, b] == 0)
+    ok = (gap <= 1) & ~both_zero & (e[a, None] != e[None, b])
+    ia, ib = np.nonzero(ok)
+    first, second = a[ia], b[ib]
+    up_first = e[first] > e[second]
+    lower = np.where(up_first, second, first)
+    upper = np.where(up_first, first, second)
+    order = np.lexsort((upper, lower))  # by lower level, then upper level
+    return lower[order], upper[order]
 
 
 def j_value(text: str) -> float:
-    """J as a number from its table text ("2", "3/2"); NaN when blank."""
-    text = str(text).strip()
-    if not text:
-        return np.nan
-    if "/" in text:
-        num, den = text.split("/")
-        return float(num) / float(den)
-    return float(text)
+    """J as a number from its table text ("2", "3/2", tentative "3/2?"); NaN when blank or
+    when the text lists several values ("1,2", "3/2|5/2")."""
+    return _single_j(text)
+
+
+def _single_j(text: str) -> float:
+    j_min, _, resolved = _asd.j_values(str(text).replace("|", " or "))
+    return j_min if resolved else np.nan
 
 
 def _term_ls(term: str) -> tuple[int, int] | None:
@@ -179,9 +205,12 @@ def _term_ls(term: str) -> tuple[int, int] | None:
     return int(match.group(1)), _L_LETTERS.index(match.group(2))
 
 
-def _j_range(j: float, term: str) -> tuple[float, float]:
+def _j_range(j: float, term: str, j_text: str = "") -> tuple[float, float]:
     if np.isfinite(j):
         return j, j
+    j_min, j_max, _ = _asd.j_values(str(j_text).replace("|", " or "))
+    if np.isfinite(j_min):  # a list ("1,2") or alternatives ("3/2|5/2") of J values
+        return j_min, j_max
     ls = _term_ls(term)
     if ls is None:
         return 0.0, np.inf
@@ -192,6 +221,8 @@ def _j_range(j: float, term: str) -> tuple[float, float]:
 def _g_of(j: float, term: str) -> float:
     if np.isfinite(j):
         return 2 * j + 1
+    if "," in str(term):  # not an LS term
+        return np.nan
     ls = _term_ls(term)
     return float(ls[0] * (2 * ls[1] + 1)) if ls else np.nan
 
@@ -234,8 +265,10 @@ class _Levels:
 
 def _make_levels(energy, energy_err, config, term, j_text, parity, memory) -> _Levels:
     energy = np.asarray(energy, dtype=float)
-    j = np.array([j_value(x) for x in j_text])
-    ranges = np.array([_j_range(jv, t) for jv, t in zip(j, term, strict=True)]).reshape(-1, 2)
+    j = np.array([_single_j(x) for x in j_text], dtype=float)
+    ranges = np.array(
+        [_j_range(jv, t, jt) for jv, t, jt in zip(j, term, j_text, strict=True)]
+    ).reshape(-1, 2)
     ls = [_term_ls(t) for t in term]
     odd = np.array([p == "odd" for p in parity])
     kinds = np.full(energy.size, "", dtype=object)
@@ -326,12 +359,18 @@ def _read_ecsv_astropy(path) -> Table:
 
 @functools.cache
 def _level_table(label: str) -> Table:
-    return _read_ecsv(f"{_stem(label)}.levels.ecsv")
+    if label in SPECIES:
+        return _read_ecsv(f"{_stem(label)}.levels.ecsv")
+    table = _asd.asd_levels(label)
+    # a level whose parity neither its term nor its configuration gives cannot be paired
+    return table[np.asarray(table["parity"]) != ""]
 
 
 @functools.cache
 def _observed_table(label: str) -> Table:
-    return _read_ecsv(f"{_stem(label)}.lines.ecsv")
+    if label in SPECIES:
+        return _read_ecsv(f"{_stem(label)}.lines.ecsv")
+    return _asd.asd_lines(label, _level_table(label))
 
 
 @functools.cache
@@ -517,8 +556,10 @@ def _observed_only_columns(obs: Table, rows: list[int], levels: _Levels | None) 
     return cols
 
 
-def _finish(label: str, cols: dict, obs: Table, medium: str, ritz: np.ndarray) -> Table:
-    """Turn the column dict of one species into the transition table in ``medium``."""
+def _finish(
+    label: str, cols: dict, obs: Table, medium: str, ritz: np.ndarray
+) -> dict[str, np.ndarray]:
+    """The transition columns of one species in ``medium``, sorted by wavelength."""
     n = cols["sigma"].size
     with np.errstate(divide="ignore", invalid="ignore"):
         vac = 1e7 / cols["sigma"]
@@ -545,6 +586,14 @@ def _finish(label: str, cols: dict, obs: Table, medium: str, ritz: np.ndarray) -
         low_precision[has_obs] = np.asarray(obs["low_precision"])[sel]
         confirmed[has_obs] = np.asarray(obs["confirmed"])[sel]
         cols["memory"][has_obs] |= np.asarray(obs["memory"])[sel]
+        if "g_upper" in obs.colnames:
+            # the statistical weight the published intensity and A refer to: an unresolved
+            # multiplet's when the published line stands for the whole multiplet
+            g_obs = np.asarray(obs["g_upper"], dtype=float)[sel]
+            g_rows = np.flatnonzero(has_obs)
+            cols["g_upper"][g_rows] = np.where(
+                np.isfinite(g_obs), g_obs, cols["g_upper"][g_rows]
+            )
     use_obs = ~ritz
     vac = np.where(use_obs, obs_vac, vac)
     vac_err = np.where(use_obs, obs_err, vac_err)
@@ -555,62 +604,152 @@ def _finish(label: str, cols: dict, obs: Table, medium: str, ritz: np.ndarray) -
     wl = vacuum_to_air(vac) if medium == "air" else vac
     wl = np.where(use_obs, wl_obs, wl)
     ev = _ev_per_cm1()
-    table = Table(
-        {
-            "species": np.full(n, label, dtype=object).astype(str),
-            "wavelength": wl * u.nm,
-            "wavelength_err": vac_err * u.nm,
-            "wavelength_obs": wl_obs * u.nm,
-            "wavelength_obs_err": obs_err * u.nm,
-            "wavenumber": 1e7 / vac * u.cm**-1,
-            "lower": cols["lower"].astype(str),
-            "upper": cols["upper"].astype(str),
-            "lower_cm1": cols["lower_cm1"] * u.cm**-1,
-            "upper_cm1": cols["upper_cm1"] * u.cm**-1,
-            "lower_ev": cols["lower_cm1"] * ev * u.eV,
-            "upper_ev": cols["upper_cm1"] * ev * u.eV,
-            "lower_j": cols["lower_j"],
-            "upper_j": cols["upper_j"],
-            "g_upper": cols["g_upper"],
-            "intensity": intensity,
-            "aki": aki / u.s,
-            "observed": np.isfinite(obs_vac),
-            "intercombination": cols["intercombination"],
-            "lower_kind": cols["lower_kind"].astype(str),
-            "memory": cols["memory"],
-            "ritz": ritz,
-            "lower_parity": cols["lower_parity"].astype(str),
-            "upper_parity": cols["upper_parity"].astype(str),
-            "uncertain": uncertain,
-            "low_precision": low_precision,
-            "confirmed": confirmed,
-            "note": note.astype(str),
-        }
-    )
-    table.sort("wavelength")
+    columns = {
+        "species": np.full(n, label),
+        "wavelength": wl,
+        "wavelength_err": vac_err,
+        "wavelength_obs": wl_obs,
+        "wavelength_obs_err": obs_err,
+        "wavenumber": 1e7 / vac,
+        "lower": cols["lower"],
+        "upper": cols["upper"],
+        "lower_cm1": cols["lower_cm1"],
+        "upper_cm1": cols["upper_cm1"],
+        "lower_ev": cols["lower_cm1"] * ev,
+        "upper_ev": cols["upper_cm1"] * ev,
+        "lower_j": cols["lower_j"],
+        "upper_j": cols["upper_j"],
+        "g_upper": cols["g_upper"],
+        "intensity": intensity,
+        "aki": aki,
+        "observed": np.isfinite(obs_vac),
+        "intercombination": cols["intercombination"],
+        "lower_kind": cols["lower_kind"],
+        "memory": cols["memory"],
+        "ritz": ritz,
+        "lower_parity": cols["lower_parity"],
+        "upper_parity": cols["upper_parity"],
+        "uncertain": uncertain,
+        "low_precision": low_precision,
+        "confirmed": confirmed,
+        "note": note,
+    }
+    # rows stay in pair order (reordering every column costs more than the table itself);
+    # ``_order`` lists them by wavelength for :func:`_table_rows`
+    columns["_order"] = np.argsort(wl, kind="stable")
+    _read_only(*columns.values())
+    return columns
+
+
+_UNITS = {
+    "wavelength": u.nm,
+    "wavelength_err": u.nm,
+    "wavelength_obs": u.nm,
+    "wavelength_obs_err": u.nm,
+    "wavenumber": u.cm**-1,
+    "lower_cm1": u.cm**-1,
+    "upper_cm1": u.cm**-1,
+    "lower_ev": u.eV,
+    "upper_ev": u.eV,
+    "aki": 1 / u.s,
+}
+
+
+def _table_rows(columns: dict[str, np.ndarray], keep: np.ndarray) -> Table:
+    """The transition table of the kept rows, sorted by wavelength (text columns as str,
+    units attached).
+
+    The species' columns stay plain arrays until here so that a selection (a wavelength
+    range, the observed lines) converts only the rows it keeps.
+    """
+    order = columns["_order"]
+    rows = order[keep[order]]
+    table = Table()
+    for name, values in columns.items():
+        if name == "_order":
+            continue
+        data = values[rows]
+        if data.dtype == object:
+            data = data.astype(str) if data.size else np.zeros(0, dtype=str)
+        table[name] = data * _UNITS[name] if name in _UNITS else data
     return table
 
 
-def _build_species(label: str, medium: str) -> Table:
-    if label == "H I":
-        return _build_hydrogen(medium)
+def _observed_pairs(levels: _Levels, obs: Table) -> tuple[np.ndarray, np.ndarray]:
+    """The E1-allowed level pairs of the published lines, sorted by (lower, upper): the
+    pairs an observed-only list needs, without testing every pair of a large table."""
+    ends = [
+        _match_level(levels, float(obs[f"{side}_cm1"][i]), obs[f"{side}_j"][i])
+        for i in range(len(obs))
+        for side in ("lower", "upper")
+    ]
+    sub = np.unique([k for k in ends if k >= 0]).astype(int)
+    if sub.size < 2:
+        return np.zeros(0, dtype=int), np.zeros(0, dtype=int)
+    lo, up = allowed_pairs(levels.energy[sub], levels.j_min[sub], levels.j_max[sub],
+                           levels.odd[sub])
+    wanted = {(a, b) for a, b in zip(ends[0::2], ends[1::2], strict=True)}
+    keep = np.array([(int(sub[a]), int(sub[b])) in wanted for a, b in zip(lo, up, strict=True)],
+                    dtype=bool)
+    return sub[lo[keep]], sub[up[keep]]
+
+
+@functools.cache
+def _species_pairs(label: str, observed_only: bool) -> tuple:
+    """The level pairs of one species and which published line each one is: (lower, upper,
+    obs_index, unmatched published rows).  Plain integer arrays, cheap to keep; the columns
+    are built later only for the pairs a call asks for."""
     levels = _levels(label)
     obs = _observed_table(label)
-    lower, upper = allowed_pairs(levels.energy, levels.j_min, levels.j_max, levels.odd)
-    cols = _pairs_columns(levels, lower, upper)
-    pair_index = {(int(a), int(b)): k for k, (a, b) in enumerate(zip(lower, upper, strict=True))}
+    if observed_only:
+        lower, upper = _observed_pairs(levels, obs)
+    else:
+        lower, upper = allowed_pairs(levels.energy, levels.j_min, levels.j_max, levels.odd)
+    n_levels = levels.energy.size
+    pair_key = lower.astype(np.int64) * n_levels + upper  # both give them sorted
+    obs_index = np.full(lower.size, -1, dtype=int)
     unmatched = []
     for i in range(len(obs)):
         lo = _match_level(levels, float(obs["lower_cm1"][i]), obs["lower_j"][i])
         up = _match_level(levels, float(obs["upper_cm1"][i]), obs["upper_j"][i])
-        k = pair_index.get((lo, up), -1) if lo >= 0 and up >= 0 else -1
-        if k >= 0 and cols["obs_index"][k] < 0:
-            cols["obs_index"][k] = i
+        k = -1
+        if lo >= 0 and up >= 0:
+            key = lo * n_levels + up
+            pos = int(np.searchsorted(pair_key, key))
+            k = pos if pos < pair_key.size and pair_key[pos] == key else -1
+        if k >= 0 and obs_index[k] < 0:
+            obs_index[k] = i
         else:
             unmatched.append(i)
+    _read_only(lower, upper, obs_index)
+    return lower, upper, obs_index, tuple(unmatched)
+
+
+#: Margin (nm) around a requested range when pairs are preselected by vacuum wavelength
+#: (the air-vacuum difference is below 0.3 nm from 200 to 1100 nm, common practice).
+_PRESELECT_MARGIN_NM = 1.0
+
+
+def _build_species(
+    label: str, medium: str, observed_only: bool, limits: tuple[float, float] | None = None
+) -> dict[str, np.ndarray]:
+    if label == "H I":
+        return _build_hydrogen(medium)
+    levels = _levels(label)
+    obs = _observed_table(label)
+    lower, upper, obs_index, unmatched = _species_pairs(label, observed_only)
+    if limits is not None:  # only pairs near the range (and every published line) are built
+        with np.errstate(divide="ignore"):
+            vac = 1e7 / (levels.energy[upper] - levels.energy[lower])
+        near = (vac >= limits[0] - _PRESELECT_MARGIN_NM) & (vac <= limits[1] * 1.001
+                                                           + _PRESELECT_MARGIN_NM)
+        near |= obs_index >= 0
+        lower, upper, obs_index = lower[near], upper[near], obs_index[near]
+    cols = _pairs_columns(levels, lower, upper)
+    cols["obs_index"] = obs_index.copy()
     ritz = np.ones(lower.size, dtype=bool)
     if unmatched:
-        cols = _concat(cols, _observed_only_columns(obs, unmatched, levels))
+        cols = _concat(cols, _observed_only_columns(obs, list(unmatched), levels))
         ritz = np.concatenate([ritz, np.zeros(len(unmatched), dtype=bool)])
     return _finish(label, cols, obs, medium, ritz)
 
@@ -620,7 +759,7 @@ def _shell(config: str) -> int:
     return int(match.group(1)) if match else -1
 
 
-def _build_hydrogen(medium: str) -> Table:
+def _build_hydrogen(medium: str) -> dict[str, np.ndarray]:
     fine, fine_n = _hydrogen_fine_levels()
     lower, upper = allowed_pairs(fine.energy, fine.j_min, fine.j_max, fine.odd)
     shells = zip(fine_n[lower], fine_n[upper], strict=True)
@@ -676,22 +815,37 @@ def _clear_caches() -> None:
         _hydrogen_fine_levels,
         _hydrogen_centroids,
         _species_transitions,
+        _species_table,
+        _species_pairs,
         _lamp_files,
         _lamp_lines,
     ):
         loader.cache_clear()
+    for loader in (_asd.asd_spectra, _asd._level_rows, _asd._export_rows):
+        loader.cache_clear()
 
 
-@functools.cache
-def _species_transitions(label: str, medium: str) -> Table:
-    table = _build_species(label, medium)
-    table.meta = {
-        "species": label,
-        "medium": medium,
-        "source": SOURCE,
-        "compiled": COMPILED,
-    }
-    return table
+@functools.lru_cache(maxsize=256)
+def _species_transitions(
+    label: str,
+    medium: str,
+    observed_only: bool = False,
+    limits: tuple[float, float] | None = None,
+) -> dict[str, np.ndarray]:
+    """The transitions of one species as read-only column arrays (see :func:`_finish`):
+    every allowed pair, or only those of published lines (calibration and identification
+    need no more), and with ``limits`` only those near that range: a level table of several
+    hundred levels has tens of thousands of pairs, most far outside any spectrum."""
+    return _build_species(label, medium, observed_only, limits)
+
+
+@functools.lru_cache(maxsize=256)
+def _species_table(
+    label: str, medium: str, observed_only: bool, limits: tuple[float, float] | None
+) -> Table:
+    """:func:`_species_transitions` as a table (sorted by wavelength); callers slice it."""
+    columns = _species_transitions(label, medium, observed_only, limits)
+    return _table_rows(columns, np.ones(columns["wavelength"].size, dtype=bool))
 
 
 def _check_medium(medium: str) -> str:
@@ -733,7 +887,10 @@ def transitions(
     Parameters
     ----------
     species : str or sequence of str
-        "Ne", "Ne I", "NeI" (neutral species only) or a list of them.
+        "Ne", "Ne I", "NeI", "Ar II" or a list of them: the shipped species
+        (:data:`SPECIES`) or any spectrum of the ASD level dump (:func:`available_species`),
+        whose observed lines are those of the ASD line export (none for most spectra;
+        ``intensity`` is NaN, unknown, wherever ASD gives none).
     wavelength_range : (float, float) or (Quantity, Quantity), optional
         Keep lines with ``min <= wavelength <= max``, nm in ``medium``.
     medium : {"air", "vacuum"}
@@ -762,18 +919,21 @@ def transitions(
 
     Examples
     --------
-    >>> t = transitions("Hg", wavelength_range=(253.6, 253.7))
+    >>> t = transitions("Hg", wavelength_range=(253.6, 253.7), observed_only=True)
     >>> f"{t['wavelength'][0]:.4f} {t['upper'][0]}"
-    '253.6517 5d10 6s6p 3P° J=1'
+    '253.6521 5d10 6s6p 3P° J=1'
+    >>> cu = transitions("Cu I", wavelength_range=(324.75, 324.76))  # no ASD export lines
+    >>> f"{cu['wavelength'][0]:.3f} {cu['intensity'][0]}"
+    '324.754 nan'
     """
     labels = _species_labels(species)
     medium = _check_medium(medium)
     limits = _range_nm(wavelength_range)
     parts = []
     for label in labels:
-        t = _species_transitions(label, medium)
-        keep = np.ones(len(t), dtype=bool)
+        t = _species_table(label, medium, bool(observed_only), limits)
         wl = np.asarray(t["wavelength"])
+        keep = np.ones(wl.size, dtype=bool)
         if limits is not None:
             keep &= (wl >= limits[0]) & (wl <= limits[1])
         if observed_only:
@@ -946,13 +1106,16 @@ class UnreliableLine:
 
 @dataclass(frozen=True)
 class Lamp:
-    """A reference lamp: its emitting species and the lines known to be unreliable."""
+    """A reference lamp: its emitting species, the lines known to be unreliable, and per
+    species the least listed intensity of a line the lamp shows (``min_intensity``, pairs
+    of species and value; lines of unknown intensity are kept)."""
 
     name: str
     species: tuple[str, ...]
     unreliable: tuple[UnreliableLine, ...] = ()
     description: str = ""
     safety: str = ""
+    min_intensity: tuple[tuple[str, float], ...] = ()
 
 
 def _lamp_key(species: Iterable[str]) -> frozenset[str]:
@@ -969,9 +1132,12 @@ def _lamp_files() -> dict[frozenset[str], dict]:
     out = {}
     for data in raw.values():
         unreliable = list(data.get("unreliable", []))
+        min_intensity = {}
         for inc in data.get("include", []):
             unreliable = list(raw[inc.lower()].get("unreliable", [])) + unreliable
-        entry = dict(data, unreliable=unreliable)
+            min_intensity.update(raw[inc.lower()].get("min_intensity", {}))
+        min_intensity.update(data.get("min_intensity", {}))
+        entry = dict(data, unreliable=unreliable, min_intensity=min_intensity)
         out[_lamp_key(data["species"])] = entry
     return out
 
@@ -991,6 +1157,9 @@ def _lamp_from_entry(entry: dict) -> Lamp:
         ),
         description=entry.get("description", ""),
         safety=entry.get("safety", ""),
+        min_intensity=tuple(
+            (species_label(k), float(v)) for k, v in entry.get("min_intensity", {}).items()
+        ),
     )
 
 
@@ -1023,17 +1192,20 @@ def load_lamp(name: str | Sequence[str] | Lamp) -> Lamp:
     files = _lamp_files()
     if key in files:
         return _lamp_from_entry(files[key])
-    unreliable = []
-    for label in sorted(key, key=SPECIES.index):
+    unreliable, min_intensity = [], []
+    order = available_species().index
+    for label in sorted(key, key=order):
         single = files.get(frozenset([label]))
         if single:
             unreliable.extend(_lamp_from_entry(single).unreliable)
-    labels = tuple(sorted(key, key=SPECIES.index))
+            min_intensity.extend(_lamp_from_entry(single).min_intensity)
+    labels = tuple(sorted(key, key=order))
     return Lamp(
         name="+".join(s.split()[0] for s in labels),
         species=labels,
         unreliable=tuple(unreliable),
         description="species set without a lamp file",
+        min_intensity=tuple(min_intensity),
     )
 
 
@@ -1095,6 +1267,12 @@ def _lamp_lines(
 ) -> Table:
     t = transitions(lamp.species, medium=medium, observed_only=True)
     t = t[np.isfinite(np.asarray(t["wavelength_obs"], dtype=float))]
+    if lamp.min_intensity:
+        floor = dict(lamp.min_intensity)
+        least = np.array([floor.get(s, -np.inf) for s in np.asarray(t["species"])])
+        intensity = np.asarray(t["intensity"], dtype=float)
+        with np.errstate(invalid="ignore"):
+            t = t[~(intensity < least)]  # unknown intensities stay
     wl = np.asarray(t["wavelength_obs"], dtype=float)
     order = np.argsort(wl, kind="stable")
     t = t[order]

@@ -501,6 +501,7 @@ class _State:
         self.run_half = z.copy()  # clipped lines: half the clipped run (px); else 0
         self.run_centre = z.copy()
         self.run_flux = z.copy()
+        self.run_clip = z.copy()
 
     def subset(self, keep):
         """The components where the boolean mask ``keep`` is True (copies, every attribute)."""
@@ -512,7 +513,7 @@ class _State:
         new = _State(_cat(self.centre, centre), _cat(self.sigma, sigma),
                      _cat(self.flux, flux))
         new.saturated = _cat(self.saturated, np.broadcast_to(saturated, np.shape(centre)))
-        for name in ("run_half", "run_centre", "run_flux"):
+        for name in ("run_half", "run_centre", "run_flux", "run_clip"):
             setattr(new, name, _cat(getattr(self, name), np.zeros(np.shape(centre))))
         return new
 

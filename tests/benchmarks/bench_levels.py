@@ -35,6 +35,8 @@ def _ms(func, setup=None, repeats: int = REPEATS) -> float:
 
 def _forget_transitions() -> None:
     levels._species_transitions.cache_clear()
+    levels._species_table.cache_clear()
+    levels._species_pairs.cache_clear()
 
 
 def _load_all() -> None:
