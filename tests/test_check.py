@@ -5,6 +5,7 @@ Reference values for the drift model are synthetic truths (known shifts put into
 data); everything else checks our own bookkeeping against what was put in.
 """
 
+import contextlib
 import json
 import multiprocessing
 import os
@@ -264,14 +265,140 @@ def test_resume_refuses_a_journal_made_with_other_settings(tmp_path):
                   resume=True)
 
 
-def test_a_dying_worker_stops_the_run_with_an_error_and_keeps_the_journal(tmp_path):
+def test_a_dying_worker_stops_the_run_incomplete_and_keeps_the_journal(tmp_path):
     paths = write_numbers(tmp_path / "in", 40)
     for p in paths[5:]:
         p.write_text(json.dumps({"value": "die"}))
     out = tmp_path / "out"
-    with pytest.raises(RitzlineError, match="worker process died"):
-        run_batch(paths, NumberTask(delay=0.01), outdir=out, workers=2, chunksize=2)
-    assert len(read_journal(out / "journal.jsonl")[1]) >= 1
+    result = run_batch(paths, NumberTask(delay=0.01), outdir=out, workers=2, chunksize=2)
+    assert not result.complete and "worker process died" in result.stopped
+    assert "--resume" in result.stopped
+    done = len(read_journal(out / "journal.jsonl")[1])
+    assert 1 <= done < 40 and len(result.rows) == done
+
+
+# ---- one owner per output folder -----------------------------------------------------------
+
+
+def test_a_second_run_into_a_busy_output_folder_is_refused(tmp_path):
+    out = tmp_path / "out"
+    paths = write_numbers(tmp_path / "in", 3)
+    with check.OutputLock(out):
+        with pytest.raises(RitzlineError, match=r"in use by another check run \(pid \d+ on host"):
+            run_batch(paths, NumberTask(), outdir=out, workers=1)
+    # the owner's journal was never touched by the refused run
+    assert not (out / "journal.jsonl").exists()
+    assert run_batch(paths, NumberTask(), outdir=out, workers=1).complete
+    assert not (out / check.LOCK_NAME).exists()
+
+
+def test_the_lock_file_names_pid_host_and_start_time(tmp_path):
+    import socket
+
+    with check.OutputLock(tmp_path) as lock:
+        info = json.loads(lock.path.read_text())
+    assert info["pid"] == os.getpid() and info["host"] == socket.gethostname()
+    assert info["started"][:4].isdigit()
+
+
+def test_a_busy_folder_is_refused_across_processes(tmp_path):
+    holder = subprocess.Popen(
+        [sys.executable, "-c", "import sys, time; from ritzline.check import OutputLock; "
+         f"l = OutputLock({str(tmp_path)!r}).acquire(); print('held', flush=True); "
+         "time.sleep(60)"], stdout=subprocess.PIPE, text=True)  # fmt: skip
+    try:
+        assert holder.stdout.readline().strip() == "held"
+        with pytest.raises(RitzlineError, match=f"pid {holder.pid} "):
+            check.OutputLock(tmp_path).acquire()
+    finally:
+        holder.kill()
+        holder.wait()
+    # its process is gone: the lock is stale and taken over with a warning
+    with pytest.warns(check.OutputLockWarning, match=f"stale lock.*pid {holder.pid}"):
+        check.OutputLock(tmp_path).acquire().release()
+
+
+def test_a_stale_lock_from_a_dead_process_is_taken_over_with_a_warning(tmp_path):
+    import socket
+
+    dead = subprocess.Popen([sys.executable, "-c", "pass"])
+    dead.wait()  # a pid that no longer runs
+    (tmp_path / check.LOCK_NAME).write_text(json.dumps(
+        {"pid": dead.pid, "host": socket.gethostname(), "started": "2026-01-01T00:00:00"}))
+    paths = write_numbers(tmp_path / "in", 2)
+    with pytest.warns(check.OutputLockWarning, match="no longer running"):
+        result = run_batch(paths, NumberTask(), outdir=tmp_path, workers=1)
+    assert result.complete
+
+
+def test_a_lock_from_another_host_is_refused(tmp_path):
+    (tmp_path / check.LOCK_NAME).write_text(json.dumps(
+        {"pid": 1, "host": "some-other-host.invalid", "started": "2026-01-01T00:00:00"}))
+    with pytest.raises(RitzlineError, match="another host"):
+        check.OutputLock(tmp_path).acquire()
+
+
+ORPHAN_SCRIPT = textwrap.dedent(
+    """
+    import sys
+    from pathlib import Path
+    sys.path.insert(0, {tests!r})
+    from test_check import NumberTask
+    from ritzline.check import run_batch
+    paths = sorted(Path({indir!r}).glob("*.json"), key=lambda p: int(p.stem[3:]))
+    run_batch(paths, NumberTask(delay=0.2), outdir={outdir!r}, workers=3, chunksize=1)
+    """
+)
+
+
+def _children(pid):
+    try:
+        return [int(k) for k in Path(f"/proc/{pid}/task/{pid}/children").read_text().split()]
+    except OSError:
+        return []
+
+
+def _alive(pid):
+    try:
+        state = Path(f"/proc/{pid}/stat").read_text().rsplit(")", 1)[1].split()[0]
+    except (OSError, IndexError):
+        return False
+    return state != "Z"
+
+
+@pytest.mark.skipif(not Path("/proc/self/task").exists(), reason="needs Linux /proc")
+def test_workers_die_with_their_parent_after_sigkill(tmp_path):
+    write_numbers(tmp_path / "in", 200)
+    out = tmp_path / "out"
+    script = ORPHAN_SCRIPT.format(tests=str(Path(__file__).parent), indir=str(tmp_path / "in"),
+                                  outdir=str(out))
+    proc = subprocess.Popen([sys.executable, "-c", script], start_new_session=True)
+    deadline = time.monotonic() + 30
+    workers = []
+    while time.monotonic() < deadline and len(workers) < 2:
+        workers = _children(proc.pid)
+        time.sleep(0.05)
+    assert len(workers) >= 2, "the pool did not start"
+    journal = out / "journal.jsonl"
+    while time.monotonic() < deadline and not (journal.exists() and
+                                               journal.read_text().count("\n") > 3):
+        time.sleep(0.05)
+    os.kill(proc.pid, signal.SIGKILL)  # the parent only, not its process group
+    proc.wait(timeout=10)
+    deadline = time.monotonic() + 5
+    while time.monotonic() < deadline and any(_alive(w) for w in workers):
+        time.sleep(0.05)
+    try:
+        assert not [w for w in workers if _alive(w)], "a worker outlived its parent"
+    finally:
+        for w in workers:
+            with contextlib.suppress(OSError):
+                os.kill(w, signal.SIGKILL)
+    # and the folder's lock went with them: a new run takes it over
+    with pytest.warns(check.OutputLockWarning):
+        result = run_batch(sorted((tmp_path / "in").glob("*.json")), NumberTask(),
+                           outdir=out, workers=1, resume=True)
+    assert result.complete
 
 
 def test_read_journal_ignores_a_torn_last_line(tmp_path):
@@ -689,3 +816,209 @@ def test_a_reference_without_a_line_width_still_measures_the_drift(bench):
     table = check.check_exposures(bench["paths"][1:2], solution, workers=1)
     assert table["shift_px"][0] == pytest.approx(0.12, abs=0.02)
     assert np.isnan(table["fwhm_change_pct"][0]) and np.isfinite(table["fwhm_px"][0])
+
+
+# ---- honest totals: masked samples, lamp off, files that are not spectra --------------------
+
+
+def test_masked_samples_are_counted_and_warned_above_the_limit(bench, tmp_path):
+    text = bench["paths"][0].read_text().splitlines()
+    start = text.index("counts") + 1
+    for k in range(1800, 1830):  # 30 samples that are not numbers, as in a corrupted copy
+        text[start + k] = "nan" if k % 2 else "inf"
+    path = tmp_path / "holes.txt"
+    path.write_text("\n".join(text) + "\n")
+    table = check.check_exposures([bench["paths"][0], path], bench["solution"], workers=1)
+    assert list(table["masked_samples"]) == [0, 30]
+    assert table["status"][1] == "warn" and "30 masked samples" in table["reasons"][1]
+    lenient = check.check_exposures([path], bench["solution"], workers=1,
+                                    limits=CheckLimits(max_masked_samples=30))
+    assert lenient["status"][0] == "pass"
+
+
+@pytest.mark.parametrize("kind", ["dark", "constant"])
+def test_a_lamp_off_or_constant_frame_fails_with_no_lines_found(bench, tmp_path, kind):
+    rng = np.random.default_rng(5)
+    counts = (150.0 + rng.normal(0, 6.0, 3648)) if kind == "dark" else np.full(3648, 812.0)
+    path = cs.write_text_exposure(tmp_path / f"{kind}.txt", counts)
+    table = check.check_exposures([path], bench["solution"], workers=1)
+    assert table["status"][0] == "fail"
+    assert table["reasons"][0].startswith("no lines found (lamp off?)")
+    assert table["n_found"][0] == 0 and table["n_lines"][0] == 0
+
+
+def test_files_that_are_not_spectra_are_skipped_and_listed_not_errors(bench, tmp_path):
+    folder = tmp_path / "data"
+    folder.mkdir()
+    good = folder / "lamp_00000.txt"
+    good.write_bytes(bench["paths"][0].read_bytes())
+    for name in ("README.txt", "notes.json", "overview.png", "run.log"):
+        (folder / name).write_text("not a spectrum")
+    found = check.find_exposures([folder, folder / "notes.json"])
+    assert [p.name for p in found.files] == ["lamp_00000.txt"]
+    assert sorted(p.name for p in found.skipped) == ["README.txt", "notes.json", "overview.png",
+                                                     "run.log"]
+    r = run_cli("check", folder, "--solution", bench["solution_path"], "-o", tmp_path / "o")
+    assert r.exit_code == 0, r.output
+    assert r.output.count("README.txt") == 1 and "skipped 4 files" in r.output
+    assert "1 exposures: 1 pass, 0 warn, 0 fail, 0 error" in r.output
+    info = json.loads((tmp_path / "o" / "summary.json").read_text())
+    assert len(info["skipped_files"]) == 4 and info["totals"]["error"] == 0
+
+
+def test_cli_lists_errors_then_fails_then_warnings(bench, tmp_path):
+    paths = [bench["paths"][3], bench["paths"][4], bench["bad"]["garbage"], bench["paths"][0],
+             bench["paths"][5], bench["bad"]["empty"]]  # warn, fail, error, pass, fail, error
+    r = run_cli("check", *paths, "--solution", bench["solution_path"], "-o", tmp_path / "o")
+    listed = [line.split()[0] for line in r.output.splitlines() if line.startswith("  ")]
+    assert listed == ["error", "error", "fail", "fail", "warn"]
+    assert r.exit_code == 1
+
+
+def test_cli_an_incomplete_run_has_a_banner_and_exit_status_3(bench, tmp_path, monkeypatch):
+    def dying_pool(task, items, workers, chunksize):
+        items = list(items)
+        index, key, path = items[0]
+        yield index, key, task(path)
+        raise check._WorkerDied("a worker process died (killed or out of memory); run the "
+                                "same command again with --resume")
+
+    monkeypatch.setattr(check, "_results_pool", dying_pool)
+    out = tmp_path / "o"
+    r = run_cli("check", *bench["paths"][:3], "--solution", bench["solution_path"], "-o", out)
+    assert r.exit_code == 3, r.output
+    assert "INCOMPLETE RUN: 2 of 3 exposures have no result" in r.output
+    assert "worker process died" in r.output and "--resume" in r.output
+    info = json.loads((out / "summary.json").read_text())
+    assert info["complete"] is False and info["missing_exposures"] == 2
+    assert "interrupted" in (out / "report.html").read_text(encoding="utf-8")
+    monkeypatch.undo()
+    r = run_cli("check", *bench["paths"][:3], "--solution", bench["solution_path"], "-o", out,
+                "--resume")
+    assert r.exit_code == 0 and "INCOMPLETE" not in r.output, r.output
+
+
+def test_cli_refuses_an_output_folder_owned_by_another_run(bench, tmp_path):
+    out = tmp_path / "o"
+    with check.OutputLock(out):
+        r = run_cli("check", bench["paths"][0], "--solution", bench["solution_path"], "-o", out)
+    assert r.exit_code == 2 and r.output.startswith("error:") and "in use by another" in r.output
+
+
+# ---- a stable series from an instrument with asymmetric lines --------------------------------
+
+
+def skewed_counts(inst, lines, rng, shift):
+    """A lamp exposure whose every line has a shoulder on its red side (a coma-like,
+    asymmetric line shape, as compact spectrometers show): 70 % of the flux in a main
+    Gaussian and 30 % in one 0.8 FWHM to its right, both pixel-integrated.  Today's finder
+    fits each such line as two and flags both "blended"."""
+    from ritzline.synthetic import integrated_gaussians, observe
+
+    pix = cs.drifted(inst, shift).pixel(lines["wavelength"])
+    flux = 1.5e5 * lines["intensity"]
+    fw = inst.fwhm_px
+    expected = inst.background + integrated_gaussians(
+        inst.n_pixels, np.concatenate([pix, pix + 0.8 * fw]),
+        np.concatenate([0.7 * flux, 0.3 * flux]), fw)
+    return observe(expected, rng, gain=inst.gain, read_noise=inst.read_noise,
+                   saturation=inst.saturation)
+
+
+def test_a_stable_series_with_asymmetric_lines_passes(tmp_path):
+    from ritzline.calibration import Solution
+    from ritzline.peaks import find_lines
+
+    rng = np.random.default_rng(77)
+    inst, lines = cs.bench_instrument(), cs.bench_lines()
+    # the reference: the same skewed lines measured by the finder on an undrifted frame
+    counts = skewed_counts(inst, lines, rng, 0.0)
+    found = find_lines(counts, fwhm_guess=inst.fwhm_px, saturation=cs.SATURATION)
+    truth = inst.pixel(lines["wavelength"])
+    fp = np.asarray(found["pixel"], float)
+    j = np.abs(fp[None, :] - truth[:, None]).argmin(axis=1)
+    ok = np.abs(fp[j] - truth) < 2.0
+    doc = cs.reference_solution(inst, lines, rng).to_dict()
+    doc["lines"] = [dict(doc["lines"][0], pixel=float(fp[k]),
+                         pixel_err=float(found["pixel_err"][k]), wavelength_ref=float(w))
+                    for k, w in zip(j[ok], lines["wavelength"][ok], strict=True)]  # fmt: skip
+    doc["fwhm_pixel"] = float(np.median(np.asarray(found["fwhm_pixel"], float)[j[ok]]))
+    solution = Solution.from_dict(doc, source="skewed reference")
+    shifts = rng.normal(0.0, 0.07, 12)  # a stable spectrometer: 0.07 px RMS
+    paths = [cs.write_text_exposure(tmp_path / f"s{i:02d}.txt",
+                                    skewed_counts(inst, lines, rng, s))
+             for i, s in enumerate(shifts)]  # fmt: skip
+    table = check.check_exposures(paths, solution, workers=1)
+    assert set(table["status"]) == {"pass"}, list(table["reasons"])
+    got = np.asarray(table["shift_px"], float)
+    assert np.max(np.abs(got - shifts)) < 0.03
+    assert np.all(np.asarray(table["n_fit"]) >= 0.8 * ok.sum())
+
+
+# ---- the fit at expected positions --------------------------------------------------------
+
+
+def known_line_frames(rng, n_frames, shift, *, flux=2.0e5, fwhm=2.6, saturation=None):
+    from ritzline.synthetic import integrated_gaussians, observe
+
+    inst, lines = cs.bench_instrument(fwhm), cs.bench_lines()
+    ref = inst.pixel(lines["wavelength"])
+    true = ref + shift
+    frames = [observe(150.0 + integrated_gaussians(inst.n_pixels, true, flux * lines["intensity"],
+                                                   fwhm), rng, gain=1.5, read_noise=6.0,
+                      saturation=saturation) for _ in range(n_frames)]  # fmt: skip
+    return ref, true, frames
+
+
+def test_known_line_fit_centroids_agree_with_truth_within_their_errors(rng):
+    # truth: the positions put into the synthetic frames; the pulls (error / quoted error)
+    # of an honest estimator have unit scatter (common practice)
+    ref, true, frames = known_line_frames(rng, 20, shift=1.37)
+    pulls = []
+    for counts in frames:
+        m = check.measure_known_lines(counts, np.ones(counts.size, bool), ref, 2.6)
+        assert m.ref_index.size == ref.size  # every line found
+        pulls.append((m.pixel - true[m.ref_index]) / m.pixel_err)
+        assert np.all(np.abs(m.fwhm_pixel - 2.6) < 0.15)
+        assert m.n_found == ref.size
+    pulls = np.concatenate(pulls)
+    assert abs(np.mean(pulls)) < 0.15 and 0.8 < np.std(pulls) < 1.25
+
+
+def test_known_line_fit_measures_a_saturated_line_from_its_wings(rng):
+    ref, true, frames = known_line_frames(rng, 3, shift=-0.6, flux=3.5e5, saturation=65535.0)
+    for counts in frames:
+        assert np.count_nonzero(counts >= 65535.0) > 10
+        m = check.measure_known_lines(counts, np.ones(counts.size, bool), ref, 2.6,
+                                      saturation=65535.0)
+        sat = np.char.find(m.flags.astype(str), "saturated") >= 0
+        assert sat.any() and (~sat).any()
+        err = np.abs(m.pixel - true[m.ref_index])
+        assert np.all(err[sat] < 5 * m.pixel_err[sat] + 0.02)
+        # the flag marks exactly the lines with clipped samples at their centre
+        clipped = counts[np.rint(true[m.ref_index]).astype(int)] >= 65535.0
+        assert np.array_equal(sat, clipped)
+
+
+def test_known_line_fit_reports_a_missing_line_as_not_found(rng):
+    from ritzline.synthetic import integrated_gaussians, observe
+
+    inst, lines = cs.bench_instrument(), cs.bench_lines()
+    ref = inst.pixel(lines["wavelength"])
+    keep = np.ones(ref.size, bool)
+    keep[[3, 17]] = False
+    counts = observe(150.0 + integrated_gaussians(inst.n_pixels, ref[keep],
+                                                  2e5 * lines["intensity"][keep], 2.6), rng,
+                     gain=1.5, read_noise=6.0)  # fmt: skip
+    m = check.measure_known_lines(counts, np.ones(counts.size, bool), ref, 2.6)
+    assert sorted(set(range(ref.size)) - set(m.ref_index.tolist())) == [3, 17]
+
+
+def test_both_measurements_recover_the_known_shifts(bench):
+    truth = bench["shifts"]
+    for method in check.MEASURE_METHODS:
+        table = check.check_exposures(bench["paths"], bench["solution"], workers=1,
+                                      method=method)
+        got = np.asarray(table["shift_px"], float)
+        assert np.sqrt(np.mean((got - truth) ** 2)) < 0.02, method
+        assert table.meta["line_measurement"].startswith(method)

@@ -186,6 +186,28 @@ def parse_wavelength_range(_ctx, _param, value: str | None):
     return lo, hi
 
 
+def parse_axis_err(_ctx, _param, value: str | None):
+    """Click callback: "2px", "2 px", "0.5nm" or a bare number of pixels -> a Quantity."""
+    if value is None:
+        return None
+    import astropy.units as u
+
+    text = value.strip().lower().replace(" ", "")
+    unit = u.pix
+    for suffix, un in (("px", u.pix), ("pix", u.pix), ("nm", u.nm)):
+        if text.endswith(suffix):
+            text, unit = text[: -len(suffix)], un
+            break
+    try:
+        number = float(text)
+    except ValueError:
+        raise click.BadParameter(f"expected a distance such as 2px or 0.5nm, not {value!r}") \
+            from None
+    if not number >= 0:
+        raise click.BadParameter(f"the axis uncertainty cannot be negative, got {value!r}")
+    return number * unit
+
+
 def echo_json(data) -> None:
     click.echo(json.dumps(data, indent=2, default=str))
 
@@ -699,6 +721,17 @@ def _match_print(result, max_rows: int) -> None:
     import numpy as np
 
     t = result.lines
+    ax = result.meta["axis_correction"]
+    unit = ax["unit"]
+    click.echo(f"wavelength axis: searched within ±{ax['axis_err_told']:.3g} {unit}; "
+               f"correction offset {ax['offset']:+.3f} ± {ax['offset_err']:.3f} {unit}, "
+               f"tilt {ax['tilt']:+.3f} ± {ax['tilt_err']:.3f} {unit} (edge to centre)")
+    if "shift_nm" in ax:
+        lo, mid, hi = ax["shift_nm"]
+        elo, emid, ehi = ax["shift_err_nm"]
+        click.echo(f"  subtracted from the measured wavelengths: {lo:+.4f} ± {elo:.4f} nm at the "
+                   f"first pixel, {mid:+.4f} ± {emid:.4f} nm mid-way, {hi:+.4f} ± {ehi:.4f} nm at "
+                   "the last")
     click.echo(f"{'measured':>10s} {'±':>7s} {'SNR':>6s}  {'species':7s} {'listed':>9s} "
                f"{'upper level':28s} {'E_up/eV':>7s} {'p':>5s}  flags")
     for k, row in enumerate(t):
@@ -761,6 +794,9 @@ def _match_print(result, max_rows: int) -> None:
               help="Relative spectral response file (wavelength nm, response) for level "
               "populations and the excitation temperature.")
 @click.option("--column", default=None, help="Counts column of the spectrum file.")
+@click.option("--axis-err", default=None, metavar="DIST", callback=parse_axis_err,
+              help="How far off the wavelength axis may be, e.g. 2px or 0.5nm (a bare "
+              "number is px; default 0.5 px). An offset and tilt are searched within it.")
 @click.option("-o", "--output", type=click.Path(dir_okay=False), default=None,
               callback=table_path, help="Write the line assignments (ECSV; .csv, .fits).")
 @click.option("--levels", "levels_path", type=click.Path(dir_okay=False), default=None,
@@ -783,9 +819,9 @@ def _match_print(result, max_rows: int) -> None:
               help="Print at most this many lines.")
 @reader_options
 @handle_errors
-def match(file, species, solution_path, medium, max_energy, response, column, output,
-          levels_path, species_table, plot, intensity_scale, diagram, boltzmann, max_rows,
-          hdu, pixel_origin) -> None:
+def match(file, species, solution_path, medium, max_energy, response, column, axis_err,
+          output, levels_path, species_table, plot, intensity_scale, diagram, boltzmann,
+          max_rows, hdu, pixel_origin) -> None:
     """Identify the atomic transitions behind the emission lines of FILE.
 
     Prints each line's assignment with its probability, the species judged present, and the
@@ -806,7 +842,7 @@ def match(file, species, solution_path, medium, max_energy, response, column, ou
               or (spectrum.meta or {}).get("medium") or "air")
     resp = read_response(response) if response else None
     result = identify_lines(spectrum, species, solution=solution, medium=medium,
-                            max_electron_energy=max_energy, response=resp)
+                            max_electron_energy=max_energy, response=resp, axis_err=axis_err)
     if len(result.lines):
         _match_print(result, max_rows)
     else:
@@ -835,6 +871,21 @@ def match(file, species, solution_path, medium, max_energy, response, column, ou
 # ---- check -----------------------------------------------------------------------------
 
 
+EXIT_INCOMPLETE = 3
+CHECK_SHOWN = 20  # non-pass exposures listed on the console (the report lists them all)
+
+
+def _incomplete_banner(missing: int, total: int, outdir: str, why: str) -> None:
+    rule = "!" * 78
+    lines = [rule, f"!! INCOMPLETE RUN: {missing} of {total} exposures have no result.",
+             "!! The totals above count only the exposures that were checked."]
+    if why:
+        lines.append(f"!! {why}")
+    lines += [f"!! Run the same command again with --resume to check the rest "
+              f"(results in {outdir}).", rule]
+    click.echo("\n".join(lines), err=True)
+
+
 @main.command("check")
 @click.argument("inputs", nargs=-1, required=True, type=click.Path(exists=True))
 @click.option("--solution", "solution_path", required=True, type=click.Path(exists=True,
@@ -844,7 +895,8 @@ def match(file, species, solution_path, medium, max_energy, response, column, ou
 @click.option("--dark", type=click.Path(exists=True, dir_okay=False),
               help="Dark frame given to the line finder for every exposure.")
 @click.option("-o", "--outdir", required=True, type=click.Path(file_okay=False),
-              help="Output folder: summary.ecsv, summary.json, figures, report.html.")
+              help="Output folder: summary.ecsv, summary.json, figures, report.html.  One run "
+              "at a time owns it (a lock file); a second run into it is refused.")
 @click.option("--workers", type=click.IntRange(min=1), default=None,
               help="Local worker processes (default: number of cores).")
 @click.option("--dask-scheduler", metavar="ADDRESS|local", default=None,
@@ -857,24 +909,41 @@ def match(file, species, solution_path, medium, max_energy, response, column, ou
               "warn above half of it.")
 @click.option("--min-lines", type=click.IntRange(min=1), default=5, show_default=True,
               help="Fail when fewer expected lines are found.")
+@click.option("--max-masked", type=click.IntRange(min=0), default=0, show_default=True,
+              help="Warn when an exposure has more masked samples (NaN, inf) than this.")
 @click.option("--resume", is_flag=True,
               help="Skip exposures already checked into OUTDIR by an interrupted run.")
 @click.option("--pattern", default=None, metavar="GLOB", help="Files to take from folders, "
               "e.g. '*.fits' or '**/*.txt' (default: usual spectrum suffixes).")
+@click.option("--measure", type=click.Choice(["expected", "search"]), default="expected",
+              show_default=True, help="How lines are measured: 'expected' fits the reference's "
+              "lines where they are expected (fast); 'search' runs the blind line finder on "
+              "every exposure.")
 @click.option("--strict", is_flag=True, help="Exit 1 on warnings too.")
 @handle_errors
 def check(inputs, solution_path, lamp, dark, outdir, workers, dask_scheduler, max_shift,
-          max_fwhm_change, min_lines, resume, pattern, strict) -> None:
+          max_fwhm_change, min_lines, max_masked, resume, pattern, measure, strict) -> None:
     """Check exposures against a reference solution: drift, width, saturation, missing lines.
 
-    INPUTS are exposure files or folders.  Writes summary.ecsv, summary.json, figures and a
-    self-contained report.html into OUTDIR.  Exit 0 when every exposure passes (warnings
-    too unless --strict), 1 when any fails or cannot be read, 2 on bad input.
+    INPUTS are exposure files or folders; files that are not spectra by their name
+    (README.txt, *.json, *.png ...) are skipped and listed.  Writes summary.ecsv,
+    summary.json, figures and a self-contained report.html into OUTDIR.
+
+    \b
+    Exit status:
+      0  every exposure checked; none failed (warnings too unless --strict)
+      1  some exposure failed or could not be read (or warned, with --strict)
+      2  bad input: options, solution file, no exposures, OUTDIR owned by another run
+      3  incomplete run: some exposures have no result (a worker process died);
+         a banner says so; run again with --resume
+      130  interrupted (Ctrl-C); run again with --resume
     """
-    from .check import CheckLimits, check_exposures
+    import warnings
+
+    from .check import STATUSES, CheckLimits, check_exposures
 
     limits = CheckLimits(max_shift_px=max_shift, max_fwhm_change_pct=max_fwhm_change,
-                         min_lines=min_lines)
+                         min_lines=min_lines, max_masked_samples=max_masked)
     progress_cm = None
     progress = None
     if sys.stderr.isatty():
@@ -889,40 +958,59 @@ def check(inputs, solution_path, lamp, dark, outdir, workers, dask_scheduler, ma
         def progress(done: int, total: int) -> None:
             progress_cm.update(bar, completed=done, total=total)
 
+    def show_warning(message, category, *_args, **_kw) -> None:
+        click.echo(f"warning: {message}", err=True)
+
     try:
-        if progress_cm is not None:
-            progress_cm.start()
-        table = check_exposures(
-            inputs, solution_path, lamp=list(lamp) or None, dark=dark, limits=limits,
-            outdir=outdir, workers=workers, dask_scheduler=dask_scheduler, resume=resume,
-            pattern=pattern, progress=progress,
-        )
+        with warnings.catch_warnings():
+            warnings.showwarning = show_warning
+            if progress_cm is not None:
+                progress_cm.start()
+            table = check_exposures(
+                inputs, solution_path, lamp=list(lamp) or None, dark=dark, limits=limits,
+                outdir=outdir, workers=workers, dask_scheduler=dask_scheduler, resume=resume,
+                pattern=pattern, progress=progress, method=measure,
+            )
     except KeyboardInterrupt:
         if progress_cm is not None:
             progress_cm.stop()
-        click.echo(f"interrupted; finished exposures are kept in {outdir}; run again with "
-                   "--resume to check the rest", err=True)
+        rule = "!" * 78
+        click.echo(f"{rule}\n!! INTERRUPTED: not every exposure was checked; the finished "
+                   f"ones are kept in {outdir}.\n!! Run the same command again with --resume "
+                   f"to check the rest.\n{rule}", err=True)
         sys.exit(130)
     finally:
         if progress_cm is not None:
             progress_cm.stop()
-    totals = table.meta["totals"]
-    resumed = table.meta.get("resumed_exposures", 0)
+    meta = table.meta
+    skipped = meta.get("skipped_files") or []
+    if skipped:
+        names = ", ".join(str(p) for p in skipped[:10]) + (", ..." if len(skipped) > 10 else "")
+        click.echo(f"skipped {len(skipped)} file{'s' if len(skipped) != 1 else ''} that "
+                   f"{'are' if len(skipped) != 1 else 'is'} not a spectrum: {names}")
+    totals = meta["totals"]
+    resumed = meta.get("resumed_exposures", 0)
     click.echo(
         f"{totals['exposures']} exposures: {totals['pass']} pass, {totals['warn']} warn, "
         f"{totals['fail']} fail, {totals['error']} error"
         + (f" ({resumed} already checked in {outdir})" if resumed else "")
     )
-    shown = 0
-    for row in table:
-        if row["status"] != "pass" and shown < 20:
-            reasons = str(row["reasons"]).removeprefix(f"{row['file']}: ")
-            click.echo(f"  {row['status']:5s} {row['file']}: {reasons}")
-            shown += 1
-    hidden = len(table) - totals["pass"] - shown
-    if hidden > 0:
-        click.echo(f"  ... and {hidden} more; see {outdir}/report.html")
+    # the worst first: errors, then fails, then warnings, each in input order
+    status = [str(s) for s in table["status"]]
+    order = sorted((i for i, s in enumerate(status) if s != "pass"),
+                   key=lambda i: (-STATUSES.index(status[i]), i))
+    for i in order[:CHECK_SHOWN]:
+        row = table[i]
+        reasons = str(row["reasons"]).removeprefix(f"{row['file']}: ")
+        click.echo(f"  {row['status']:5s} {row['file']}: {reasons}")
+    if len(order) > CHECK_SHOWN:
+        click.echo(f"  ... and {len(order) - CHECK_SHOWN} more; see {outdir}/report.html")
     click.echo(f"wrote {outdir}/summary.ecsv, summary.json, report.html")
+    if not meta.get("complete", True):
+        _incomplete_banner(int(meta.get("missing_exposures") or 0),
+                           totals["exposures"] + int(meta.get("missing_exposures") or 0),
+                           outdir, str(meta.get("stopped") or ""))
+        sys.exit(EXIT_INCOMPLETE)
     if totals["fail"] or totals["error"] or (strict and totals["warn"]):
         sys.exit(EXIT_FAILED)
 

@@ -2,8 +2,10 @@
 the excited levels: assignments with probabilities, species present, excited upper levels,
 relative populations and a Boltzmann plot.
 
-The model (see :func:`identify_lines`, Notes) treats the measured lines as a marked Poisson
-process in (wavelength, flux): every candidate transition of a present species contributes
+The wavelength axis is not taken as exact: its offset and tilt are found first, within a
+stated uncertainty, and the candidates are matched on the corrected axis.  The model (see
+:func:`identify_lines`, Notes) treats the measured lines as a marked Poisson process in
+(wavelength, flux): every candidate transition of a present species contributes
 its expected number of detections and a narrow density at its Ritz wavelength, unknown lines
 contribute a flat density, and second-order images of present lines contribute at twice
 their wavelength.  Assignment probabilities are the posterior shares of those densities at
@@ -61,12 +63,16 @@ class IdentifyOptions:
         Natural-log scatter of one line relative to another line from the same upper level
         (branching ratios are fixed by the atom; only the tables and the response scatter).
     window_sigma : float
-        Candidates farther than this many combined standard deviations are not considered.
+        Candidates farther than this many combined standard deviations are not considered
+        (beyond the outlier width below).
     blend_fraction : float
         Candidate lines of one species closer than this fraction of the FWHM are one
         candidate group (an unresolved blend).
     species_threshold : float
         Log-likelihood ratio a species must reach to be declared present.
+    max_line_evidence : float
+        Most that one measured line can add to a species' log-likelihood ratio: a single
+        coincidence cannot make a species present (below ``species_threshold``).
     energy_prior : float
         Prior factor on lines whose upper level lies above ``max_electron_energy``.
     unknown_fraction : float
@@ -80,9 +86,22 @@ class IdentifyOptions:
     observed_only : bool
         Use only transitions published as observed lines (not every allowed Ritz line).
     fit_shift : bool
-        Fit a small linear wavelength correction (offset + tilt across the range) common to
-        all lines, with a Gaussian prior of 3 x the median line uncertainty: it absorbs a
-        calibration that moved by more than its stated band.
+        Correct the wavelength axis (offset + tilt, searched within the axis uncertainty)
+        before the candidate search.
+    position_floor : float
+        Position uncertainty (fraction of the FWHM) added in quadrature to every line after
+        the axis correction: line-shape asymmetry, unresolved neighbours, list errors.
+    branch_outlier : float
+        Probability that a sibling line (same upper level) says nothing about a candidate:
+        missing from the spectrum, blended, or listed with an intensity that is no branching
+        ratio.  Bounds how much one sibling can count against a candidate.
+    flux_outlier : float
+        Probability that the flux of a blend of listed lines is unrelated to their summed
+        published strength (some members missing from the spectrum).
+    outlier_fraction, outlier_width : float
+        Heavy tail of the position likelihood: a fraction ``outlier_fraction`` of true
+        assignments sits anywhere within ``outlier_width`` x FWHM of the listed line (pulled
+        by a neighbour the finder did not separate).
     n_iter : int
         Iterations of the scale/assignment updates for each species set.
     """
@@ -92,6 +111,7 @@ class IdentifyOptions:
     window_sigma: float = 5.0
     blend_fraction: float = 0.5
     species_threshold: float = 8.0
+    max_line_evidence: float = 6.0
     energy_prior: float = 0.02
     unknown_fraction: float = 0.2
     second_order: bool = True
@@ -99,6 +119,11 @@ class IdentifyOptions:
     systematic_nm: float = 0.0
     observed_only: bool = True
     fit_shift: bool = True
+    position_floor: float = 0.03
+    outlier_fraction: float = 0.05
+    branch_outlier: float = 0.2
+    flux_outlier: float = 0.05
+    outlier_width: float = 0.3
     n_iter: int = 6
 
 
@@ -262,8 +287,10 @@ def _species_list(species, custom: bool = False) -> list[str]:
 
 
 def _measured_lines(spectrum, lines, solution, find_kw):
-    """The measured line table and (range_nm, fwhm_nm, calibration_err function or None)."""
+    """The measured line table, the spectral range of the axis (or None) and the wavelength
+    axis of the spectrum when it has one (to read the dispersion from)."""
     axis_range = None
+    nm_axis = None
     if lines is None:
         if spectrum is None:
             raise RitzlineError("identify_lines needs a spectrum or a line table (lines=)")
@@ -278,6 +305,7 @@ def _measured_lines(spectrum, lines, solution, find_kw):
         lines = peaks.find_lines(spectrum, **(find_kw or {}))
         if arrays.unit == "nm":
             axis_range = (float(np.nanmin(arrays.axis)), float(np.nanmax(arrays.axis)))
+            nm_axis = np.asarray(arrays.axis, float)
         elif solution is not None:
             wl_ends = solution.wavelength(np.array([-0.5, arrays.axis.size - 0.5]))
             axis_range = (float(np.min(wl_ends)), float(np.max(wl_ends)))
@@ -290,7 +318,56 @@ def _measured_lines(spectrum, lines, solution, find_kw):
         from . import peaks
 
         lines = peaks.attach_wavelengths(lines, solution)
-    return lines, axis_range
+    return lines, axis_range, nm_axis
+
+
+def _line_dispersion(table, solution, nm_axis):
+    """Local dispersion (nm/px) at every measured line and each line's position across the
+    detector (-1 .. 1), or (None, None) when the lines carry no pixel information."""
+    n = len(table)
+    pix = _column(table, "pixel") if "pixel" in table.colnames else None
+    if pix is not None and np.all(np.isfinite(pix)):
+        if nm_axis is not None and nm_axis.size > 1:
+            grid = np.arange(nm_axis.size, dtype=float)
+            disp = np.interp(pix, grid, np.abs(np.gradient(nm_axis)))
+            return disp, 2.0 * pix / (nm_axis.size - 1) - 1.0
+        if solution is not None:
+            disp = np.abs(np.asarray(solution.dispersion(pix), float)) * np.ones(n)
+            n_pix = getattr(solution, "n_pixels", None) or (np.nanmax(pix) + 1 if n else 1)
+            return disp, 2.0 * pix / max(n_pix - 1, 1) - 1.0
+    fw, fw_px = _column(table, "fwhm"), _column(table, "fwhm_pixel")
+    ratio = fw / fw_px
+    good = np.isfinite(ratio) & (ratio > 0)
+    if good.any():
+        return np.full(n, float(np.median(ratio[good]))), None
+    return None, None
+
+
+def _axis_told(axis_err, disp, fwhm_nm) -> tuple[float, str]:
+    """How far off the axis may be, in px when the dispersion is known (else nm), and that
+    unit.  A number is nm; a Quantity may be in px or any length; None = the default,
+    half a pixel (a quarter of the FWHM without a dispersion)."""
+    unit = "px" if disp is not None else "nm"
+    scale = float(np.median(disp)) if disp is not None and disp.size else 1.0
+    if axis_err is None:
+        return (0.5, unit) if disp is not None else (0.25 * fwhm_nm, unit)
+    if hasattr(axis_err, "unit"):
+        import astropy.units as u
+
+        if axis_err.unit.is_equivalent(u.pix):
+            if disp is None:
+                raise RitzlineError(
+                    "axis_err is in pixels but the lines carry no dispersion (no pixel or "
+                    "fwhm_pixel column); give it in nm"
+                )
+            value = float(axis_err.to_value(u.pix))
+        else:
+            value = float(axis_err.to(u.nm, equivalencies=u.spectral()).value) / scale
+    else:
+        value = float(axis_err) / scale
+    if not np.isfinite(value) or value < 0:
+        raise RitzlineError(f"axis_err must be a non-negative distance, not {axis_err!r}")
+    return value, unit
 
 
 # ---- candidate groups --------------------------------------------------------------------
@@ -417,25 +494,153 @@ def _candidate_groups(cand, species_names, fwhm_nm, wl_range, max_energy, opts) 
     )
 
 
-def _pairs(lam, sig, glam, gsig, nsig):
-    """Index pairs (line, group) closer than ``nsig`` combined sigma, and their z and sigma."""
+def _pairs_within(lam, half_width, glam):
+    """Index pairs (line, group) with ``|lam - glam| <= half_width`` (per line)."""
     if glam.size == 0 or lam.size == 0:
         e = np.zeros(0, int)
-        return e, e, np.zeros(0), np.zeros(0)
+        return e, e
     order = np.argsort(glam)
     gl = glam[order]
-    wmax = nsig * np.sqrt(sig**2 + gsig.max() ** 2)
-    lo = np.searchsorted(gl, lam - wmax, "left")
-    hi = np.searchsorted(gl, lam + wmax, "right")
+    lo = np.searchsorted(gl, lam - half_width, "left")
+    hi = np.searchsorted(gl, lam + half_width, "right")
     counts = hi - lo
-    total = int(counts.sum())
     li = np.repeat(np.arange(lam.size), counts)
-    offs = np.arange(total) - np.repeat(np.cumsum(counts) - counts, counts)
-    gi = order[np.repeat(lo, counts) + offs]
-    s = np.sqrt(sig[li] ** 2 + gsig[gi] ** 2)
-    z = (lam[li] - glam[gi]) / s
-    keep = np.abs(z) < nsig
-    return li[keep], gi[keep], z[keep], s[keep]
+    offs = np.arange(int(counts.sum())) - np.repeat(np.cumsum(counts) - counts, counts)
+    return li, order[np.repeat(lo, counts) + offs]
+
+
+# ---- the wavelength axis -----------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class AxisCorrection:
+    """Offset and tilt of the wavelength axis found before the candidate search.
+
+    A line measured at ``λ`` (pixel position ``x`` across the detector, -1 .. 1, local
+    dispersion ``d`` nm/px) sits on the corrected axis at ``λ - (offset + tilt x) d``.
+    ``cov`` is the covariance of (offset, tilt) in px²; ``told`` is the axis uncertainty the
+    search was given (px).  Without a known dispersion the unit is nm instead of px.
+    """
+
+    offset: float
+    tilt: float
+    cov: np.ndarray
+    told: float
+    unit: str
+
+    def shift(self, x, disp):
+        """Correction (nm) to subtract from measured wavelengths."""
+        return (self.offset + self.tilt * np.asarray(x)) * np.asarray(disp)
+
+    def error(self, x, disp):
+        """1-sigma uncertainty (nm) of the correction."""
+        x = np.asarray(x, float)
+        c = self.cov
+        var = c[0, 0] + 2 * c[0, 1] * x + c[1, 1] * x * x
+        return np.sqrt(np.maximum(var, 0.0)) * np.abs(np.asarray(disp))
+
+
+def _axis_scores(d, hp, xl, li, n, a, b, smooth, ln_rho, ln_norm):
+    """Robust score of every trial correction (a[k], b[k]): sum over lines of
+    ln(rho + sum over listed lines of a Gaussian density of the corrected residual)."""
+    out = np.empty(a.size)
+    s = np.sqrt(hp**2 + smooth**2)
+    starts = np.flatnonzero(np.r_[True, li[1:] != li[:-1]]) if li.size else np.zeros(0, int)
+    n_empty = n - starts.size
+    for k0 in range(0, a.size, 128):  # blocks bound the memory of the (trial, pair) array
+        aa, bb = a[k0:k0 + 128, None], b[k0:k0 + 128, None]
+        r = (d[None, :] - aa - bb * xl[None, :]) / s[None, :]
+        dens = np.exp(-0.5 * np.minimum(r * r, 80.0) + ln_norm[None, :] - np.log(s)[None, :])
+        tot = np.add.reduceat(dens, starts, axis=1) if starts.size else np.zeros((aa.size, 0))
+        out[k0:k0 + 128] = np.sum(np.logaddexp(ln_rho, np.log(tot + 1e-300)), axis=1) \
+            + n_empty * ln_rho
+    return out
+
+
+def _fit_axis(lam, sig, disp, x, glam, gsig, rho, told, unit) -> AxisCorrection:
+    """Search offset and tilt (px) of the axis within ``told`` px: a grid of trial
+    corrections scored robustly against every listed line, refined by reweighted least
+    squares; a second, separated solution of similar score widens the covariance."""
+    prior = 0.5 * told
+    reach = 1.2 * told
+    n = lam.size
+    li, gi = _pairs_within(lam, 2 * reach * disp + 5 * (sig + gsig.max(initial=0.0)), glam)
+    if n == 0 or li.size == 0:
+        return AxisCorrection(0.0, 0.0, np.diag([prior**2, prior**2]), told, unit)
+    d = (lam[li] - glam[gi]) / disp[li]  # residual (px) before any correction
+    hp = np.sqrt(sig[li] ** 2 + gsig[gi] ** 2) / disp[li]
+    xl = x[li]
+    ln_norm = -_LOG_SQRT_2PI - np.log(disp[li])  # densities per nm
+    ln_rho = float(np.log(rho))
+
+    def scores(a, b, smooth):
+        sc = _axis_scores(d, hp, xl, li, n, a, b, smooth, ln_rho, ln_norm)
+        return sc - 0.5 * (a**2 + b**2) / prior**2
+
+    step = reach / 15.0
+    grid = np.linspace(-reach, reach, 31)
+    a0, b0 = (v.ravel() for v in np.meshgrid(grid, grid, indexing="ij"))
+    s0 = scores(a0, b0, 0.5 * step)
+    k = int(np.argmax(s0))
+    fine = np.linspace(-step, step, 11)
+    a1, b1 = (v.ravel() for v in np.meshgrid(a0[k] + fine, b0[k] + fine, indexing="ij"))
+    s1 = scores(a1, b1, 0.05 * step)
+    k1 = int(np.argmax(s1))
+    off, tilt = float(a1[k1]), float(b1[k1])
+    # reweighted least squares around the best trial
+    for _ in range(8):
+        r = d - off - tilt * xl
+        dens = np.exp(-0.5 * np.minimum((r / hp) ** 2, 80.0) + ln_norm - np.log(hp))
+        tot = np.bincount(li, dens, n)
+        w = dens / (rho + tot[li]) / hp**2
+        a11 = np.sum(w) + 1 / prior**2
+        a12 = np.sum(w * xl)
+        a22 = np.sum(w * xl * xl) + 1 / prior**2
+        rhs = np.array([np.sum(w * d), np.sum(w * xl * d)])
+        mat = np.array([[a11, a12], [a12, a22]])
+        off, tilt = (float(v) for v in np.linalg.solve(mat, rhs))
+    cov = np.linalg.inv(mat)
+    # other modes of the coarse search (more than two steps away) widen the covariance
+    post = np.exp(s0 - s0.max())
+    far = np.hypot(a0 - off, b0 - tilt) > 2 * step
+    p_far = float(post[far].sum() / post.sum())
+    if p_far > 1e-3:
+        w = post / post.sum()
+        ma, mb = np.sum(w * a0), np.sum(w * b0)
+        spread = np.array([[np.sum(w * (a0 - ma) ** 2), np.sum(w * (a0 - ma) * (b0 - mb))],
+                           [np.sum(w * (a0 - ma) * (b0 - mb)), np.sum(w * (b0 - mb) ** 2)]])
+        cov = cov + spread
+    return AxisCorrection(off, tilt, cov, told, unit)
+
+
+def _position_terms(lam_c, sig_c, lnf, groups: _Groups, fwhm_nm, opts) -> dict:
+    """The (line, group) pairs close enough on the corrected axis, with their position log
+    density: a Gaussian of the combined uncertainty, plus a flat tail of weight
+    ``outlier_fraction`` within ``outlier_width`` x FWHM (a centroid pulled by a neighbour).
+    Also, per group, how well the nearest measured line sits on it (0 .. 1, position only)
+    and that line's ln flux, which the coherence term reads."""
+    w_out = opts.outlier_width * fwhm_nm
+    gsig_max = float(groups.sigma.max(initial=0.0))
+    half = np.maximum(opts.window_sigma * np.sqrt(sig_c**2 + gsig_max**2), w_out)
+    li, gi = _pairs_within(lam_c, half, groups.wavelength)
+    s_pair = np.sqrt(sig_c[li] ** 2 + groups.sigma[gi] ** 2)
+    dl = lam_c[li] - groups.wavelength[gi]
+    keep = (np.abs(dl) < opts.window_sigma * s_pair) | (np.abs(dl) < w_out)
+    li, gi, s_pair, dl = li[keep], gi[keep], s_pair[keep], dl[keep]
+    z = dl / s_pair
+    eps = opts.outlier_fraction
+    ln_pos = np.logaddexp(np.log1p(-eps) + _lognorm(dl, 0.0, s_pair),
+                          np.where(np.abs(dl) < w_out, np.log(eps / (2 * w_out)), -np.inf))
+    n_g = groups.species.size
+    near = np.zeros(n_g)
+    near_lnf = np.full(n_g, np.nan)
+    if li.size:
+        closeness = np.exp(-0.5 * np.minimum(z * z, 50.0))
+        o = np.lexsort((-closeness, gi))
+        best = o[np.r_[True, gi[o][1:] != gi[o][:-1]]]
+        near[gi[best]] = closeness[best]
+        near_lnf[gi[best]] = lnf[li[best]]
+    return {"li": li, "gi": gi, "z": z, "ln_pos": ln_pos, "near": near, "near_lnf": near_lnf}
 
 
 # ---- the scoring model -------------------------------------------------------------------
@@ -457,12 +662,13 @@ class _Model:
     width: float  # spectral span (nm)
     li: np.ndarray
     gi: np.ndarray
-    z: np.ndarray
-    s: np.ndarray
-    dl: np.ndarray  # measured minus hypothesis wavelength per pair (nm)
-    x_line: np.ndarray  # position of each line across the range, -1 .. 1
-    shift_prior: float  # prior sigma (nm) of the wavelength correction terms
+    z: np.ndarray  # corrected residual / combined sigma, per pair
+    ln_pos: np.ndarray  # log position density per pair (heavy-tailed), per nm
+    near: np.ndarray  # per group: how well some measured line sits on it (0 .. 1)
+    near_lnf: np.ndarray  # per group: ln flux of that line
+    capacity: np.ndarray  # per group: measured lines it can take (listed members)
     generic: np.ndarray  # log density of each line's flux under "unknown line"
+    flux_known: np.ndarray  # per line: the flux is measured (else it counts for nothing)
     opts: IdentifyOptions
     siblings: tuple  # CSR (ptr, idx) of same-level first-order groups
     active: np.ndarray = None  # bool per species
@@ -475,7 +681,6 @@ class _Model:
     observed: np.ndarray = None  # per group: expected number of measured lines assigned
     resp: np.ndarray = None  # responsibilities per pair
     resp_u: np.ndarray = None  # per line: P(unknown)
-    shift: np.ndarray = field(default_factory=lambda: np.zeros(2))  # offset, tilt (nm)
 
     @property
     def n_lines(self) -> int:
@@ -534,14 +739,14 @@ class _Model:
 
         If line i is transition c, each sibling c' (same upper level) should have the flux
         ``F_i S_c'/S_c`` (branching, scatter ``branch_scatter``); otherwise it has the flux
-        the species scale predicts (scatter ``strength_scatter``).  A sibling seen in the
-        previous iteration contributes the ratio of its flux densities under the two, an
-        unseen one the ratio of its non-detection probabilities.
+        the species scale predicts (scatter ``strength_scatter``).  Whether a sibling is seen
+        is judged from positions alone (a measured line sits on it), never from the current
+        assignments, so two unassigned siblings cannot hold each other down.
         """
         ptr, idx = self.siblings
         g = self.groups
         out = np.zeros(self.li.size)
-        if self.observed is None or idx.size == 0 or self.li.size == 0:
+        if idx.size == 0 or self.li.size == 0:
             return out
         first = (g.order[self.gi] == 1) & (g.kind[self.gi] != _KIND_NONE)
         pp = np.flatnonzero(first)
@@ -562,15 +767,16 @@ class _Model:
         mu1 = self.lnf[self.li[rep]] + np.log(g.strength[sib] / g.strength[self.gi[rep]])
         p1 = np.clip(ndtr((mu1 - self.ln_lim) / s1), 1e-3, 1 - 1e-3)
         p0 = np.clip(ndtr((lnmu[sib] - self.ln_lim) / s0), 1e-3, 1 - 1e-3)
-        seen = np.clip(self.observed[sib], 0.0, 1.0)
-        n_g = g.species.size
-        w = np.bincount(self.gi, self.resp, n_g)
-        seen_lnf = np.bincount(self.gi, self.resp * self.lnf[self.li], n_g) / np.where(
-            w > 0, w, 1.0)
-        x = seen_lnf[sib]
-        llr_seen = _lognorm(x, mu1, s1) - _lognorm(x, np.nan_to_num(lnmu[sib]), s0)
-        llr_seen = np.clip(np.where(w[sib] > 0, llr_seen, 0.0), -8.0, 8.0)
-        llr = seen * llr_seen + (1 - seen) * (np.log1p(-p1) - np.log1p(-p0))
+        seen = self.near[sib]
+        x = np.nan_to_num(self.near_lnf[sib])
+        # with probability ``eps`` the branching says nothing (a sibling missing from the
+        # spectrum or blended, a table intensity that is no branching ratio)
+        eps = self.opts.branch_outlier
+        ln0 = _lognorm(x, np.nan_to_num(lnmu[sib]), s0)
+        llr_seen = np.logaddexp(np.log1p(-eps) + _lognorm(x, mu1, s1), np.log(eps) + ln0) - ln0
+        llr_seen = np.where(seen > 0, llr_seen, 0.0)
+        llr_unseen = np.log((1 - eps) * (1 - p1) + eps * (1 - p0)) - np.log1p(-p0)
+        llr = seen * llr_seen + (1 - seen) * llr_unseen
         np.add.at(out, rep, llr)
         return np.clip(out, -12.0, 12.0)
 
@@ -578,14 +784,19 @@ class _Model:
         """Log weight of every (line, group) pair under the current parameters."""
         g = self.groups
         gi, li = self.gi, self.li
-        lw = _lognorm(self.z, 0.0, 1.0) - np.log(self.s)
-        lw = np.where(np.abs(self.z) < self.opts.window_sigma, lw, -np.inf)
+        lw = self.ln_pos.copy()
         has_mu = np.isfinite(lnmu[gi])
         tot = np.sqrt(sig[gi] ** 2 + self.lnf_err[li] ** 2)
         lnq = np.where(g.order[gi] == 1, self.lnq[g.species[gi]], self.lnq2)
-        flux_term = np.where(
-            has_mu, _lognorm(self.lnf[li], np.nan_to_num(lnmu[gi]), tot), self.generic[li] + lnq
-        )
+        # the summed strength of a blend holds only when all its listed members shine: with
+        # probability ``flux_outlier`` some are missing and the flux says nothing
+        eps = np.where(self.capacity[gi] > 1, self.opts.flux_outlier, 0.0)
+        with np.errstate(divide="ignore"):
+            rated = np.logaddexp(
+                np.log1p(-eps) + _lognorm(self.lnf[li], np.nan_to_num(lnmu[gi]), tot),
+                np.log(eps) + self.generic[li])
+        rated = np.where(self.flux_known[li], rated, 0.0)
+        flux_term = np.where(has_mu, rated, self.generic[li] + lnq)
         lw = lw + flux_term + self.log_prior_group()[gi] + self.coherence(lnmu)
         act = self.active[g.species[gi]] & ((g.order[gi] == 1) | self.second_active)
         return np.where(act, lw, -np.inf)
@@ -604,38 +815,8 @@ class _Model:
         self.observed = np.bincount(self.gi, self.resp, self.groups.species.size)
         return lw, lu, m, w, wu, total, expected
 
-    def update_shift(self):
-        """Weighted least squares of the common wavelength correction, Gaussian prior."""
-        x = self.x_line[self.li]
-        w = self.resp / self.s**2
-        prec = 1.0 / self.shift_prior**2
-        a11 = np.sum(w) + prec
-        a12 = np.sum(w * x)
-        a22 = np.sum(w * x * x) + prec
-        b1 = np.sum(w * self.dl)
-        b2 = np.sum(w * x * self.dl)
-        det = a11 * a22 - a12 * a12
-        self.shift = np.array([(a22 * b1 - a12 * b2) / det, (a11 * b2 - a12 * b1) / det])
-        self.z = (self.dl - self.shift[0] - self.shift[1] * x) / self.s
-
-    def initial_shift(self):
-        """Start the correction at the densest offset of the measured-minus-listed residuals
-        (a kernel density over a grid within the prior), if it clearly beats no offset."""
-        if self.li.size == 0:
-            return
-        grid = np.linspace(-3.0, 3.0, 121) * self.shift_prior
-        zz = (self.dl[None, :] - grid[:, None]) / self.s[None, :]
-        score = np.sum(np.exp(-0.5 * np.minimum(zz**2, 50.0)), axis=1)
-        score = score * np.exp(-0.5 * (grid / (2.0 * self.shift_prior)) ** 2)
-        k = int(np.argmax(score))
-        if score[k] > 1.5 * score[grid.size // 2]:
-            self.shift = np.array([grid[k], 0.0])
-            self.z = (self.dl - self.shift[0]) / self.s
-
     def m_step(self):
         g, o = self.groups, self.opts
-        if o.fit_shift and self.li.size:
-            self.update_shift()
         first = g.order[self.gi] == 1
         prior = np.exp(self.log_prior_group())
         grid = np.linspace(-4.0, 4.0, 81)
@@ -651,9 +832,13 @@ class _Model:
                 centre = self.lnk[s, kind]
                 if r.sum() > 0.5:
                     centre = float(np.sum(r * x) / r.sum())
-                cand = centre + grid
-                ll = np.sum(r * _lognorm(x[None, :], cand[:, None], tot[None, :]), axis=1)
                 lns = np.log(g.strength[sel_g])
+                # the whole plausible range as well as near the current value: a scale that
+                # collapsed under a wrong assignment can come back
+                wide = np.linspace(self.ln_lim - lns.max() - 3.0,
+                                   self.lnf.max() - lns.min() + 3.0, 121)
+                cand = np.concatenate([wide, centre + grid])
+                ll = np.sum(r * _lognorm(x[None, :], cand[:, None], tot[None, :]), axis=1)
                 pen = np.sum(
                     prior[sel_g] * ndtr((cand[:, None] + lns[None, :] - self.ln_lim)
                                         / o.strength_scatter),
@@ -719,7 +904,8 @@ class _Model:
             own = pair_sp == s
             part = np.bincount(self.li[own], w[own], self.n_lines)
             rest = np.maximum(total - part, wu)
-            llr[s] = np.sum(np.log(total) - np.log(rest)) - expected[g.species == s].sum()
+            gain = np.minimum(np.log(total) - np.log(rest), self.opts.max_line_evidence)
+            llr[s] = np.sum(gain) - expected[g.species == s].sum()
         own = ~pair_first
         part = np.bincount(self.li[own], w[own], self.n_lines)
         rest = np.maximum(total - part, wu)
@@ -827,8 +1013,10 @@ def _line_arrays(table, solution, calibration_err, fwhm_nm, wavelength_range, op
 
 
 def _flux_terms(m: _LineArrays, corr: np.ndarray):
-    """ln flux and its error per line, the ln detection limit, and the "unknown line" flux
-    density (a broad fit to all lines, cut at the detection limit)."""
+    """ln flux and its error per line, the ln detection limit, the "unknown line" flux
+    density (a broad fit to all lines, cut at the detection limit), and whether each flux is
+    known at all (a relative error of 1 or more, or a clipped top, says nothing: such a
+    line's flux counts for no hypothesis)."""
     n = m.lam.size
     fl = np.where(np.isfinite(m.flux) & (m.flux > 0), m.flux, np.nan) / corr
     fe = np.where(np.isfinite(m.flux_err) & (m.flux_err > 0), m.flux_err, np.nan) / corr
@@ -836,19 +1024,21 @@ def _flux_terms(m: _LineArrays, corr: np.ndarray):
     floor = np.nanmin(fl) if good_f.any() else 1.0
     lnf = np.log(np.where(good_f, fl, floor))
     lnf_err = np.where(good_f & np.isfinite(fe), fe / np.where(good_f, fl, 1.0), 2.0)
-    # a saturated line's flux says little: make it (nearly) uninformative
+    # a saturated line's flux is at best a bound from its clipped top: it counts for nothing
     saturated = np.char.find(m.flags.astype(str), "saturated") >= 0
-    lnf_err = np.where(saturated, 2.0, np.minimum(lnf_err, 2.0))
+    known = good_f & (lnf_err < 1.0) & ~saturated
+    lnf_err = np.where(known, lnf_err, 10.0)  # keeps it out of the scale fits too
     if good_f.any() and np.isfinite(fe).any():
         noise = np.nanpercentile(fe, 10)
         snr_min = np.nanpercentile(m.snr, 2) if np.isfinite(m.snr).any() else 5.0
         ln_lim = float(np.log(max(noise * max(snr_min, 3.0), 1e-300)))
     else:
         ln_lim = float(np.min(lnf)) if n else 0.0
-    mean_f = float(np.mean(lnf)) if n else 0.0
-    sd_f = max(float(np.std(lnf)) if n > 1 else 1.0, 0.7)
+    ref = lnf[known] if known.any() else lnf
+    mean_f = float(np.mean(ref)) if ref.size else 0.0
+    sd_f = max(float(np.std(ref)) if ref.size > 1 else 1.0, 0.7)
     generic = _lognorm(lnf, mean_f, sd_f) - log_ndtr((mean_f - ln_lim) / sd_f)
-    return lnf, lnf_err, ln_lim, generic
+    return lnf, lnf_err, ln_lim, np.where(known, generic, 0.0), known
 
 
 def _select_species(model: _Model, opts: IdentifyOptions):
@@ -896,6 +1086,7 @@ def identify_lines(
     wavelength_range: tuple[float, float] | None = None,
     fwhm_nm: float | None = None,
     calibration_err=None,
+    axis_err=None,
     options: IdentifyOptions | None = None,
     find_kw: dict | None = None,
 ) -> Identification:
@@ -935,6 +1126,13 @@ def identify_lines(
     calibration_err : float or callable, optional
         Calibration uncertainty (nm) for a ``lines`` table without a solution: a number, or
         a function of wavelength.
+    axis_err : float or astropy Quantity, optional
+        How far off the wavelength axis may be: a Quantity in px or a length, or a number in
+        nm (a factory axis after years: a few pixels or ~0.5 nm).  Default: 0.5 px (a quarter
+        of the FWHM when the lines carry no dispersion).  An offset and a tilt of the axis
+        are searched within it before the candidates are matched; the correction and its
+        uncertainty are reported (``meta["axis_correction"]``, column
+        ``wavelength_corrected``).
     options : IdentifyOptions, optional
         Scoring-model knobs.
     find_kw : dict, optional
@@ -946,21 +1144,35 @@ def identify_lines(
 
     Notes
     -----
+    First the wavelength axis: an offset and a tilt (in px of the local dispersion) are
+    searched on a grid within ``axis_err`` by a robust score against every listed line,
+    refined by reweighted least squares; their covariance (widened when another, separated
+    solution scores nearly as well) becomes a per-line uncertainty.  Matching then runs on
+    the corrected axis, with ``σ`` = centroid ⊕ calibration band ⊕ correction uncertainty ⊕
+    ``position_floor`` x FWHM.
+
     Measured lines are treated as a marked Poisson process in wavelength and flux.  A
     candidate group *c* (one listed line, or several closer than ``blend_fraction`` x FWHM)
-    of a present species contributes ``N(λ; λ_c, σ) · LogNormal(F; k_s S_c, σ_S)``, where
-    ``σ`` combines the centroid, calibration and reference uncertainties and ``S_c`` is the
-    published intensity (or g·A, with its own scale); lines without any published strength
-    contribute ``q_s · N(λ; λ_c, σ) · g(F)`` with a fitted detection fraction ``q_s``.
-    Unknown lines contribute ``ρ · g(F)`` (flat in wavelength); second-order images of
-    present lines contribute at ``2 λ_c`` with a fitted efficiency.  The expected number of
-    detections of each candidate, ``Φ((ln k_s S_c − ln F_lim)/σ_S)``, is subtracted in the
-    likelihood, so a species is charged for every strong line it predicts but which is
-    absent.  Coherence: a candidate's weight is multiplied by the likelihood ratio of the
-    seen/unseen status of the other lines from the same upper level, predicted from this
-    line's flux and the published branching.  Scales are fitted by alternating updates;
-    species are removed one at a time while the weakest has a log-likelihood ratio below
-    ``species_threshold``.  Posterior shares give the probabilities.
+    of a present species contributes ``P(λ; λ_c, σ) · LogNormal(F; k_s S_c, σ_S)``, where
+    ``P`` is a Gaussian with a flat tail (``outlier_fraction`` within ``outlier_width`` x
+    FWHM) and ``S_c`` the published intensity (or g·A, with its own scale); lines without
+    any published strength contribute ``q_s · P · g(F)`` with a fitted detection fraction
+    ``q_s``.  Unknown lines contribute ``ρ · g(F)`` (flat in wavelength); second-order
+    images of present lines contribute at ``2 λ_c`` with a fitted efficiency.  The expected
+    number of detections of each candidate, ``Φ((ln k_s S_c − ln F_lim)/σ_S)``, is
+    subtracted in the likelihood, so a species is charged for every strong line it predicts
+    but which is absent; one measured line adds at most ``max_line_evidence`` to a species,
+    so a lone coincidence cannot make it present.  Coherence: a candidate's weight is
+    multiplied by the likelihood ratio of what the other lines from the same upper level
+    show (a line sitting on them or not, judged from positions only), predicted from this
+    line's flux and the published branching, each sibling allowed to say nothing
+    (``branch_outlier``).  Scales are searched over their whole plausible range by
+    alternating updates; species are removed one at a time while the weakest has a
+    log-likelihood ratio below ``species_threshold``.  Posterior shares give the
+    probabilities, scaled by the chance that a line lies within half a FWHM of its measured
+    centroid.  Assignment is one-to-one: a candidate group takes at most as many measured
+    lines as it has listed members, and a blend is named after the member nearest the
+    corrected centroid.
 
     Examples
     --------
@@ -988,7 +1200,7 @@ def identify_lines(
                 f"pass medium={known!r}"
             )
     names = _species_list(species, custom=candidates is not None)
-    table, axis_range = _measured_lines(spectrum, lines, solution, find_kw)
+    table, axis_range, nm_axis = _measured_lines(spectrum, lines, solution, find_kw)
     n = len(table)
     resp = _response_function(response)
     if wavelength_range is None:
@@ -1011,24 +1223,33 @@ def identify_lines(
                 "the response does not cover every measured line "
                 f"({lo:.1f}–{hi:.1f} nm); extend it over the whole spectrum"
             )
-    lnf, lnf_err, ln_lim, generic = _flux_terms(m, corr)
+    lnf, lnf_err, ln_lim, generic, flux_known = _flux_terms(m, corr)
 
-    # pairs are collected in a wider window so that a fitted correction can move lines
-    extra = 3.0 if opts.fit_shift else 0.0
-    li, gi, z, s = _pairs(lam, sig, groups.wavelength, groups.sigma, opts.window_sigma + extra)
-    dl = z * s
-    x_line = np.clip(2.0 * (lam - lo) / max(hi - lo, 1e-9) - 1.0, -1.0, 1.0)
-    shift_prior = 3.0 * float(np.median(sig)) if n else 1.0
+    # the axis correction comes first; the candidate search then runs in the corrected frame
+    disp, x_det = _line_dispersion(table, solution, nm_axis)
+    told, axis_unit = _axis_told(axis_err, disp, fwhm_nm)
+    d_line = disp if disp is not None else np.ones(n)
+    x_line = x_det if x_det is not None else np.clip(
+        2.0 * (lam - lo) / max(hi - lo, 1e-9) - 1.0, -1.0, 1.0)
+    width = max(hi - lo, 1e-3)
+    first_g = groups.order == 1
+    if opts.fit_shift and told > 0:
+        axis = _fit_axis(lam, sig, d_line, x_line, groups.wavelength[first_g],
+                         groups.sigma[first_g], max(n, 1) / width, told, axis_unit)
+    else:
+        axis = AxisCorrection(0.0, 0.0, np.zeros((2, 2)), told, axis_unit)
+    lam_c = lam - axis.shift(x_line, d_line)
+    floor = opts.position_floor * fwhm_nm
+    sig_c = np.sqrt(sig**2 + axis.error(x_line, d_line) ** 2 + floor**2)
+    pos = _position_terms(lam_c, sig_c, lnf, groups, fwhm_nm, opts)
     n_sp = len(names)
     model = _Model(
         groups=groups, n_species=n_sp, lnf=lnf, lnf_err=lnf_err, ln_lim=ln_lim,
-        width=max(hi - lo, 1e-3), li=li, gi=gi, z=z, s=s, dl=dl, x_line=x_line,
-        shift_prior=shift_prior, generic=generic, opts=opts,
+        width=width, **pos, generic=generic, flux_known=flux_known, opts=opts,
         siblings=_siblings(groups),
+        capacity=np.array([len(mm) for mm in groups.members], float),
     )
     model.active = np.array([bool(np.any(groups.species == k)) for k in range(n_sp)])
-    if opts.fit_shift:
-        model.initial_shift()
     model.second_active = bool(np.any(groups.order == 2))
     model.lnk = _initial_scales(model)
     model.lnq = np.full(n_sp, np.log(0.3))
@@ -1040,7 +1261,8 @@ def identify_lines(
         model.active[:] = False
         llr_final, llr_second = np.full(n_sp, np.nan), np.nan
 
-    lines_out = _line_table(table, model, cand, names, lam, sig, flux, snr, flags_in, opts)
+    lines_out = _line_table(table, model, cand, names, lam, sig_c, flux, snr, flags_in, opts,
+                            lam_c, fwhm_nm)
     if resp is not None:
         lines_out["flux_corrected"] = flux / corr
     present = model.active.copy()
@@ -1066,11 +1288,7 @@ def identify_lines(
         "second_order_llr": None if not np.isfinite(llr_second) else float(llr_second),
         "second_order_efficiency": float(np.exp(model.ln_eta)) if model.second_active else None,
         "unknown_line_density_per_nm": float(np.exp(model.ln_rho)),
-        "wavelength_correction_nm": {
-            "offset": float(model.shift[0]), "tilt": float(model.shift[1]),
-            "note": "fitted correction (offset + tilt x, x = -1 .. 1 across the range) "
-                    "subtracted from the measured wavelengths before matching",
-        },
+        "axis_correction": _axis_meta(axis, x_line, d_line),
         "options": {k: getattr(opts, k) for k in opts.__dataclass_fields__},
     }
     for t in (lines_out, levels_out, species_out):
@@ -1078,6 +1296,23 @@ def identify_lines(
     return Identification(
         lines=lines_out, levels=levels_out, species=species_out, boltzmann=plots, meta=meta
     )
+
+
+def _axis_meta(axis: AxisCorrection, x, disp) -> dict:
+    """The axis correction as reported in ``meta``: in its own unit, and in nm at the ends
+    and the middle of the lines' span."""
+    err = np.sqrt(np.diag(axis.cov))
+    out = {"unit": axis.unit, "offset": float(axis.offset), "offset_err": float(err[0]),
+           "tilt": float(axis.tilt), "tilt_err": float(err[1]), "axis_err_told": axis.told}
+    if disp.size:
+        xs = np.array([-1.0, 0.0, 1.0])
+        d = np.interp(xs, np.sort(x), disp[np.argsort(x)])
+        out["shift_nm"] = [float(v) for v in axis.shift(xs, d)]
+        out["shift_err_nm"] = [float(v) for v in axis.error(xs, d)]
+    out["note"] = ("measured wavelength - (offset + tilt x) x dispersion = corrected wavelength;"
+                   " x = -1 .. 1 across the detector (across the range without pixels); "
+                   "shift_nm at x = -1, 0, 1")
+    return out
 
 
 @functools.lru_cache(maxsize=16)
@@ -1117,7 +1352,13 @@ def _fmt_wl(x: float) -> str:
     return f"{x:.3f}"
 
 
-def _line_table(table, model, cand, names, lam, sig, flux, snr, flags_in, opts):
+def _line_table(table, model, cand, names, lam, sig, flux, snr, flags_in, opts, lam_c,
+                fwhm):
+    """The per-line result.  Assignment is one-to-one: lines are served in order of their
+    best probability, and a candidate group takes at most as many measured lines as it has
+    listed members; a line whose best group is taken falls back to its next hypothesis,
+    its probability renormalised without the taken ones.  A blend is named after the
+    listed member nearest the corrected measured centroid."""
     import astropy.units as u
     from astropy.table import Table
 
@@ -1131,99 +1372,123 @@ def _line_table(table, model, cand, names, lam, sig, flux, snr, flags_in, opts):
     c_aki = _column(cand, "aki")
     c_g = _column(cand, "g_upper")
     out_sp = np.full(n, "", dtype=object)
-    out_ref = np.full(n, np.nan)
+    best_sp = np.full(n, "", dtype=object)
+    best_ref = np.full(n, np.nan)
+    best_order = np.zeros(n, int)
+    out_row = np.full(n, -1)
+    out_k = np.full(n, -1)
     out_order = np.zeros(n, int)
-    out_lower = np.full(n, "", dtype=object)
-    out_upper = np.full(n, "", dtype=object)
-    out_ev = np.full(n, np.nan)
-    out_low_ev = np.full(n, np.nan)
-    out_aki = np.full(n, np.nan)
-    out_g = np.full(n, np.nan)
     out_p = np.zeros(n)
     out_res = np.full(n, np.nan)
-    out_members = np.full(n, "", dtype=object)
-    out_parent = np.full(n, np.nan)
     out_alt = np.full(n, "", dtype=object)
     out_flags = [[f for f in str(x).split(",") if f] for x in flags_in]
     p_unid = model.resp_u if model.resp_u is not None else np.ones(n)
+    out_pu = np.ones(n)
     resp = model.resp if model.resp is not None else np.zeros(0)
 
-    # best hypothesis per line (vectorised), then formatting per line
     order = np.lexsort((-resp, model.li)) if resp.size else np.zeros(0, int)
     li_s = model.li[order]
     starts = np.searchsorted(li_s, np.arange(n))
     ends = np.searchsorted(li_s, np.arange(n), "right")
+    top = np.array([resp[order[starts[i]]] if ends[i] > starts[i] else 0.0 for i in range(n)])
+    room = model.capacity.copy()
+    # naming a transition claims the feature lies within half a FWHM of the measured
+    # centroid; a line whose position is uncertain by a large fraction of the FWHM (an
+    # unresolved blend, a distorted profile) cannot support that claim with confidence.  A
+    # saturated line is the exception: its error is wide because its top is clipped, not
+    # because it may be several features
+    placed = 2.0 * ndtr(0.5 * fwhm / np.maximum(sig, 1e-12)) - 1.0
+    placed[np.char.find(flags_in.astype(str), "saturated") >= 0] = 1.0
 
-    def label(k):
-        row = g.primary[k]
+    def member(k, i):
+        mem = g.members[k]
+        if len(mem) == 1 or g.order[k] == 2:
+            return int(g.primary[k])
+        return int(mem[np.argmin(np.abs(c_wl[mem] - lam_c[i] / g.order[k]))])
+
+    def label(k, row):
         name = names[g.species[k]]
-        if g.order[k] == 2:
-            return f"{name} {_fmt_wl(c_wl[row])} 2nd order"
-        return f"{name} {_fmt_wl(c_wl[row])}"
+        return f"{name} {_fmt_wl(c_wl[row])}" + (" 2nd order" if g.order[k] == 2 else "")
 
-    for i in range(n):  # formatting only: the scoring above is vectorised
+    for i in np.argsort(-top, kind="stable"):  # formatting and the one-to-one bookkeeping
         idx = order[starts[i]:ends[i]]
-        hyps = [(float(resp[j]), label(model.gi[j])) for j in idx]
-        hyps.append((float(p_unid[i]), "unidentified"))
+        # hypotheses of species judged present whose group has room left
+        free = [j for j in idx if room[model.gi[j]] >= 1 and resp[j] > 0]
+        norm = p_unid[i] + sum(resp[j] for j in free)
+        share = {j: placed[i] * resp[j] / norm for j in free} if norm > 0 else {}
+        hyps = [(share[j], label(model.gi[j], member(model.gi[j], i)), j) for j in free]
+        out_pu[i] = 1.0 - sum(share.values())
+        hyps.append((out_pu[i], "unidentified", -1))
         hyps.sort(key=lambda t: -t[0])
-        if idx.size:
-            j = idx[0]
+        if free:
+            j = free[0]
             k = model.gi[j]
-            out_p[i] = resp[j]
-            row = g.primary[k]
-            if resp[j] >= opts.min_probability:
-                out_sp[i] = names[g.species[k]]
-                out_ref[i] = c_wl[row]
-                out_order[i] = g.order[k]
-                out_lower[i] = c_lower[row]
-                out_upper[i] = c_upper[row]
-                out_ev[i] = c_ev[row]
-                out_low_ev[i] = c_low_ev[row]
-                out_aki[i] = c_aki[row]
-                out_g[i] = c_g[row]
+            row = member(k, i)
+            best_sp[i], best_ref[i], best_order[i] = names[g.species[k]], c_wl[row], g.order[k]
+            out_p[i] = share[j]
+            if share[j] >= opts.min_probability:
+                room[k] -= 1
+                out_sp[i], out_row[i], out_k[i], out_order[i] = best_sp[i], row, k, g.order[k]
                 out_res[i] = model.z[j]
-                if len(g.members[k]) > 1:
-                    out_members[i] = ",".join(_fmt_wl(c_wl[m]) for m in g.members[k])
-                    out_flags[i].append("unresolved_blend")
-                if g.order[k] == 2:
-                    out_parent[i] = c_wl[row]
-                    out_flags[i].append("second_order")
-                if g.above_limit[k]:
-                    out_flags[i].append("above_energy_limit")
+        reported = hyps[0][1] if out_sp[i] else "unidentified"
         if out_sp[i] == "":
             out_flags[i].append("unidentified")
-        second = [h for h in hyps if h[1] != "unidentified"][1:2]
-        if second and second[0][0] >= 0.2:
+        # ambiguous: a second transition holds a fifth or more of the transitions' share
+        ps = [h[0] for h in hyps if h[1] != "unidentified"]
+        if len(ps) > 1 and ps[1] >= max(0.2 * sum(ps), 0.05):
             out_flags[i].append("ambiguous")
-        # alternatives: every hypothesis other than the reported one, most probable first
-        reported = label(model.gi[idx[0]]) if (idx.size and out_sp[i]) else "unidentified"
-        out_alt[i] = "; ".join(f"{lab} ({p:.2f})" for p, lab in hyps
+        out_alt[i] = "; ".join(f"{lab} ({p:.2f})" for p, lab, _ in hyps
                                if lab != reported and p >= 0.01)
+
+    got = out_row >= 0
+    rows = np.where(got, out_row, 0)
+
+    def pick(values, fill):
+        return np.where(got, values[rows] if len(values) else fill, fill)
+
+    members = np.full(n, "", dtype=object)
+    parent = np.full(n, np.nan)
+    for i in np.flatnonzero(got):
+        k = out_k[i]
+        if len(g.members[k]) > 1:
+            members[i] = ",".join(_fmt_wl(c_wl[m]) for m in g.members[k])
+            out_flags[i].append("unresolved_blend")
+        if g.order[k] == 2:
+            parent[i] = c_wl[out_row[i]]
+            out_flags[i].append("second_order")
+        if g.above_limit[k]:
+            out_flags[i].append("above_energy_limit")
+
+    def text(values):
+        return np.array(values, dtype=str) if n else np.zeros(0, str)
 
     t = Table()
     t["wavelength"] = u.Quantity(lam, u.nm)
     t["wavelength_err"] = u.Quantity(sig, u.nm)
+    t["wavelength_corrected"] = u.Quantity(lam_c, u.nm)
     t["flux"] = u.Quantity(flux, u.ct)
     t["snr"] = snr
     if "pixel" in table.colnames:
         t["pixel"] = u.Quantity(_column(table, "pixel"), u.pix)
-    t["species"] = np.array(out_sp, dtype=str) if n else np.zeros(0, str)
-    t["ref_wavelength"] = u.Quantity(out_ref, u.nm)
+    t["species"] = text(out_sp)
+    t["ref_wavelength"] = u.Quantity(pick(c_wl, np.nan), u.nm)
     t["order"] = out_order
-    t["lower"] = np.array(out_lower, dtype=str) if n else np.zeros(0, str)
-    t["upper"] = np.array(out_upper, dtype=str) if n else np.zeros(0, str)
-    t["upper_energy_ev"] = u.Quantity(out_ev, u.eV)
-    t["lower_energy_ev"] = u.Quantity(out_low_ev, u.eV)
-    t["aki"] = u.Quantity(out_aki, 1 / u.s)
-    t["g_upper"] = out_g
+    t["lower"] = text(pick(c_lower, ""))
+    t["upper"] = text(pick(c_upper, ""))
+    t["upper_energy_ev"] = u.Quantity(pick(c_ev, np.nan), u.eV)
+    t["lower_energy_ev"] = u.Quantity(pick(c_low_ev, np.nan), u.eV)
+    t["aki"] = u.Quantity(pick(c_aki, np.nan), 1 / u.s)
+    t["g_upper"] = pick(c_g, np.nan)
     t["residual_sigma"] = out_res
     t["probability"] = out_p
-    t["p_unidentified"] = np.asarray(p_unid, float)
-    t["parent_wavelength"] = u.Quantity(out_parent, u.nm)
-    t["blend_members"] = np.array(out_members, dtype=str) if n else np.zeros(0, str)
-    t["alternatives"] = np.array(out_alt, dtype=str) if n else np.zeros(0, str)
-    t["flags"] = (np.array([",".join(dict.fromkeys(f)) for f in out_flags], dtype=str)
-                  if n else np.zeros(0, str))
+    t["p_unidentified"] = out_pu
+    t["best_species"] = text(best_sp)
+    t["best_ref_wavelength"] = u.Quantity(best_ref, u.nm)
+    t["best_order"] = best_order
+    t["parent_wavelength"] = u.Quantity(parent, u.nm)
+    t["blend_members"] = text(members)
+    t["alternatives"] = text(out_alt)
+    t["flags"] = text([",".join(dict.fromkeys(f)) for f in out_flags])
     return t
 
 

@@ -460,6 +460,10 @@ def _find_lines(spectrum, *, min_snr, fwhm_guess, saturation, gain, read_noise, 
             "pixels for the line width); give a longer spectrum"
         )
     flags = []
+    finite = raw[~mask & np.isfinite(raw)]
+    if finite.size and np.any(finite != np.round(finite)):
+        # Averaged scans, scaling or other processing: the gain is an effective one.
+        flags.append("non_integer_counts")
     offset_known, offset_source, r_ob = offset, "given" if offset is not None else None, None
     if offset_known is None and instrument is not None:
         offset_known, offset_source = instrument.offset, "instrument model"
@@ -632,6 +636,31 @@ def _find_lines(spectrum, *, min_snr, fwhm_guess, saturation, gain, read_noise, 
     if estimate_slope:
         noise = _reestimate_slope(noise, diag)
     state, rejected = _prune(state, ctx, fwhm, 0.5 * min_snr, rejected, final=False)
+    # The line shape along the detector, from the bright isolated lines of pass 1: pass 2
+    # fits with it.  A width far from the one used for detection means searching again.
+    shape_note = None
+    if shape_coeffs is None and fwhm_guess is None:
+        measured = _measure_shape(state, ctx, noise)
+        if measured is not None:
+            fw_coef, skew_coef, eta, n_used = measured
+            shape = _shape_from_coeffs((fw_coef, skew_coef, eta), n)
+            fw_new = shape.sigma * FWHM_PER_SIGMA
+            med = float(_median(fw_new))
+            shape_note = (f"line shape measured on {n_used} bright lines (FWHM "
+                          f"{fw_new.min():.2f}-{fw_new.max():.2f} px, skew up to "
+                          f"{np.max(np.abs(shape.alpha)):.2f}, Lorentzian fraction {eta:.3f})")
+            if abs(med / fwhm - 1.0) > 0.1 and not rerun:
+                again = _find_lines(spectrum, min_snr=min_snr, fwhm_guess=med,
+                                    saturation=saturation, gain=gain, read_noise=read_noise,
+                                    dark=dark, offset=offset, instrument=instrument,
+                                    shape_coeffs=(fw_coef, skew_coef, eta), rerun=True,
+                                    lsf_known=True)
+                again.meta["lsf_method"] = f"{lsf_method}; {shape_note}"
+                again.meta["instrument"]["sources"]["fwhm"] = again.meta["lsf_method"]
+                return again
+            shape_coeffs = (fw_coef, skew_coef, eta)
+            lsf_known = True
+            ctx = replace(ctx, shape=shape)
     if lsf_known:
         state = _split_wide(state, ctx, min_snr)
     # Background again, from the spectrum minus the fitted lines.
@@ -679,46 +708,9 @@ def _find_lines(spectrum, *, min_snr, fwhm_guess, saturation, gain, read_noise, 
     if np.count_nonzero(clean) < 3:
         clean = single & (state.snr >= min_snr)  # a faint spectrum: use what there is
     lsf_fit = None
-    measured = None
-    if shape_coeffs is None and fwhm_guess is None:
-        measured = _measure_shape(state, ctx, noise)
-    if measured is not None:
-        fw_coef, skew_coef, eta, n_used = measured
-        new = _shape_from_coeffs((fw_coef, skew_coef, eta), n)
-        fw_new = new.sigma * FWHM_PER_SIGMA
-        med = float(_median(fw_new))
-        differs = (eta > 0 or new.skewed or np.ptp(fw_new) > 0.1 * med
-                   or abs(med / fwhm - 1.0) > 0.05)
-        how = (f"line shape measured on {n_used} bright lines (FWHM {fw_new.min():.2f}-"
-               f"{fw_new.max():.2f} px, skew up to {np.max(np.abs(new.alpha)):.2f}, Lorentzian "
-               f"fraction {eta:.3f})")
-        if differs and not rerun and abs(med / fwhm - 1.0) <= 0.1:
-            # The detection width holds: refit the lines found with the measured shape (and
-            # the gain from the new residuals) instead of searching again.
-            ctx = replace(ctx, shape=new)
-            diag = _fit_all(state, ctx, noise)
-            if estimate_slope:
-                new_noise = _reestimate_slope(noise, diag)
-                moved = abs(new_noise.b / noise.b - 1.0) > 0.2
-                noise = new_noise
-                if moved:
-                    _fit_all(state, ctx, noise, tol=0.5)
-            state, rejected = _prune(state, ctx, fwhm, min_snr, rejected, final=True,
-                                     broad=broad)
-        elif differs and not rerun:
-            # Detect and fit again with the measured shape (grouping, significance, the
-            # fitted profile and the noise estimate from residuals all depend on it).
-            again = _find_lines(spectrum, min_snr=min_snr, fwhm_guess=med,
-                                saturation=saturation, gain=gain, read_noise=read_noise,
-                                dark=dark, offset=offset, instrument=instrument,
-                                shape_coeffs=(fw_coef, skew_coef, eta), rerun=True,
-                                lsf_known=True)
-            again.meta["lsf_method"] = f"{lsf_method}; {how}"
-            again.meta["instrument"]["sources"]["fwhm"] = again.meta["lsf_method"]
-            return again
-        shape_coeffs = (fw_coef, skew_coef, eta)
-        lsf_fit = fwhm = med
-        lsf_method += f"; {how}"
+    if shape_note is not None:
+        lsf_fit = fwhm = float(_median(shape.sigma)) * FWHM_PER_SIGMA
+        lsf_method += f"; {shape_note}"
     elif np.count_nonzero(clean) >= 3:
         lsf_fit = float(_median(fw[clean]))
         if fwhm_guess is None:

@@ -597,20 +597,62 @@ def plot_check_drift(summary, path, *, max_shift_px: float | None = None) -> Pat
     return save_figure(fig, path)
 
 
-def plot_check_fwhm(summary, path, *, reference_fwhm_px: float | None = None) -> Path:
-    """Median line FWHM (px) with its uncertainty over exposure order or time."""
+def fwhm_check_status(change_pct, max_change_pct: float | None, warn_fraction: float = 0.5):
+    """The FWHM check's own verdict per exposure ("pass", "warn", "fail", or "not measured"),
+    by the same rule as the batch check: fail beyond the limit, warn beyond its warn
+    fraction."""
+    import numpy as np
+
+    change = np.abs(np.asarray(change_pct, float))
+    out = np.full(change.shape, "not measured", dtype=object)
+    if not max_change_pct:
+        out[np.isfinite(change)] = "pass"
+        return out
+    ok = np.isfinite(change)
+    out[ok] = "pass"
+    out[ok & (change > warn_fraction * max_change_pct)] = "warn"
+    out[ok & (change > max_change_pct)] = "fail"
+    return out
+
+
+def plot_check_fwhm(summary, path, *, reference_fwhm_px: float | None = None,
+                    max_change_pct: float | None = None, warn_fraction: float = 0.5) -> Path:
+    """Median line FWHM (px) with its uncertainty over exposure order or time, coloured by
+    the FWHM check's own status, with the reference width and the warn and fail limits."""
     import numpy as np
 
     x, xlabel, _ = _check_axis(summary)
     fig, ax = new_figure(figsize=(10, 3.6))
     y = np.asarray(summary["fwhm_px"], float)
-    err = np.asarray(summary["fwhm_err_px"], float)
-    _check_status_points(ax, x, y, np.nan_to_num(err, nan=0.0), summary["status"])
-    if reference_fwhm_px and np.isfinite(reference_fwhm_px):
-        ax.axhline(reference_fwhm_px, color="0.4", lw=0.8, ls=":", label="reference")
+    err = np.nan_to_num(np.asarray(summary["fwhm_err_px"], float), nan=0.0)
+    if "fwhm_change_pct" in summary.colnames:
+        status = fwhm_check_status(summary["fwhm_change_pct"], max_change_pct, warn_fraction)
+    else:
+        status = np.where(np.isfinite(y), "pass", "not measured")
+    for name in ("pass", "warn", "fail"):
+        sel = (status == name) & np.isfinite(y)
+        if sel.any():
+            ax.errorbar(x[sel], y[sel], yerr=err[sel], fmt="o", ms=3,
+                        color=CHECK_STATUS_COLOURS[name], ecolor=CHECK_STATUS_COLOURS[name],
+                        elinewidth=0.8, capsize=0, label=f"FWHM {name}")  # fmt: skip
+    sel = (status == "not measured") & np.isfinite(y)
+    if sel.any():  # a width but no reference to compare it with
+        ax.plot(x[sel], y[sel], "o", ms=3, color="0.5", label="no reference width")
+    ref = reference_fwhm_px
+    if ref and np.isfinite(ref):
+        ax.axhline(ref, color="0.3", lw=0.8, ls=":", label=f"reference {ref:.3g} px")
+        if max_change_pct:
+            for frac, name, style in ((1.0, "fail", "--"), (warn_fraction, "warn", "-.")):
+                lim = frac * max_change_pct / 100.0
+                for k, level in enumerate((ref * (1 - lim), ref * (1 + lim))):
+                    ax.axhline(level, color=CHECK_STATUS_COLOURS[name], lw=0.8, ls=style,
+                               label=(f"{name} limit ±{frac * max_change_pct:g} %"
+                                      if k == 0 else None))  # fmt: skip
+    if ax.get_legend_handles_labels()[0]:
+        ax.legend(loc="best", fontsize="small", frameon=False, ncol=2)
     ax.set_xlabel(xlabel)
     ax.set_ylabel("FWHM (px)")
-    ax.set_title("Line width")
+    ax.set_title("Line width (coloured by the FWHM check)")
     return save_figure(fig, path)
 
 

@@ -3,9 +3,12 @@
 Run: ``python tests/benchmarks/bench_check.py [--quick]``
 
 * throughput of ``ritzline check`` on 3648-pixel lamp exposures, 1 and 2 workers (and the
-  Dask local cluster), exposures per second of the batch itself;
+  Dask local cluster), exposures per second of the batch itself, and the CPU cost per
+  exposure of the whole process tree;
+* where one exposure's time goes (read, line measurement by fit at expected positions or
+  by blind search, drift fit, the rest), CPU time in this process;
 * peak memory (parent + workers: summed RSS, and summed PSS which counts shared pages once)
-  for 10,000 exposures;
+  for 10,000 exposures, and whether it stays flat (first quarter of the run vs the last);
 * drift recovered on a synthetic sequence with known shifts at line SNR >= 100;
 * every bad file reported as ``error`` with the right reason;
 * an interrupted (SIGKILL) and resumed run: no exposure missing or duplicated.
@@ -35,7 +38,7 @@ sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
 import _check_synthetic as cs
 
-TARGET_RATE = 150.0
+TARGET_RATE = 170.0
 TARGET_SPEEDUP = 1.7
 TARGET_MEMORY_MB = 400.0
 TARGET_DRIFT_RMS = 0.02
@@ -96,9 +99,10 @@ ap.add_argument("-o")
 ap.add_argument("--workers", type=int)
 ap.add_argument("--dask-scheduler")
 ap.add_argument("--resume", action="store_true")
+ap.add_argument("--measure", default="expected")
 a = ap.parse_args()
 t = check_exposures(a.inputs, a.solution, outdir=a.o, workers=a.workers,
-                    dask_scheduler=a.dask_scheduler, resume=a.resume)
+                    dask_scheduler=a.dask_scheduler, resume=a.resume, method=a.measure)
 print(t.meta["totals"])
 """
 
@@ -110,12 +114,14 @@ def run_cli(args: list[str], *, watch_memory: bool = False, kill_after: int | No
     proc = subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=subprocess.PIPE,
                             start_new_session=True)  # fmt: skip
     peak = [0.0, 0.0]
+    samples: list[tuple[float, float]] = []  # (seconds since start, summed PSS)
     stop = threading.Event()
 
     def watch():
         while not stop.is_set():
             rss, pss = tree_memory_mb(proc.pid)
             peak[0], peak[1] = max(peak[0], rss), max(peak[1], pss)
+            samples.append((time.monotonic() - t0, pss))
             time.sleep(0.05)
 
     thread = threading.Thread(target=watch, daemon=True)
@@ -137,7 +143,57 @@ def run_cli(args: list[str], *, watch_memory: bool = False, kill_after: int | No
     after = resource.getrusage(resource.RUSAGE_CHILDREN)
     cpu = (after.ru_utime + after.ru_stime) - (before.ru_utime + before.ru_stime)
     run_cli.cpu_s = cpu  # CPU seconds of the whole process tree (start-up included)
+    run_cli.memory = samples
     return proc.returncode, time.monotonic() - t0, out.decode(), err.decode(), peak
+
+
+def time_breakdown(paths: list[Path], solution, n: int) -> dict[str, float]:
+    """CPU ms per exposure of each step of one check, in this process (after a warm-up)."""
+    from dataclasses import replace
+
+    from ritzline.check import (
+        CheckLimits,
+        ExposureChecker,
+        finder_scale,
+        fit_drift,
+        reference_from_solution,
+    )
+    from ritzline.spectrum import read_spectrum, spectrum_arrays
+
+    ref = reference_from_solution(solution)
+    checker = ExposureChecker(ref, CheckLimits())
+    checker = replace(checker, scale=finder_scale(checker, paths))
+    search = replace(checker, method="search")
+    paths = paths[:n]
+    checker(paths[0])
+    search(paths[0])
+    clock = time.process_time
+    out = {}
+    t = clock()
+    spectra = [read_spectrum(p) for p in paths]
+    out["read_spectrum (parse, validate, Spectrum)"] = clock() - t
+    arrays = [spectrum_arrays(sp) for sp in spectra]
+    t = clock()
+    fast = [checker._lines(sp, a, "expected") for sp, a in zip(spectra, arrays, strict=True)]
+    out["lines: fit at expected positions"] = clock() - t
+    t = clock()
+    for sp, a in zip(spectra, arrays, strict=True):
+        checker._lines(sp, a, "search")
+    out["lines: blind search (find_lines)"] = clock() - t
+    t = clock()
+    for m in fast:
+        fit_drift(m.pixel, m.pixel_err, ref.pixel, ref.pixel_err, ref.centre,
+                  match_px=checker.match_px, vote_weight=m.snr)  # fmt: skip
+    out["drift fit"] = clock() - t
+    t = clock()
+    for p in paths:
+        checker(p)
+    out["whole check, fit at expected positions"] = clock() - t
+    t = clock()
+    for p in paths:
+        search(p)
+    out["whole check, blind search"] = clock() - t
+    return {k: 1000.0 * v / len(paths) for k, v in out.items()}
 
 
 def batch_rate(outdir: Path) -> float:
@@ -166,6 +222,8 @@ def main() -> None:
         files = link_many(pool, tmp / "rate", n_rate)
         rates, cpu_ms = {}, {}
         for label, extra in (("1 worker", ["--workers", "1"]), ("2 workers", ["--workers", "2"]),
+                             ("2 workers, blind search", ["--workers", "2", "--measure",
+                                                          "search"]),
                              ("Dask local, 2 workers", ["--workers", "2", "--dask-scheduler",
                                                         "local"])):  # fmt: skip
             out = tmp / f"out-{label.replace(' ', '_').replace(',', '')}"
@@ -183,6 +241,8 @@ def main() -> None:
             ("throughput, --workers 2 (exp/s)", f"{rates['2 workers']:.1f}",
              f">= {TARGET_RATE:.0f}", rates["2 workers"] >= TARGET_RATE),
             ("throughput, --workers 1 (exp/s)", f"{rates['1 worker']:.1f}", "-", None),
+            ("throughput, --workers 2 --measure search (exp/s)",
+             f"{rates['2 workers, blind search']:.1f}", "-", None),
             ("speed-up 2 vs 1 workers", f"{speedup:.2f}x", f">= {TARGET_SPEEDUP}x",
              speedup >= TARGET_SPEEDUP),
             ("throughput, Dask local 2 workers (exp/s)",
@@ -191,6 +251,8 @@ def main() -> None:
              "-", None),
             ("CPU per exposure, 2 workers, start-up incl. (ms)", f"{cpu_ms['2 workers']:.2f}",
              "-", None),
+            ("CPU per exposure, 2 workers, blind search (ms)",
+             f"{cpu_ms['2 workers, blind search']:.2f}", "-", None),
             ("  -> rate on 2 idle cores from CPU cost (exp/s)",
              f"{2000 / cpu_ms['2 workers']:.0f}", f">= {TARGET_RATE:.0f}",
              2000 / cpu_ms["2 workers"] >= TARGET_RATE),
@@ -202,6 +264,13 @@ def main() -> None:
         ]  # fmt: skip
         shutil.rmtree(tmp / "rate")
 
+        # -- where the time goes ---------------------------------------------------------
+        steps = time_breakdown(pool, solution, 100 if args.quick else 300)
+        for step, ms in steps.items():
+            print(f"  CPU per exposure, {step}: {ms:.2f} ms")
+        results += [(f"CPU per exposure in-process, {k} (ms)", f"{v:.2f}", "-", None)
+                    for k, v in steps.items() if k.startswith("whole")]  # fmt: skip
+
         # -- memory for 10,000 exposures ---------------------------------------------------
         link_many(pool, tmp / "mem", n_mem)
         _rc, wall, _so, _se, peak = run_cli([str(tmp / "mem"), "--solution", sol_path, "-o",
@@ -209,6 +278,13 @@ def main() -> None:
                                          watch_memory=True)  # fmt: skip
         summary = json.loads((tmp / "out-mem" / "summary.json").read_text())
         n_rows = summary["totals"]["exposures"]
+        # flat: the largest PSS in the last quarter of the checking vs the first quarter
+        # (after start-up: from 10 % of the run on); the last 10 % (summary, figures) apart
+        mem = np.array(run_cli.memory or [(0.0, 0.0)])
+        span = mem[-1, 0] if mem.size else 0.0
+        first = mem[(mem[:, 0] > 0.10 * span) & (mem[:, 0] <= 0.30 * span), 1]
+        last = mem[(mem[:, 0] > 0.65 * span) & (mem[:, 0] <= 0.85 * span), 1]
+        growth = float(last.max() - first.max()) if first.size and last.size else float("nan")
         print(f"  {n_rows} exposures in {wall:.1f} s wall, {summary['exposures_per_s']} exp/s, "
               f"{summary['totals']}")
         results += [
@@ -217,6 +293,8 @@ def main() -> None:
             (f"peak memory, {n_mem} exposures, summed PSS (MB)", f"{peak[1]:.0f}",
              f"<= {TARGET_MEMORY_MB:.0f}", peak[1] <= TARGET_MEMORY_MB),
             (f"rows in summary for {n_mem} exposures", str(n_rows), str(n_mem), n_rows == n_mem),
+            ("  memory growth while checking, PSS 65-85 % vs 10-30 % of the run (MB)",
+             f"{growth:+.0f}", "<= +20", bool(np.isfinite(growth) and growth <= 20.0)),
         ]  # fmt: skip
         shutil.rmtree(tmp / "mem")
 
