@@ -103,6 +103,10 @@ def reference_solution(inst: Instrument, lines: dict, rng: np.random.Generator):
     j = np.abs(fp[None, :] - truth.pixel[:, None]).argmin(axis=1)
     ok = np.abs(fp[j] - truth.pixel) < 1.0
     cheb = np.polynomial.chebyshev.poly2cheb(inst.coeffs)
+    # the file stores each line's residual (fit minus reference) and their RMS; Solution.load
+    # checks the coefficients against them
+    fit = np.polynomial.chebyshev.chebval(2 * fp[j[ok]] / (inst.n_pixels - 1) - 1, cheb)
+    resid = fit - truth.wavelength[ok]
     doc = {
         "schema": "ritzline.wavelength-solution",
         "schema_version": 1,
@@ -116,7 +120,7 @@ def reference_solution(inst: Instrument, lines: dict, rng: np.random.Generator):
         "lamps": ["invented"],
         "n_pixels": inst.n_pixels,
         "fwhm_pixel": float(np.median(np.asarray(found["fwhm_pixel"], float)[j[ok]])),
-        "rms_nm": 0.001,
+        "rms_nm": float(np.sqrt(np.mean(resid**2))),
         "rms_pixel": 0.01,
         "confidence": 1.0,
         "verdict": "confident",
@@ -128,11 +132,11 @@ def reference_solution(inst: Instrument, lines: dict, rng: np.random.Generator):
                 "wavelength_ref_err": 0.0001,
                 "species": "invented",
                 "designation": "",
-                "residual_nm": 0.0,
+                "residual_nm": float(r),
                 "used": True,
                 "reason": "",
             }
-            for k, w in zip(j[ok], truth.wavelength[ok], strict=True)
+            for k, w, r in zip(j[ok], truth.wavelength[ok], resid, strict=True)
         ],
     }
     return Solution.from_dict(doc, source="synthetic reference")

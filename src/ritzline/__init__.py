@@ -9,7 +9,13 @@ batch-check exposures.  The public names below are imported lazily so that
 from importlib import import_module
 from typing import TYPE_CHECKING, Any
 
-from .errors import CalibrationError, RitzlineError, SolutionFormatError, SpectrumFormatError
+from .errors import (
+    CalibrationError,
+    RitzlineError,
+    RitzlineWarning,
+    SolutionFormatError,
+    SpectrumFormatError,
+)
 
 __version__ = "0.1.0"
 
@@ -28,6 +34,7 @@ _LAZY = {
 __all__ = [
     "CalibrationError",
     "RitzlineError",
+    "RitzlineWarning",
     "SolutionFormatError",
     "SpectrumFormatError",
     "__version__",

@@ -12,7 +12,7 @@ from collections.abc import Iterator
 from pathlib import Path
 from typing import IO
 
-__all__ = ["atomic_write", "file_sha256", "write_table"]
+__all__ = ["atomic_write", "file_sha256", "read_table", "table_format", "write_table"]
 
 
 def _umask() -> int:
@@ -44,16 +44,71 @@ def atomic_write(path: str | os.PathLike, mode: str = "w", **open_kw) -> Iterato
         raise
 
 
+_TABLE_FORMATS = {
+    ".ecsv": "ascii.ecsv",
+    ".csv": "ascii.csv",
+    ".fits": "fits",
+    ".fit": "fits",
+}
+
+
+def table_format(path: str | os.PathLike) -> str:
+    """The astropy format ritzline writes a table in, from the file's suffix.
+
+    ``.ecsv`` (units and provenance kept), ``.csv`` (plain comma-separated values for a
+    spreadsheet; units and meta are not kept) or ``.fits``/``.fit``; any other suffix is
+    refused rather than silently written in another format.
+    """
+    from .errors import RitzlineError
+
+    suffix = Path(path).suffix.lower()
+    if suffix not in _TABLE_FORMATS:
+        raise RitzlineError(
+            f"{path}: tables are written as .ecsv, .csv or .fits; {suffix or 'no suffix'} "
+            "is not one of them"
+        )
+    return _TABLE_FORMATS[suffix]
+
+
 def write_table(table, path: str | os.PathLike, format: str | None = None) -> None:
-    """Write an astropy Table atomically; ECSV unless the suffix or ``format`` says otherwise."""
+    """Write an astropy Table atomically, in the format its suffix names (see
+    :func:`table_format`) unless ``format`` is given."""
     path = Path(path)
-    fmt = format or {".fits": "fits", ".csv": "ascii.csv"}.get(path.suffix.lower(), "ascii.ecsv")
+    fmt = format or table_format(path)
     if fmt == "fits":
         with atomic_write(path, "wb") as fh:
             table.write(fh, format="fits")
     else:
+        if fmt == "ascii.csv":  # spreadsheets and ritzline's text reader read 0/1, not True
+            table = table.copy(copy_data=False)
+            for name in table.colnames:
+                if table[name].dtype == bool:
+                    table[name] = table[name].astype("u1")
         with atomic_write(path, "w", encoding="utf-8", newline="") as fh:
             table.write(fh, format=fmt)
+
+
+def read_table(path: str | os.PathLike):
+    """Read back a table ritzline wrote (ECSV, CSV or FITS) as an astropy Table.
+
+    Raises RitzlineError naming the file when it cannot be read.
+    """
+    import warnings
+
+    from astropy.table import Table
+
+    from .errors import RitzlineError
+
+    path = Path(path)
+    fmt = table_format(path)
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            return Table.read(path, format=fmt)
+    except FileNotFoundError:
+        raise RitzlineError(f"{path}: no such file") from None
+    except Exception as exc:  # astropy raises many types for a damaged table
+        raise RitzlineError(f"{path}: not a readable {fmt} table ({exc})") from None
 
 
 def file_sha256(path: str | os.PathLike) -> str:

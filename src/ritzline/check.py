@@ -1070,10 +1070,19 @@ class ExposureChecker:
 
     def __call__(self, path: str) -> dict:
         row = _blank_row(str(path))
+        import warnings
+
+        from .errors import RitzlineWarning
+
         try:
             from .spectrum import read_spectrum
 
-            spectrum = read_spectrum(path)
+            with warnings.catch_warnings(record=True) as caught:
+                warnings.simplefilter("always", RitzlineWarning)
+                spectrum = read_spectrum(path)
+            # what the reader doubted goes into the row (worker processes print nothing)
+            notes = [" ".join(str(w.message).split()) for w in caught
+                     if issubclass(w.category, RitzlineWarning)]
         except (RitzlineError, OSError) as exc:
             row["status"] = "error"
             row["reasons"] = " ".join(str(exc).split()) or type(exc).__name__
@@ -1089,6 +1098,9 @@ class ExposureChecker:
             row["status"] = "error"
             msg = " ".join(str(exc).split())
             row["reasons"] = f"check failed: {type(exc).__name__}: {msg}"
+        if notes and row["status"] != "error":
+            row["status"] = "warn" if row["status"] == "pass" else row["status"]
+            row["reasons"] = "; ".join([r for r in [row["reasons"]] if r] + notes)
         return row
 
     def _measure(self, spectrum, row: dict) -> None:
@@ -1099,11 +1111,13 @@ class ExposureChecker:
         meta = arrays.meta
         row["timestamp"] = str(meta.get("timestamp") or "")
         row["masked_samples"] = int(np.count_nonzero(arrays.mask))
-        if arrays.counts.size != ref.n_pixels:
+        if arrays.counts.size != ref.n_pixels or arrays.first_pixel != 0:
             row["status"] = "fail"
             row["reasons"] = (
-                f"exposure has {arrays.counts.size} pixels but the reference solution has "
-                f"{ref.n_pixels}; it was taken with another detector setting"
+                f"exposure has {arrays.counts.size} pixels (detector pixels "
+                f"{arrays.first_pixel}-{arrays.last_pixel} in the file) but the reference "
+                f"solution has {ref.n_pixels}; it was cropped or taken with another detector "
+                "setting"
             )
             return
         # a solution that does not know its line width: the finder estimates it, and the
@@ -2157,7 +2171,9 @@ def _finish_check(result: BatchResult, outdir, limits: CheckLimits, meta: dict, 
         info = {
             "totals": totals,
             "thresholds": asdict(limits),
-            "reference": {k: meta[k] for k in ref_keys},
+            # a solution may not know its line width (fwhm_pixel null): NaN -> null
+            "reference": {k: None if isinstance(meta[k], float) and not np.isfinite(meta[k])
+                          else meta[k] for k in ref_keys},
             "complete": result.complete,
             "missing_exposures": n_files - len(table),
             "stopped": result.stopped,

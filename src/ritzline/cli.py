@@ -21,24 +21,156 @@ def _fail(message: str) -> None:
     sys.exit(EXIT_USAGE)
 
 
-def handle_errors(func):
-    """Turn RitzlineError (and file-system errors) into one ``error:`` line and exit 2.
+def _one_line(text: str) -> str:
+    return " ".join(str(text).split())
 
-    With ``--debug`` on the group the traceback is shown instead.
+
+_READING: list[str] = []  # the input file being worked on, for messages that lack it
+
+
+class _WarningPrinter:
+    """Prints every warning once as ``warning: <file>: <where>: <what>`` (no source paths).
+
+    ritzline's own warnings carry their file and place; any other library's warning is
+    prefixed with the input file being worked on and its category.
+    """
+
+    def __init__(self):
+        self.seen: set[str] = set()
+
+    def __call__(self, message, category, filename, lineno, file=None, line=None):
+        from .errors import RitzlineWarning
+
+        text = _one_line(message)
+        if not issubclass(category, RitzlineWarning):
+            text = f"{category.__name__}: {text}"
+            if _READING and not text.startswith(_READING[-1]):
+                text = f"{_READING[-1]}: {text}"
+        if text not in self.seen:
+            self.seen.add(text)
+            click.echo(f"warning: {text}", err=True)
+
+
+def handle_errors(func):
+    """The one diagnostics path of every command.
+
+    RitzlineError and file-system errors become one ``error:`` line and exit 2; warnings
+    (ritzline's own and any library's) become ``warning:`` lines; a closed output pipe ends
+    the command quietly; anything unexpected is one ``error: internal error`` line.  With
+    ``--debug`` on the group tracebacks are shown instead.
     """
 
     @functools.wraps(func)
     def wrapper(*args, **kwargs):
+        import warnings
+
         ctx = click.get_current_context()
         debug = bool(ctx.find_root().obj and ctx.find_root().obj.get("debug"))
+        _READING.clear()
         try:
-            return func(*args, **kwargs)
+            with warnings.catch_warnings():
+                warnings.simplefilter("always")
+                if not debug:
+                    # numerical notes from inside numpy ("Mean of empty slice") say nothing
+                    # a user can act on; an empty line table is reported by each command
+                    warnings.filterwarnings("ignore", category=RuntimeWarning,
+                                            module=r"numpy(\.|$)")
+                    warnings.filterwarnings("ignore", message=r"find_lines: .*empty line table")
+                warnings.showwarning = _WarningPrinter()
+                return func(*args, **kwargs)
+        except BrokenPipeError:
+            _quiet_broken_pipe()
         except (RitzlineError, OSError) as exc:
             if debug:
                 raise
-            _fail(" ".join(str(exc).split()) or type(exc).__name__)
+            _fail(_with_file(_one_line(exc) or type(exc).__name__))
+        except (click.exceptions.Exit, click.ClickException, click.Abort, SystemExit,
+                KeyboardInterrupt):
+            raise
+        except Exception as exc:
+            if debug:
+                raise
+            _fail(f"internal error: {type(exc).__name__}: {_one_line(exc)} (run "
+                  "`ritzline --debug ...` for the traceback, and please report it)")
 
     return wrapper
+
+
+def _with_file(message: str) -> str:
+    """The message, prefixed with the input file when it names no file itself."""
+    import os
+
+    head = message.split(": ", 1)[0]
+    if not _READING or os.path.exists(head) or any(p in message for p in _READING):
+        return message
+    return f"{_READING[-1]}: {message}"
+
+
+def _quiet_broken_pipe() -> None:
+    """The reader of our output went away (``ritzline transitions Ne | head``): stop
+    quietly, without a second error when Python flushes stdout at exit."""
+    import os
+
+    try:
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+    except (OSError, ValueError):
+        pass
+    sys.exit(0)
+
+
+def _column_arg(column: str | None):
+    """--column value: a 0-based index when it is a number, else a name."""
+    if column is not None and column.strip().lstrip("-").isdigit():
+        return int(column)
+    return column
+
+
+def read_input(path, column=None, hdu=None, pixel_origin=None, **kwargs):
+    """read_spectrum with the command-line reader options."""
+    from .spectrum import read_spectrum
+
+    _READING.append(str(path))
+    return read_spectrum(path, column=_column_arg(column), hdu=hdu, pixel_origin=pixel_origin,
+                         **kwargs)
+
+
+def reader_options(func):
+    """--hdu and --pixel-origin for every command that reads a spectrum."""
+    func = click.option(
+        "--pixel-origin", type=click.IntRange(min=0), default=None,
+        help="Number the file gives the first detector pixel (1 for 1-based exports).",
+    )(func)
+    return click.option(
+        "--hdu", default=None, metavar="N|NAME",
+        help="FITS: the HDU to read (0-based number or EXTNAME; default the first with data).",
+    )(func)
+
+
+def figure_path(_ctx, _param, value: str | None):
+    """Click callback: a figure path whose suffix names a format ritzline writes."""
+    if value is None:
+        return None
+    from .plots import figure_format
+
+    try:
+        figure_format(value)
+    except RitzlineError as exc:
+        raise click.BadParameter(str(exc)) from None
+    return value
+
+
+def table_path(_ctx, _param, value: str | None):
+    """Click callback: a table path whose suffix names a format ritzline writes."""
+    if value is None:
+        return None
+    from ._io import table_format
+
+    try:
+        table_format(value)
+    except RitzlineError as exc:
+        raise click.BadParameter(str(exc)) from None
+    return value
 
 
 def parse_wavelength_range(_ctx, _param, value: str | None):
@@ -80,7 +212,36 @@ def echo_json(data) -> None:
     click.echo(json.dumps(data, indent=2, default=str))
 
 
-@click.group(context_settings={"help_option_names": ["-h", "--help"], "max_content_width": 100})
+class _Group(click.Group):
+    """The command group; usage errors are printed as one ``error:`` line too."""
+
+    def main(self, args=None, prog_name=None, complete_var=None, standalone_mode=True,
+             **extra):
+        try:
+            rv = super().main(args, prog_name, complete_var, standalone_mode=False, **extra)
+        except click.exceptions.NoArgsIsHelpError as exc:
+            click.echo(exc.ctx.get_help() if exc.ctx else str(exc), err=True)
+            sys.exit(EXIT_USAGE)
+        except click.UsageError as exc:
+            command = exc.ctx.command_path if exc.ctx else "ritzline"
+            click.echo(f"error: {command}: {_one_line(exc.format_message())} (see "
+                       f"'{command} --help')", err=True)
+            sys.exit(EXIT_USAGE)
+        except click.ClickException as exc:
+            click.echo(f"error: {_one_line(exc.format_message())}", err=True)
+            sys.exit(exc.exit_code)
+        except click.Abort:
+            click.echo("error: aborted", err=True)
+            sys.exit(130)
+        except BrokenPipeError:
+            _quiet_broken_pipe()
+        if not standalone_mode:
+            return rv
+        sys.exit(rv if isinstance(rv, int) else 0)
+
+
+@click.group(cls=_Group,
+             context_settings={"help_option_names": ["-h", "--help"], "max_content_width": 100})
 @click.version_option(__version__, prog_name="ritzline")
 @click.option("--debug", is_flag=True, help="Show full tracebacks instead of one-line errors.")
 @click.pass_context
@@ -100,23 +261,25 @@ def main(ctx: click.Context, debug: bool) -> None:
 # ---- info ------------------------------------------------------------------------------
 
 
-def _spectrum_summary(path: str, column) -> dict:
+def _spectrum_summary(path: str, column, hdu=None, pixel_origin=None) -> dict:
     """What `info` reports of one file (a plain dict, so --json can print it as is)."""
     import numpy as np
 
-    from .spectrum import read_spectrum, spectrum_arrays
+    from .spectrum import spectrum_arrays
 
-    arr = spectrum_arrays(read_spectrum(path, column=column))
+    arr = spectrum_arrays(read_input(path, column, hdu, pixel_origin))
     good = arr.counts[~arr.mask]
+    if not good.size:
+        good = np.array([np.nan])
     meta = arr.meta
     return {
         "file": path,
         "format": meta.get("format"),
-        "samples": int(arr.counts.size),
+        "samples": int(np.count_nonzero(arr.present)),
         "axis": meta.get("axis_kind"),
         "axis_unit": arr.unit,
-        "axis_min": float(np.min(arr.axis)),
-        "axis_max": float(np.max(arr.axis)),
+        "axis_min": float(np.min(arr.axis[arr.present])),
+        "axis_max": float(np.max(arr.axis[arr.present])),
         "counts_min": float(good.min()),
         "counts_max": float(good.max()),
         "masked": int(meta.get("n_masked", 0)),
@@ -128,6 +291,9 @@ def _spectrum_summary(path: str, column) -> dict:
         "exposure_time_s": meta.get("exposure_time"),
         "timestamp": meta.get("timestamp"),
         "medium": meta.get("medium"),
+        "pixel_range": meta.get("pixel_range"),
+        "pixel_gaps": meta.get("pixel_gaps"),
+        "footer": meta.get("footer"),
     }
 
 
@@ -135,14 +301,13 @@ def _spectrum_summary(path: str, column) -> dict:
 @click.argument("files", nargs=-1, required=True, type=click.Path(dir_okay=False))
 @click.option("--column", default=None, help="Counts column to read: header name or 0-based index.")
 @click.option("--json", "as_json", is_flag=True, help="Print machine-readable JSON instead.")
+@reader_options
 @handle_errors
-def info(files: tuple[str, ...], column: str | None, as_json: bool) -> None:
+def info(files: tuple[str, ...], column: str | None, as_json: bool, hdu, pixel_origin) -> None:
     """Describe spectrum FILES: samples, axis, count range, masked and saturated samples,
     and the counts columns found.  Reads text (CSV/TSV/semicolon/whitespace), FITS and ECSV.
     """
-    if column is not None and column.lstrip("-").isdigit():
-        column = int(column)
-    summaries = [_spectrum_summary(path, column) for path in files]
+    summaries = [_spectrum_summary(path, column, hdu, pixel_origin) for path in files]
     if as_json:
         echo_json(summaries if len(summaries) > 1 else summaries[0])
         return
@@ -156,6 +321,9 @@ def info(files: tuple[str, ...], column: str | None, as_json: bool) -> None:
         click.echo(f"{s['file']}  [{s['format']}]")
         click.echo(f"  samples     {s['samples']}")
         click.echo(f"  axis        {s['axis']}, {s['axis_min']:g} to {s['axis_max']:g} {unit}")
+        if s["pixel_gaps"]:
+            lo, hi = s["pixel_range"]
+            click.echo(f"  pixels      {lo} to {hi}, {s['pixel_gaps']} missing (masked)")
         click.echo(f"  counts      {s['counts_min']:g} to {s['counts_max']:g}")
         click.echo(f"  masked      {s['masked']}")
         click.echo(f"  saturated   {sat}")
@@ -164,6 +332,8 @@ def info(files: tuple[str, ...], column: str | None, as_json: bool) -> None:
             click.echo(f"  exposure    {s['exposure_time_s']:g} s")
         if s["timestamp"]:
             click.echo(f"  time        {s['timestamp']}")
+        if s["footer"]:
+            click.echo(f"  after data  {_one_line(s['footer'])[:60]} (ignored)")
 
 # ---- transitions -----------------------------------------------------------------------
 
@@ -183,52 +353,67 @@ def _transitions_flags(row, blend_label: str) -> str:
     return " ".join(flags)
 
 
-def _transitions_print(table, medium: str, blend_of: dict[int, str]) -> None:
+def _transitions_print(table, medium: str, blend_of: dict[int, str], *,
+                       console=None) -> None:
+    """The transitions table.  Numbers are never cut: the level names and flags wrap, and
+    on a terminal too narrow for every column the optional ones are left out, with a line
+    saying which (``-o`` writes them all)."""
     import math
 
+    from rich import box
     from rich.console import Console
     from rich.table import Table as RichTable
 
     def num(value, fmt: str) -> str:
         return "" if value is None or not math.isfinite(float(value)) else format(value, fmt)
 
-    from rich import box
-
+    columns = [  # (header, justify, optional, cell)
+        ("species", "left", False, lambda r, i: str(r["species"])),
+        ("λ (nm)", "right", False, lambda r, i: num(r["wavelength"], ".4f")),
+        ("±", "right", False, lambda r, i: num(r["wavelength_err"], ".4f")),
+        ("published", "right", True, lambda r, i: num(r["wavelength_obs"], ".5f")),
+        ("lower", "left", False, lambda r, i: str(r["lower"])),
+        ("upper", "left", False, lambda r, i: str(r["upper"])),
+        ("E_up (eV)", "right", False, lambda r, i: num(r["upper_ev"], ".3f")),
+        ("rel. int.", "right", True, lambda r, i: num(r["intensity"], "g")),
+        ("A_ki (s⁻¹)", "right", True, lambda r, i: num(r["aki"], ".3g")),
+        ("flags", "left", False, lambda r, i: _transitions_flags(r, blend_of.get(i, ""))),
+    ]
+    cells = [[cell(row, i) for (_, _, _, cell) in columns] for i, row in enumerate(table)]
+    widths = [max([len(h)] + [len(c[k]) for c in cells]) for k, (h, *_) in enumerate(columns)]
+    if console is None:
+        console = Console()
+        if not console.is_terminal:
+            console = Console(width=220)  # files and pipes get whole rows
+    wrapping = {"lower", "upper", "flags"}
+    # words of the wrapping columns need room too: their longest word
+    for k, (h, *_) in enumerate(columns):
+        if h in wrapping:
+            widths[k] = max([len(h)] + [len(w) for c in cells for w in c[k].split()] or [0])
+    keep = list(range(len(columns)))
+    dropped = []
+    for k in (8, 7, 3):  # A_ki, rel. int., published: left out first
+        if sum(widths[j] + 3 for j in keep) <= console.width:
+            break
+        keep.remove(k)
+        dropped.append(columns[k][0])
     rt = RichTable(
         title=f"{len(table)} transitions, wavelengths in {medium}",
         title_justify="left",
         box=box.SIMPLE_HEAD,
     )
-    for name, justify in (
-        ("species", "left"),
-        ("λ (nm)", "right"),
-        ("±", "right"),
-        ("published", "right"),
-        ("lower", "left"),
-        ("upper", "left"),
-        ("E_up (eV)", "right"),
-        ("rel. int.", "right"),
-        ("A_ki (s⁻¹)", "right"),
-        ("flags", "left"),
-    ):
-        rt.add_column(name, justify=justify, no_wrap=True)
-    for i, row in enumerate(table):
-        rt.add_row(
-            str(row["species"]),
-            num(row["wavelength"], ".4f"),
-            num(row["wavelength_err"], ".4f"),
-            num(row["wavelength_obs"], ".5f"),
-            str(row["lower"]),
-            str(row["upper"]),
-            num(row["upper_ev"], ".3f"),
-            num(row["intensity"], "g"),
-            num(row["aki"], ".3g"),
-            _transitions_flags(row, blend_of.get(i, "")),
-        )
-    console = Console()
-    if not console.is_terminal:
-        console = Console(width=220)  # files and pipes get whole rows
+    for k in keep:
+        header, justify, _, _ = columns[k]
+        if header in wrapping:
+            rt.add_column(header, justify=justify, overflow="fold", min_width=widths[k])
+        else:
+            rt.add_column(header, justify=justify, no_wrap=True, min_width=widths[k])
+    for row_cells in cells:
+        rt.add_row(*(row_cells[k] for k in keep))
     console.print(rt)
+    if dropped:
+        console.print(f"(terminal too narrow: left out {', '.join(reversed(dropped))}; "
+                      "widen it or write the table with -o)")
 
 
 @main.command("transitions")
@@ -270,7 +455,8 @@ def _transitions_print(table, medium: str, blend_of: dict[int, str]) -> None:
     "--output",
     type=click.Path(dir_okay=False),
     default=None,
-    help="Also write the table to this file (ECSV).",
+    callback=table_path,
+    help="Also write the table to this file (ECSV; .csv for a spreadsheet, .fits).",
 )
 @handle_errors
 def transitions_command(
@@ -399,48 +585,51 @@ def _peaks_print(lines) -> None:
               default=None, help="Write the instrument model measured on FILE (JSON).")
 @click.option("--column", default=None, help="Counts column of a table file.")
 @click.option("-o", "--output", type=click.Path(dir_okay=False), default=None,
-              help="Write the line table (ECSV).")
+              callback=table_path,
+              help="Write the line table (ECSV; .csv for a spreadsheet, .fits).")
 @click.option("--plot", "plot_path", type=click.Path(dir_okay=False), default=None,
-              help="Draw the spectrum with the lines marked (PNG).")
+              callback=figure_path,
+              help="Draw the spectrum with the lines marked (.png, .pdf or .svg).")
+@reader_options
 @handle_errors
 def peaks_cmd(file, solution_path, dark_path, min_snr, fwhm_guess, saturation, gain,
-              read_noise, instrument_path, save_instrument, column, output, plot_path):
+              read_noise, instrument_path, save_instrument, column, output, plot_path, hdu,
+              pixel_origin):
     """Find the emission lines of FILE: centroids, widths, fluxes and their errors.
 
     The detector's offset, gain and read noise and the line shape along the detector (the
     instrument model) are measured on FILE unless --instrument or --solution gives them;
     --save-instrument keeps them for the exposures that follow.
     """
-    import warnings
-
     from ._io import write_table
     from .instrument import Instrument
     from .peaks import attach_wavelengths, find_lines
-    from .spectrum import read_spectrum
+    from .spectrum import require_solution_pixels
 
-    spectrum = read_spectrum(file, column=column, saturation=saturation)
-    dark = read_spectrum(dark_path, column=column) if dark_path else None
+    spectrum = read_input(file, column, hdu, pixel_origin, saturation=saturation)
+    dark = read_input(dark_path, column, hdu, pixel_origin) if dark_path else None
     solution = None
     if solution_path:
         from .calibration import Solution
 
         solution = Solution.load(solution_path)
+        require_solution_pixels(spectrum, solution)
     instrument = (Instrument.load(instrument_path) if instrument_path
                   else getattr(solution, "instrument", None))
-    with warnings.catch_warnings(record=True) as caught:
-        warnings.simplefilter("always")
-        lines = find_lines(spectrum, min_snr=min_snr, fwhm_guess=fwhm_guess,
-                           saturation=saturation, gain=gain, read_noise=read_noise, dark=dark,
-                           instrument=instrument)
-    for w in caught:
-        click.echo(f"warning: {w.message}", err=True)
+    lines = find_lines(spectrum, min_snr=min_snr, fwhm_guess=fwhm_guess,
+                       saturation=saturation, gain=gain, read_noise=read_noise, dark=dark,
+                       instrument=instrument)
     if save_instrument:
         Instrument.from_dict(lines.meta["instrument"]).save(save_instrument)
         click.echo(f"instrument model written to {save_instrument}")
     if solution is not None:
         lines = attach_wavelengths(lines, solution)
     lines.meta["input"] = str(file)
-    _peaks_print(lines)
+    if len(lines):
+        _peaks_print(lines)
+    else:
+        reason = lines.meta.get("warning") or f"no line reaches min_snr={min_snr:g}"
+        click.echo(f"no lines found in {file}: {reason}")
     if output:
         write_table(lines, output)
         click.echo(f"lines written to {output}")
@@ -481,14 +670,16 @@ def peaks_cmd(file, solution_path, dark_path, min_snr, fwhm_guess, saturation, g
 @click.option("-o", "--output", required=True, type=click.Path(dir_okay=False),
               help="Where to write the solution (JSON).")
 @click.option("--plot", "plot_path", type=click.Path(dir_okay=False), default=None,
-              help="Write a residual plot (PNG).")
+              callback=figure_path, help="Write a residual plot (.png, .pdf or .svg).")
 @click.option("--write-calibrated", "calibrated_path", type=click.Path(dir_okay=False),
-              default=None, help="Write the exposure with its wavelength axis (ECSV; one "
-                                 "file only).")
+              default=None, callback=table_path,
+              help="Write the exposure with its wavelength axis (ECSV; .csv, .fits; one "
+                   "lamp file only).")
 @click.option("--json", "as_json", is_flag=True, help="Print the summary as JSON.")
+@reader_options
 @handle_errors
 def calibrate_cmd(lamp_files, lamps, wrange, degree, guess_path, medium, column, output,
-                  plot_path, calibrated_path, as_json):
+                  plot_path, calibrated_path, as_json, hdu, pixel_origin):
     """Solve the pixel -> wavelength map of reference-lamp exposures LAMP_FILES.
 
     No line positions are needed: lines are found and matched to the lamps' published
@@ -497,15 +688,18 @@ def calibrate_cmd(lamp_files, lamps, wrange, degree, guess_path, medium, column,
     or contain mercury; follow the lamp maker's instructions and your local safety rules.
     """
     from .calibration import Solution, calibrate, with_input, write_calibrated
-    from .spectrum import read_spectrum
+    from .spectrum import require_solution_pixels
 
     if len(lamp_files) > 1 and len(lamps) != len(lamp_files):
         raise click.UsageError(f"{len(lamp_files)} files need one --lamp each (in order), got "
                                f"{len(lamps)}")
     if len(lamp_files) > 1 and calibrated_path:
         raise click.UsageError("--write-calibrated takes one lamp file")
-    spectra = [read_spectrum(f, column=column) for f in lamp_files]
+    spectra = [read_input(f, column, hdu, pixel_origin) for f in lamp_files]
     guess = Solution.load(guess_path) if guess_path else None
+    if guess is not None:
+        for spectrum in spectra:
+            require_solution_pixels(spectrum, guess)
     if len(spectra) == 1:
         spectrum, lamp_arg = spectra[0], tuple(lamps)
     else:
@@ -576,8 +770,9 @@ def _match_print(result, max_rows: int) -> None:
     for row in result.species:
         verdict = "present" if row["present"] else "absent"
         llr = row["log_likelihood_ratio"]
-        click.echo(f"  {row['species']:6s} {verdict:8s} lines {row['n_assigned']:3d}  strong "
-                   f"lines found {row['strong_found']}/{row['strong_expected']}  "
+        strong = (f"strong lines found {row['strong_found']}/{row['strong_expected']}"
+                  if row["strong_expected"] else "no strong line expected in this range")
+        click.echo(f"  {row['species']:6s} {verdict:8s} lines {row['n_assigned']:3d}  {strong}  "
                    f"log-likelihood ratio {llr:8.1f}")
     click.echo("")
     lv = result.levels
@@ -590,12 +785,15 @@ def _match_print(result, max_rows: int) -> None:
     if not result.meta["response_corrected"]:
         click.echo("intensities are uncorrected for the spectral response (no --response): "
                    "no excitation temperature")
+    from .plots import boltzmann_label
+
     for bp in result.boltzmann:
-        if bp.corrected and np.isfinite(bp.temperature_k):
+        label = boltzmann_label(bp)  # the same rule as the Boltzmann plot's legend
+        if bp.corrected and " T = " in label:
             click.echo(f"{bp.species}: excitation temperature {bp.temperature_k:.0f} ± "
                        f"{bp.temperature_err_k:.0f} K ({bp.message})")
         elif bp.corrected:
-            click.echo(f"{bp.species}: {bp.message}")
+            click.echo(label)
 
 
 @main.command("match")
@@ -618,22 +816,30 @@ def _match_print(result, max_rows: int) -> None:
               help="How far off the wavelength axis may be, e.g. 2px or 0.5nm (a bare "
               "number is px; default 0.5 px). An offset and tilt are searched within it.")
 @click.option("-o", "--output", type=click.Path(dir_okay=False), default=None,
-              help="Write the line assignments (ECSV).")
+              callback=table_path, help="Write the line assignments (ECSV; .csv, .fits).")
 @click.option("--levels", "levels_path", type=click.Path(dir_okay=False), default=None,
-              help="Write the excited-level table (ECSV).")
+              callback=table_path, help="Write the excited-level table (ECSV; .csv, .fits).")
 @click.option("--species-table", type=click.Path(dir_okay=False), default=None,
-              help="Write the species evidence table (ECSV).")
-@click.option("--plot", type=click.Path(dir_okay=False), default=None,
-              help="Write the labelled spectrum figure (PNG).")
-@click.option("--diagram", type=click.Path(dir_okay=False), default=None,
-              help="Write the energy-level diagram of the observed transitions (PNG).")
+              callback=table_path,
+              help="Write the species evidence table (ECSV; .csv, .fits).")
+@click.option("--plot", type=click.Path(dir_okay=False), default=None, callback=figure_path,
+              help="Write the labelled spectrum figure (.png, .pdf or .svg).")
+@click.option("--scale", "intensity_scale", type=click.Choice(["linear", "sqrt", "asinh", "log"]),
+              default="asinh", show_default=True,
+              help="Intensity scale of the labelled spectrum (asinh, sqrt and log show weak "
+              "lines beside strong ones).")
+@click.option("--diagram", type=click.Path(dir_okay=False), default=None, callback=figure_path,
+              help="Write the energy-level diagram of the observed transitions "
+              "(.png, .pdf or .svg).")
 @click.option("--boltzmann", type=click.Path(dir_okay=False), default=None,
-              help="Write the Boltzmann plot (PNG).")
+              callback=figure_path, help="Write the Boltzmann plot (.png, .pdf or .svg).")
 @click.option("--max-rows", type=click.IntRange(min=1), default=200, show_default=True,
               help="Print at most this many lines.")
+@reader_options
 @handle_errors
 def match(file, species, solution_path, medium, max_energy, response, column, axis_err,
-          output, levels_path, species_table, plot, diagram, boltzmann, max_rows) -> None:
+          output, levels_path, species_table, plot, intensity_scale, diagram, boltzmann,
+          max_rows, hdu, pixel_origin) -> None:
     """Identify the atomic transitions behind the emission lines of FILE.
 
     Prints each line's assignment with its probability, the species judged present, and the
@@ -641,20 +847,24 @@ def match(file, species, solution_path, medium, max_energy, response, column, ax
     """
     from ._io import write_table
     from .identify import identify_lines, read_response
-    from .spectrum import read_spectrum
+    from .spectrum import require_solution_pixels
 
-    spectrum = read_spectrum(file, column=column)
+    spectrum = read_input(file, column, hdu, pixel_origin)
     solution = None
     if solution_path:
         from .calibration import Solution
 
         solution = Solution.load(solution_path)
+        require_solution_pixels(spectrum, solution)
     medium = (medium or getattr(solution, "medium", None)
               or (spectrum.meta or {}).get("medium") or "air")
     resp = read_response(response) if response else None
     result = identify_lines(spectrum, species, solution=solution, medium=medium,
                             max_electron_energy=max_energy, response=resp, axis_err=axis_err)
-    _match_print(result, max_rows)
+    if len(result.lines):
+        _match_print(result, max_rows)
+    else:
+        click.echo(f"no lines found in {file}: nothing to identify")
     for table, path in ((result.lines, output), (result.levels, levels_path),
                         (result.species, species_table)):
         if path:
@@ -665,7 +875,7 @@ def match(file, species, solution_path, medium, max_energy, response, column, ax
 
         if plot:
             written = plots.plot_identify_spectrum(result, plot, spectrum=spectrum,
-                                                   solution=solution)
+                                                   solution=solution, scale=intensity_scale)
             click.echo(f"wrote {written}")
         if diagram:
             click.echo(f"wrote {plots.plot_identify_levels(result, diagram)}")

@@ -6,6 +6,7 @@ Messages name the file (or object) concerned, the cause, and what to do about it
 __all__ = [
     "CalibrationError",
     "RitzlineError",
+    "RitzlineWarning",
     "SolutionFormatError",
     "SpectrumFormatError",
 ]
@@ -25,3 +26,9 @@ class SolutionFormatError(RitzlineError):
 
 class CalibrationError(RitzlineError):
     """No trustworthy wavelength solution could be found for a lamp exposure."""
+
+
+class RitzlineWarning(UserWarning):
+    """Something was read or computed but deserves a look; the message starts with the file
+    (or object) and the place, as ``<file>: <where>: <what>``.  The command line prints it
+    as one ``warning:`` line."""

@@ -165,8 +165,11 @@ class Identification:
         ``upper``, ``upper_energy_ev``, ``residual_sigma``, ``blend_members``; the posterior
         ``probability`` of the best candidate transition (filled even when it is too low to
         claim), ``p_unidentified``, ``alternatives`` (other hypotheses with probabilities) and
-        ``flags`` (``unidentified``, ``blend``, ``second_order``, ``above_energy_limit``,
-        ``ambiguous``).  Rows flagged ``unidentified`` have an empty ``species``.
+        ``flags`` (``unidentified``, ``unresolved_blend`` (several listed transitions inside
+        the one measured line, see ``blend_members``), ``second_order``,
+        ``above_energy_limit``, ``ambiguous``, and the line finder's ``blended`` = fitted
+        jointly with a neighbour line).  Rows flagged ``unidentified`` have an empty
+        ``species``.
     levels : astropy.table.Table
         One row per excited upper level seen, in order of energy.
     species : astropy.table.Table
@@ -295,6 +298,10 @@ def _measured_lines(spectrum, lines, solution, find_kw):
         from .spectrum import spectrum_arrays
 
         arrays = spectrum_arrays(spectrum)
+        if solution is not None:
+            from .spectrum import require_solution_pixels
+
+            require_solution_pixels(arrays, solution)
         lines = peaks.find_lines(spectrum, **(find_kw or {}))
         if arrays.unit == "nm":
             axis_range = (float(np.nanmin(arrays.axis)), float(np.nanmax(arrays.axis)))
@@ -1445,7 +1452,7 @@ def _line_table(table, model, cand, names, lam, sig, flux, snr, flags_in, opts, 
         k = out_k[i]
         if len(g.members[k]) > 1:
             members[i] = ",".join(_fmt_wl(c_wl[m]) for m in g.members[k])
-            out_flags[i].append("blend")
+            out_flags[i].append("unresolved_blend")
         if g.order[k] == 2:
             parent[i] = c_wl[out_row[i]]
             out_flags[i].append("second_order")

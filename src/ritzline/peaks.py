@@ -325,6 +325,10 @@ def attach_wavelengths(lines: Table, solution) -> Table:
         A copy of ``lines`` with the three columns added.  ``wavelength_err`` combines the
         centroid error through the dispersion with the solution's own band in quadrature.
     """
+    if hasattr(solution, "n_pixels"):
+        from .spectrum import require_solution_pixels
+
+        require_solution_pixels(lines, solution, what="the line table")
     out = lines.copy(copy_data=True)
     p = np.asarray(out["pixel"], float)
     disp = np.abs(np.asarray(solution.dispersion(p), float))

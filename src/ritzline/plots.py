@@ -1,13 +1,16 @@
 """Every figure ritzline draws.  Matplotlib is imported lazily with the Agg backend; the
-library never calls ``plt.show``.  Each function takes results and a path, writes a PNG
-(atomically) and returns the path.
+library never calls ``plt.show``.  Each function takes results and a path, writes the
+figure atomically in the format the path's suffix names (.png, .pdf or .svg) and returns
+the path.
 """
 
 from pathlib import Path
 
 from ._io import atomic_write
 
-__all__ = ["new_figure", "save_figure"]
+__all__ = ["FIGURE_FORMATS", "figure_format", "new_figure", "save_figure"]
+
+FIGURE_FORMATS = {".png": "png", ".pdf": "pdf", ".svg": "svg"}
 
 
 def new_figure(*args, **kwargs):
@@ -22,11 +25,29 @@ def new_figure(*args, **kwargs):
     return fig, axes
 
 
+def figure_format(path) -> str:
+    """The format a figure is written in, from the suffix of ``path``: png, pdf or svg.
+
+    Any other suffix is refused (RitzlineError) instead of writing a PNG under a name that
+    says otherwise.
+    """
+    from .errors import RitzlineError
+
+    suffix = Path(path).suffix.lower()
+    if suffix not in FIGURE_FORMATS:
+        raise RitzlineError(
+            f"{path}: figures are written as .png, .pdf or .svg; "
+            f"{suffix or 'no suffix'} is not one of them"
+        )
+    return FIGURE_FORMATS[suffix]
+
+
 def save_figure(fig, path, *, dpi: int = 110) -> Path:
-    """Write ``fig`` as PNG atomically and return the path."""
+    """Write ``fig`` atomically in the format of the path's suffix and return the path."""
     path = Path(path)
+    fmt = figure_format(path)
     with atomic_write(path, "wb") as fh:
-        fig.savefig(fh, format="png", dpi=dpi)
+        fig.savefig(fh, format=fmt, dpi=dpi)
     return path
 
 
@@ -170,13 +191,32 @@ def _identify_wavelength_colours(wavelengths, lo, hi):
     return cmap(np.clip((np.asarray(wavelengths, float) - lo) / span, 0, 1))
 
 
+def _stack_labels(values, min_gap):
+    """Heights near ``values`` (any order) at least ``min_gap`` apart, moved up only."""
+    import numpy as np
+
+    values = np.asarray(values, float)
+    order = np.argsort(values)
+    out = values[order].copy()
+    for i in range(1, out.size):
+        out[i] = max(out[i], out[i - 1] + min_gap)
+    result = np.empty_like(out)
+    result[order] = out
+    return result
+
+
+_LEVEL_COLUMN = 2.0  # x units per term column: a bar of 1, then room for its label
+
+
 def plot_identify_levels(identification, path, *, max_species: int = 3) -> Path:
     """Energy-level diagram of the observed transitions, one panel per species.
 
-    Levels are horizontal bars at their energies (eV above the ground state); each
-    identified first-order line is an arrow from its upper to its lower level, coloured by
-    wavelength, its width growing with the logarithm of the flux.  A dashed line marks the
-    electron-energy limit when one was given.
+    Levels are horizontal bars at their energies (eV above the ground state), one column
+    per term; each identified first-order line is an arrow from the middle of its upper
+    level to the middle of its lower level, coloured by wavelength, its width growing with
+    the logarithm of the flux.  Level labels (configuration over term and J) stand at the
+    right end of their bars on a white ground above the arrows, and are stacked so that
+    none overlaps another.  A dashed line marks the electron-energy limit when one was given.
     """
     import numpy as np
 
@@ -186,16 +226,27 @@ def plot_identify_levels(identification, path, *, max_species: int = 3) -> Path:
     ok &= np.isfinite(np.asarray(t["upper_energy_ev"], float))
     ok &= np.isfinite(np.asarray(t["lower_energy_ev"], float))
     species = [s for s in dict.fromkeys(np.asarray(t["species"])[ok])][:max_species]
-    n = max(len(species), 1)
-    fig, axes = new_figure(1, n, figsize=(4.2 * n + 1.0, 5.2), squeeze=False)
-    axes = axes[0]
     wl_all = np.asarray(t["wavelength"], float)[ok]
     lo, hi = (wl_all.min(), wl_all.max()) if wl_all.size else (0.0, 1.0)
     flux_all = np.asarray(t["flux"], float)[ok]
     fmin = np.nanmin(flux_all) if flux_all.size else 1.0
     fmax = np.nanmax(flux_all) if flux_all.size else 1.0
-    for ax, sp in zip(axes, species or [""], strict=False):
+
+    def term_of(name):
+        return name.rsplit(" J=", 1)[0].split()[-1]
+
+    panels = []
+    for sp in species or [""]:
         sel = ok & (np.asarray(t["species"]) == sp)
+        up_n = np.asarray(t["upper"], str)[sel]
+        lo_n = np.asarray(t["lower"], str)[sel]
+        n_cols = len({term_of(n) for n in [*up_n, *lo_n]}) if sel.any() else 1
+        panels.append((sp, sel, max(n_cols, 1)))
+    widths = [max(2.6, 0.8 * n_cols + 0.9) for _, _, n_cols in panels]
+    fig, axes = new_figure(1, len(panels), figsize=(sum(widths) + 1.2, 5.6), squeeze=False,
+                           width_ratios=widths)
+    axes = axes[0]
+    for ax, (sp, sel, _) in zip(axes, panels, strict=True):
         up_e = np.asarray(t["upper_energy_ev"], float)[sel]
         lo_e = np.asarray(t["lower_energy_ev"], float)[sel]
         up_n = np.asarray(t["upper"], str)[sel]
@@ -205,28 +256,51 @@ def plot_identify_levels(identification, path, *, max_species: int = 3) -> Path:
         levels = dict(zip(lo_n, lo_e, strict=True)) | dict(zip(up_n, up_e, strict=True))
         names = sorted(levels, key=levels.get)
         # Grotrian layout: one column per term (the designation without J)
-        term = {name: name.rsplit(" J=", 1)[0].split()[-1] for name in names}
+        term = {name: term_of(name) for name in names}
         columns = list(dict.fromkeys(term[name] for name in names))
-        xpos = {name: 1.4 * columns.index(term[name]) for name in names}
-        e_span = max(np.ptp(np.array(list(levels.values()))), 0.5) if levels else 1.0
+        xpos = {name: _LEVEL_COLUMN * columns.index(term[name]) for name in names}
+        e_all = np.array(list(levels.values())) if levels else np.zeros(1)
+        e_span = max(np.ptp(e_all), 0.5)
+        pad = 0.05 * e_span
+        top = max(e_all.max(), limit if limit is not None else -np.inf) + pad
+        bottom = e_all.min() - pad
+        ax.set_ylim(bottom, top + 0.08 * e_span)
+        fig.canvas.draw()
+        height_px = max(ax.get_window_extent().height, 1.0)
+        min_gap = 18.0 / height_px * (top + 0.08 * e_span - bottom)  # two 6-pt lines
         for col in columns:
             members = [name for name in names if term[name] == col]
             for name in members:
-                ax.hlines(levels[name], xpos[name], xpos[name] + 1.0, color="0.2", lw=1.5)
+                ax.hlines(levels[name], xpos[name], xpos[name] + 1.0, color="0.2", lw=1.5,
+                          zorder=3)
             # one label per cluster of nearly degenerate levels (fine structure)
-            cluster = [members[0]]
-            for name in [*members[1:], None]:
-                if name is not None and levels[name] - levels[cluster[-1]] < 0.025 * e_span:
+            clusters, cluster = [], [members[0]]
+            for name in members[1:]:
+                if levels[name] - levels[cluster[-1]] < 0.025 * e_span:
                     cluster.append(name)
-                    continue
-                js = ",".join(c.rsplit(" J=", 1)[1] for c in cluster if " J=" in c)
-                words = cluster[0].rsplit(" J=", 1)[0].split()
-                text = " ".join(words[-2:]) + (f" J={js}" if js else "")
-                e_mid = np.mean([levels[c] for c in cluster])
-                ax.annotate(text, (xpos[cluster[0]] + 0.5, e_mid), xytext=(0, 2),
-                            textcoords="offset points", fontsize=6, ha="center", va="bottom")
-                if name is not None:
+                else:
+                    clusters.append(cluster)
                     cluster = [name]
+            clusters.append(cluster)
+            texts, heights = [], []
+            for cl in clusters:
+                js = ",".join(c.rsplit(" J=", 1)[1] for c in cl if " J=" in c)
+                words = cl[0].rsplit(" J=", 1)[0].split()
+                config = " ".join(words[:-1][-1:])
+                label = (f"{config}\n" if config else "") + words[-1] + (f" J={js}" if js else "")
+                texts.append(label)
+                heights.append(float(np.mean([levels[c] for c in cl])))
+            placed = _stack_labels(heights, min_gap)
+            x_end = xpos[members[0]] + 1.0
+            for label, e_true, e_text in zip(texts, heights, placed, strict=True):
+                ax.annotate(label, (x_end, e_true), xytext=(x_end + 0.06, e_text),
+                            fontsize=6, ha="left", va="center", linespacing=1.0,
+                            zorder=6, annotation_clip=False,
+                            bbox={"boxstyle": "square,pad=0.1", "fc": "white", "ec": "none",
+                                  "alpha": 0.85},
+                            arrowprops=None if abs(e_text - e_true) < 0.3 * min_gap else
+                            {"arrowstyle": "-", "color": "0.6", "lw": 0.4,
+                             "shrinkA": 0, "shrinkB": 0})
         colours = _identify_wavelength_colours(wl, lo, hi)
         order = np.argsort(fl)
         for k in order:
@@ -234,7 +308,7 @@ def plot_identify_levels(identification, path, *, max_species: int = 3) -> Path:
             x2 = xpos[lo_n[k]] + 0.5
             frac = np.log(fl[k] / fmin) / max(np.log(fmax / fmin), 1e-9) if fl[k] > 0 else 0
             ax.annotate(
-                "", xy=(x2, lo_e[k]), xytext=(x1, up_e[k]),
+                "", xy=(x2, lo_e[k]), xytext=(x1, up_e[k]), zorder=4,
                 arrowprops={"arrowstyle": "-|>", "color": colours[k], "lw": 0.6 + 3.0 * frac,
                             "shrinkA": 0, "shrinkB": 0},
             )  # fmt: skip
@@ -242,15 +316,10 @@ def plot_identify_levels(identification, path, *, max_species: int = 3) -> Path:
             ax.axhline(limit, color="#c62828", ls="--", lw=0.8)
             ax.annotate(f"electron energy {limit:g} eV", (0, limit), fontsize=7,
                         color="#c62828", va="bottom")  # fmt: skip
-        n_col = max(len({x for x in xpos.values()}), 1)
-        ax.set_xlim(-0.2, 1.4 * n_col)
+        ax.set_xlim(-0.2, _LEVEL_COLUMN * max(len(columns), 1) + 0.1)
         ax.set_xticks([])
         ax.set_ylabel("energy above ground (eV)")
         ax.set_title(sp or "no identified transitions")
-        if levels:
-            e_all = np.array(list(levels.values()))
-            pad = 0.05 * max(np.ptp(e_all), 0.5)
-            ax.set_ylim(e_all.min() - pad, max(e_all.max(), limit or -np.inf) + pad)
     if species:
         import matplotlib as mpl
 
@@ -259,13 +328,68 @@ def plot_identify_levels(identification, path, *, max_species: int = 3) -> Path:
     return save_figure(fig, path)
 
 
+def _spread_labels(x, min_gap):
+    """Label positions near ``x`` (sorted input order kept) at least ``min_gap`` apart:
+    overlapping neighbours are pushed apart symmetrically about their mean."""
+    import numpy as np
+
+    x = np.asarray(x, float)
+    order = np.argsort(x)
+    pos = x[order].copy()
+    for _ in range(200):
+        moved = False
+        for i in range(1, pos.size):
+            gap = pos[i] - pos[i - 1]
+            if gap < min_gap - 1e-12:
+                shift = (min_gap - gap) / 2
+                pos[i - 1] -= shift
+                pos[i] += shift
+                moved = True
+        if not moved:
+            break
+    out = np.empty_like(pos)
+    out[order] = pos
+    return out
+
+
+INTENSITY_SCALES = ("linear", "sqrt", "asinh", "log")
+
+
+def _intensity_scale(ax, scale: str, y):
+    """Set a compressed counts scale: sqrt, asinh (linear within a few noise sigma of zero,
+    logarithmic above) or log (clipped at the noise level)."""
+    import numpy as np
+
+    from .errors import RitzlineError
+
+    if scale not in INTENSITY_SCALES:
+        raise RitzlineError(f"intensity scale {scale!r} is not one of {INTENSITY_SCALES}")
+    finite = y[np.isfinite(y)]
+    if scale == "linear" or not finite.size:
+        return
+    med = float(np.median(finite))
+    noise = 1.4826 * float(np.median(np.abs(np.diff(finite)))) / np.sqrt(2) or 1.0
+    if scale == "asinh":
+        ax.set_yscale("asinh", linear_width=max(3.0 * noise, abs(med), 1e-12))
+    elif scale == "sqrt":
+        ax.set_yscale("function", functions=(
+            lambda v: np.sign(v) * np.sqrt(np.abs(v)), lambda v: np.sign(v) * v ** 2))
+    else:
+        ax.set_yscale("log")
+        ax.set_ylim(bottom=max(med - 3 * noise, noise, 1e-12))
+
+
 def plot_identify_spectrum(identification, path, *, spectrum=None, solution=None,
-                           wavelength=None, counts=None, max_labels: int = 60) -> Path:
+                           wavelength=None, counts=None, max_labels: int = 60,
+                           scale: str = "asinh") -> Path:
     """Spectrum with every identified line labelled by species and listed wavelength.
 
     Pass the ``spectrum`` (with the ``solution`` when its axis is in pixels), or its
     ``wavelength``/``counts`` arrays; with neither, the measured lines are drawn as sticks
-    at their fluxes.  Unidentified lines are marked with a grey "?".
+    at their fluxes.  Unidentified lines are marked with a grey "?".  Labels stand above
+    the spectrum, spread sideways so that none overprints another, each joined to its line
+    by a thin leader.  ``scale``: "asinh" (default: weak lines visible beside strong ones),
+    "sqrt", "log" or "linear".
     """
     import numpy as np
 
@@ -276,65 +400,128 @@ def plot_identify_spectrum(identification, path, *, spectrum=None, solution=None
         wavelength = arrays.axis if arrays.unit == "nm" else solution.wavelength(arrays.axis)
         counts = np.where(arrays.mask, np.nan, arrays.counts)
     t = identification.lines
-    fig, ax = new_figure(figsize=(12, 4.5))
+    fig, ax = new_figure(figsize=(13, 5.2))
     wl = np.asarray(t["wavelength"], float)
     fl = np.asarray(t["flux"], float)
     if wavelength is not None and counts is not None:
         x = np.asarray(wavelength, float)
         y = np.asarray(counts, float)
         ax.plot(x, y, color="0.25", lw=0.7)
-        height = np.interp(wl, x[np.argsort(x)], y[np.argsort(x)])
+        srt = np.argsort(x)
+        # the highest sample within a pixel or two of the line, so leaders start at the top
+        height = np.array([np.nanmax(np.interp(w + np.linspace(-1, 1, 9) * np.nanmedian(
+            np.abs(np.diff(x))), x[srt], y[srt])) for w in wl]) if wl.size else wl
         ax.set_ylabel("counts (ADU)")
     else:
+        y = fl
         ax.vlines(wl, 0, fl, color="0.25", lw=1.0)
         height = fl
         ax.set_ylabel("line flux (counts)")
+    _intensity_scale(ax, scale, np.asarray(y, float))
     sp = np.asarray(t["species"], str)
     ref = np.asarray(t["ref_wavelength"], float)
     order = np.asarray(t["order"], int)
     idx = np.flatnonzero(sp != "")
     idx = idx[np.argsort(-fl[idx])][:max_labels]
-    top = np.nanmax(height) if height.size else 1.0
-    for k in idx:
-        label = f"{sp[k]} {ref[k]:.2f}" + (" (2nd)" if order[k] == 2 else "")
-        ax.annotate(label, (wl[k], height[k]), xytext=(0, 4), textcoords="offset points",
-                    rotation=90, fontsize=6, ha="center", va="bottom", color="#1f4e9c")
-    for k in np.flatnonzero(sp == ""):
-        ax.annotate("?", (wl[k], height[k]), xytext=(0, 3), textcoords="offset points",
-                    fontsize=7, ha="center", va="bottom", color="0.5")
-    ax.set_ylim(top=top * 1.35 if np.isfinite(top) and top > 0 else None)
+    unknown = np.flatnonzero(sp == "")
+    ax.margins(x=0.01)
+    # headroom: the spectrum fills the lower 70 % of the (scaled) axis, labels the rest
+    ymin, ymax = ax.get_ylim()
+    fwd = ax.yaxis.get_transform()
+    tmin, tmax = fwd.transform([[ymin], [ymax]]).ravel()
+    new_top = fwd.inverted().transform([[tmin + (tmax - tmin) / 0.70]]).ravel()[0]
+    if np.isfinite(new_top) and new_top > ymax:
+        ax.set_ylim(ymin, new_top)
+    fig.canvas.draw()  # fixes the axes size, so label widths can be turned into nm
+    # counts ticks only where the spectrum is; the band above belongs to the labels
+    ticks = [v for v in ax.get_yticks() if ymin <= v <= ymax]
+    if len(ticks) >= 2:
+        ax.set_yticks(ticks)
+        ax.yaxis.set_minor_locator(__import__("matplotlib").ticker.NullLocator())
+    lo, hi = ax.get_xlim()
+    width_px = ax.get_window_extent().width
+    min_gap = 9.0 / max(width_px, 1.0) * (hi - lo)  # a 6-pt rotated label is ~8 px wide
+    both = np.r_[idx, unknown]
+    if both.size:
+        tops = np.where(np.isfinite(height[both]), height[both], np.nanmax(height))
+        # labels sit in one band above the spectrum: a transformed offset above each top
+        label_x = _spread_labels(wl[both], min_gap)
+        ymin, ymax = ax.get_ylim()
+        to_axes = ax.transScale + ax.transLimits
+        top_frac = np.clip([to_axes.transform((0, v))[1] for v in tops], 0, 1)
+        band = min(max(top_frac.max() + 0.03, 0.72), 0.8) if top_frac.size else 0.72
+        for j, k in enumerate(both):
+            known = sp[k] != ""
+            label = (f"{sp[k]} {ref[k]:.2f}" + (" (2nd)" if order[k] == 2 else "")
+                     if known else "?")
+            colour = "#1f4e9c" if known else "0.5"
+            note = ax.annotate(label, xy=(wl[k], top_frac[j]),
+                               xycoords=("data", "axes fraction"),
+                               xytext=(label_x[j], band), textcoords=("data", "axes fraction"),
+                               rotation=90, fontsize=6, ha="center", va="bottom",
+                               color=colour, arrowprops={"arrowstyle": "-", "color": colour,
+                                                         "lw": 0.4, "shrinkA": 0,
+                                                         "shrinkB": 1.5})
+            note.set_in_layout(False)  # inside the axes by construction
+        ax.set_ylim(ymin, ymax)
     ax.set_xlabel(f"wavelength ({identification.meta.get('medium', 'air')}, nm)")
     present = ", ".join(identification.present) or "none"
-    ax.set_title(f"Identified lines (species present: {present})")
+    ax.set_title(f"Identified lines (species present: {present}; {scale} intensity scale)")
     return save_figure(fig, path)
+
+
+QUOTABLE_TEMPERATURE = 0.25
+"""A Boltzmann temperature is quoted as a result only from at least three upper levels and
+with a relative error below this; otherwise the plot says it is not constrained."""
+
+
+def boltzmann_label(bp) -> str:
+    """Legend text of one species' Boltzmann fit: the species, and the temperature only
+    when it is a result (three or more upper levels, error below 25 %)."""
+    import numpy as np
+
+    n_levels = len(set(np.round(np.asarray(bp.energy_ev, float), 4)))
+    t, dt = bp.temperature_k, bp.temperature_err_k
+    if not (bp.corrected and np.isfinite(t)):
+        return f"{bp.species}: {bp.message}" if bp.message else f"{bp.species}: no temperature"
+    if n_levels < 3:
+        return f"{bp.species}: {n_levels} upper levels, too few for a temperature"
+    if not (np.isfinite(dt) and dt < QUOTABLE_TEMPERATURE * abs(t)):
+        rel = dt / abs(t) * 100 if np.isfinite(dt) and t else float("inf")
+        return f"{bp.species}: temperature not constrained (±{rel:.0f} %)"
+    return f"{bp.species}: T = {t:.0f} ± {dt:.0f} K ({n_levels} upper levels)"
 
 
 def plot_identify_boltzmann(plots, path) -> Path:
     """Boltzmann plot: ln(I λ / g A) against upper-level energy, with the fitted line.
 
-    ``plots`` is a BoltzmannPlot or a sequence of them (one per species).  Uncorrected
-    intensities are drawn as open symbols and no temperature is written.
+    ``plots`` is a BoltzmannPlot or a sequence of them (one per species).  Every legend
+    entry names its species.  A fit is drawn as a result (solid line, temperature in the
+    legend) only from three or more upper levels with a temperature error below 25 %;
+    otherwise it is drawn dotted and the legend says the temperature is not constrained.
+    Uncorrected intensities are drawn as open symbols and no temperature is written.
     """
     import numpy as np
 
     plots = [plots] if hasattr(plots, "energy_ev") else list(plots)
-    fig, ax = new_figure(figsize=(7, 4.5))
+    fig, ax = new_figure(figsize=(7.5, 4.5))
     for k, bp in enumerate(plots):
         colour = f"C{k}"
+        label = boltzmann_label(bp)
+        quotable = " T = " in label
         ax.errorbar(bp.energy_ev, bp.y, yerr=bp.y_err, fmt="o", ms=4, color=colour,
-                    mfc=colour if bp.corrected else "none", label=bp.species)
+                    mfc=colour if bp.corrected else "none", label=label)
         if bp.corrected and np.isfinite(bp.slope):
             x = np.linspace(np.min(bp.energy_ev), np.max(bp.energy_ev), 10)
-            label = (f"T = {bp.temperature_k:.0f} ± {bp.temperature_err_k:.0f} K"
-                     if np.isfinite(bp.temperature_k) else bp.message)
-            ax.plot(x, bp.intercept + bp.slope * x, color=colour, lw=1, label=label)
+            ax.plot(x, bp.intercept + bp.slope * x, color=colour,
+                    lw=1.2 if quotable else 0.8, ls="-" if quotable else ":")
     if plots and not all(bp.corrected for bp in plots):
         ax.annotate("intensities uncorrected for the spectral response: no temperature",
                     (0.02, 0.02), xycoords="axes fraction", fontsize=8, color="#c62828")
     ax.set_xlabel("upper-level energy (eV)")
-    ax.set_ylabel("ln(I λ / g A)  (arbitrary zero)")
+    ax.set_ylabel("ln(I λ / g A)  (arbitrary zero per species)")
     ax.set_title("Boltzmann plot")
-    ax.legend(fontsize="small", frameon=False)
+    ax.legend(fontsize="small", frameon=False, loc="best")
     return save_figure(fig, path)
 
 

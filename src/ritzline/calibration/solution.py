@@ -223,8 +223,10 @@ class Solution:
         ------
         SolutionFormatError
             Naming the file and the problem: missing, unreadable, not JSON, wrong schema or
-            version, a missing or wrong-typed field, a covariance of the wrong shape, or
-            non-finite numbers.
+            version, a missing or wrong-typed field, a covariance of the wrong shape, not
+            symmetric or not positive semi-definite, non-finite numbers, or coefficients
+            that do not reproduce the residuals and RMS stored with the matched lines (an
+            edited file).
         """
         path = Path(path)
         try:
@@ -239,7 +241,11 @@ class Solution:
             raise SolutionFormatError(
                 f"{path}: not a JSON solution file ({exc.msg} at line {exc.lineno})"
             ) from None
-        return cls.from_dict(doc, source=str(path))
+        solution = cls.from_dict(doc, source=str(path))
+        # a file carries its own checks: the stored residuals and RMS of the matched lines
+        _check_stored_residuals(solution, lambda problem: SolutionFormatError(
+            f"{path}: {problem}; re-create it with ritzline calibrate"))
+        return solution
 
     @classmethod
     def from_dict(cls, doc: Any, *, source: str = "solution") -> Solution:
@@ -318,6 +324,7 @@ class Solution:
         if not isinstance(meta, dict):
             raise bad("field 'meta' must be an object")
         line_cols = _lines_columns(lines, bad)
+        _check_covariance(cov, bad)
         instrument = None
         if doc.get("instrument") is not None:
             instrument = _instrument_from_dict(doc["instrument"], bad)
@@ -371,6 +378,42 @@ _LINE_FIELDS = {
     "used": bool,
     "reason": str,
 }
+
+
+def _check_covariance(cov: np.ndarray, bad) -> None:
+    """A covariance matrix is symmetric with no negative variance (positive semi-definite)."""
+    scale = float(np.max(np.abs(cov))) if cov.size else 0.0
+    if not np.allclose(cov, cov.T, rtol=1e-9, atol=1e-12 * scale):
+        raise bad("polynomial.covariance is not symmetric")
+    if np.any(np.diag(cov) < 0):
+        raise bad("polynomial.covariance has a negative variance on its diagonal")
+    if scale > 0 and np.linalg.eigvalsh(0.5 * (cov + cov.T)).min() < -1e-9 * scale:
+        raise bad("polynomial.covariance is not positive semi-definite (an impossible "
+                  "covariance: edited or damaged)")
+
+
+def _check_stored_residuals(solution: Solution, bad) -> None:
+    """The file stores, per matched line, ``residual_nm`` = fit minus reference and the RMS
+    of the used ones: the coefficients must reproduce them, or the file was edited."""
+    m = solution.lines
+    if not len(m["pixel"]):
+        return
+    fit = solution.wavelength(m["pixel"]) - m["wavelength_ref"]
+    tol = 1e-7 + 1e-9 * np.abs(m["wavelength_ref"])
+    off = np.abs(fit - m["residual_nm"])
+    if np.any(off > tol):
+        k = int(np.argmax(off - tol))
+        raise bad(
+            f"polynomial.coefficients do not reproduce the stored residual of the line at "
+            f"pixel {m['pixel'][k]:.2f} ({m['residual_nm'][k]:.6f} nm stored, "
+            f"{fit[k]:.6f} nm from the coefficients): the file was edited or damaged"
+        )
+    used = np.asarray(m["used"], bool)
+    if used.any():
+        rms = float(np.sqrt(np.mean(np.asarray(m["residual_nm"])[used] ** 2)))
+        if not math.isclose(rms, solution.rms_nm, rel_tol=1e-6, abs_tol=1e-9):
+            raise bad(f"rms_nm {solution.rms_nm:g} does not match the RMS of the used lines' "
+                      f"residuals ({rms:g} nm): the file was edited or damaged")
 
 
 def _numbers(value, name: str, bad) -> np.ndarray:
