@@ -176,7 +176,7 @@ class Solution:
                 "residual_nm": float(m["residual_nm"][i]),
                 "used": bool(m["used"][i]),
                 "reason": str(m["reason"][i]),
-                "exposure": int(m["exposure"][i]),
+                "exposure": int(m["exposure"][i]) if "exposure" in m else 0,
             }
             for i in range(len(m["pixel"]))
         ]
@@ -497,7 +497,7 @@ def _matches_table(lines: dict, solution: Solution):
     t["residual_pixel"] = lines["residual_nm"] / np.where(disp == 0, np.nan, disp) * u.pix
     t["used"] = lines["used"]
     t["reason"] = lines["reason"]
-    t["exposure"] = lines["exposure"]
+    t["exposure"] = lines["exposure"] if "exposure" in lines else np.zeros(len(t), int)
     t.meta.update(medium=solution.medium, lamps=list(solution.lamps))
     return t
 
