@@ -353,7 +353,7 @@ def _solution(det: Lines, ref: Refs, fit, lamps, medium, meta, verdict, info) ->
             f"{determined} map); the terms beyond come from the curvature prior")
     return Solution(
         coefficients=np.asarray(fit.coef, float),
-        covariance=np.asarray(fit.cov + _fit.jackknife_cov(det, ref, fit), float),
+        covariance=_symmetric(np.asarray(fit.cov + _fit.jackknife_cov(det, ref, fit), float)),
         n_pixels=n, medium=medium, lamps=tuple(lamps), lines=lines,
         rms_nm=float(np.sqrt(np.mean(resid[used] ** 2))),
         rms_pixel=float(np.sqrt(np.mean((resid[used] / disp[used]) ** 2))),
@@ -371,3 +371,9 @@ def _instrument(info: dict):
     except ImportError:
         return None
     return Instrument.from_dict(doc)
+
+
+def _symmetric(cov: np.ndarray) -> np.ndarray:
+    """A covariance matrix exactly symmetric (inversions leave rounding-level asymmetry, which a
+    saved solution file must not carry: its reader refuses asymmetric covariances)."""
+    return 0.5 * (cov + cov.T)
