@@ -207,3 +207,18 @@ def test_variance_follows_photon_transfer():
     # var = max(S - offset, 0)/gain + read^2 (photon transfer; common practice).
     inst = Instrument(n_pixels=10, offset=100.0, gain=4.0, read_noise=3.0)
     np.testing.assert_allclose(inst.variance([100.0, 500.0, 50.0]), [9.0, 109.0, 9.0])
+
+
+def test_an_instrument_is_not_applied_to_counts_it_does_not_describe():
+    # The same spectrometer's frame scaled by 1e-9 (a normalised export): the model's gain
+    # would make every line insignificant, so the noise is measured on the data instead.
+    rng = np.random.default_rng(11)
+    light, centres, _ = _lamp_like(rng)
+    counts, _ = read_out(light, rng, gain=2.0, read_noise=5.0, detector=Detector(offset=900.0))
+    inst = measure_instrument(counts)
+    assert inst.describes(counts)
+    assert not inst.describes(counts * 1e-9)
+    raw = find_lines(counts, instrument=inst)
+    scaled = find_lines(counts * 1e-9, instrument=inst)
+    assert scaled.meta["noise_model"]["method"] != "gain from the instrument model"
+    assert abs(len(scaled) - len(raw)) <= 1

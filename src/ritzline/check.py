@@ -1230,7 +1230,10 @@ class ExposureChecker:
         if method == "expected" and ref_fwhm:
             y = arrays.counts if ref.dark is None else arrays.counts - ref.dark
             variance = None
-            if hasattr(ref.instrument, "variance"):  # of the raw counts, offset included
+            # of the raw counts, offset included; not for counts the model does not describe
+            # (scaled or normalised files: their noise is measured instead)
+            if hasattr(ref.instrument, "variance") and ref.instrument.describes(
+                    arrays.counts, ~good):
                 variance = ref.instrument.variance(np.where(good, arrays.counts, 0.0))
             return measure_known_lines(
                 y, good, ref.pixel, ref_fwhm, saturation=sat_level, variance=variance,

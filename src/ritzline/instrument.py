@@ -126,6 +126,27 @@ class Instrument:
         """Median line-spread FWHM over the detector (px)."""
         return float(np.median(self.fwhm_at(np.linspace(0, self.n_pixels - 1, 65))))
 
+    def describes(self, counts, mask=None, *, factor: float = 10.0) -> bool:
+        """Whether these counts have the noise this model predicts (within ``factor`` in
+        variance) at their median level: the white noise from second differences (median
+        absolute deviation) against :meth:`variance`.  Scaled, normalised or differently
+        processed counts of the same spectrometer do not, and must not be weighted by it.
+        """
+        y = np.asarray(counts, float)
+        ok = np.isfinite(y) if mask is None else (~np.asarray(mask, bool) & np.isfinite(y))
+        if np.count_nonzero(ok) < 16:
+            return True
+        d2 = y[1:-1] - 0.5 * (y[:-2] + y[2:])
+        good = ok[1:-1] & ok[:-2] & ok[2:]
+        if np.count_nonzero(good) < 8:
+            return True
+        d = d2[good]
+        measured = (1.4826 * float(np.median(np.abs(d - np.median(d))))) ** 2 / 1.5
+        predicted = float(self.variance(np.median(y[ok])))
+        if not (measured > 0 and predicted > 0):
+            return measured == predicted
+        return 1.0 / factor <= measured / predicted <= factor
+
     def with_offset(self, offset: float, source: str) -> Instrument:
         """The same instrument with another electronic offset (e.g. re-measured per frame)."""
         return replace(self, offset=float(offset), sources={**self.sources, "offset": source})

@@ -248,6 +248,11 @@ def _noise_model(counts, bg, quiet, ref, sig_bg, *, gain, read_noise, offset, of
     floor = _quietest_variance(counts, quiet, a)
     given_rn = read_noise if read_noise is not None else (
         instrument.read_noise if instrument is not None else r_ob)
+    if instrument is not None and gain is None and not instrument.describes(
+            counts, ~quiet):
+        # These counts do not have the model's noise (scaled, normalised, another setting):
+        # its gain would weight them wrongly; estimate from the data instead.
+        instrument = None
     if gain is not None or instrument is not None:
         b = 1.0 / (gain if gain is not None else instrument.gain)
         rel = 0.0 if gain is not None else instrument.gain_rel_err

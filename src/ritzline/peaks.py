@@ -632,7 +632,7 @@ def _find_lines(spectrum, *, min_snr, fwhm_guess, saturation, gain, read_noise, 
 
     # Pass 1; in an uncrowded spectrum its residuals already give the slope (1/gain).
     diag = _fit_all(state, ctx, noise, final=False)
-    estimate_slope = gain is None and instrument is None
+    estimate_slope = gain is None and not noise.method.startswith("gain from the instrument")
     if estimate_slope:
         noise = _reestimate_slope(noise, diag)
     state, rejected = _prune(state, ctx, fwhm, 0.5 * min_snr, rejected, final=False)
