@@ -213,7 +213,7 @@ def test_an_instrument_is_not_applied_to_counts_it_does_not_describe():
     # The same spectrometer's frame scaled by 1e-9 (a normalised export): the model's gain
     # would make every line insignificant, so the noise is measured on the data instead.
     rng = np.random.default_rng(11)
-    light, centres, _ = _lamp_like(rng)
+    light, _, _ = _lamp_like(rng)
     counts, _ = read_out(light, rng, gain=2.0, read_noise=5.0, detector=Detector(offset=900.0))
     inst = measure_instrument(counts)
     assert inst.describes(counts)
