@@ -147,30 +147,29 @@ def reader_options(func):
     )(func)
 
 
-def figure_path(_ctx, _param, value: str | None):
-    """Click callback: a figure path whose suffix names a format ritzline writes."""
+def _checked_suffix(value: str | None, check) -> str | None:
+    """A click callback's body: ``value`` unchanged when ``check`` accepts its suffix."""
     if value is None:
         return None
-    from .plots import figure_format
-
     try:
-        figure_format(value)
+        check(value)
     except RitzlineError as exc:
         raise click.BadParameter(str(exc)) from None
     return value
+
+
+def figure_path(_ctx, _param, value: str | None):
+    """Click callback: a figure path whose suffix names a format ritzline writes."""
+    from .plots import figure_format
+
+    return _checked_suffix(value, figure_format)
 
 
 def table_path(_ctx, _param, value: str | None):
     """Click callback: a table path whose suffix names a format ritzline writes."""
-    if value is None:
-        return None
     from ._io import table_format
 
-    try:
-        table_format(value)
-    except RitzlineError as exc:
-        raise click.BadParameter(str(exc)) from None
-    return value
+    return _checked_suffix(value, table_format)
 
 
 def parse_wavelength_range(_ctx, _param, value: str | None):

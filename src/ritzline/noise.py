@@ -307,7 +307,7 @@ def _instrument_record(noise, n, fwhm, lsf_method, flags, given, offset_source, 
         read_noise = math.sqrt(noise.read_noise2())
     if not noise.b_rel_err < 0.82:
         flags.append("gain_unconstrained")
-    if "lsf" not in lsf_method and "default" in lsf_method:
+    if "default" in lsf_method:
         flags.append("fwhm_unconstrained")
     gain = min(max(1.0 / noise.b, 1e-6), 1e6)
     if gain > 1e3 or gain < 1e-3:

@@ -17,6 +17,7 @@ import numpy as np
 from scipy.special import ndtr
 
 from ._arrays import _cat, _median
+from .instrument import _cheb
 from .synthetic import FWHM_PER_SIGMA
 
 _SQRT2PI = np.sqrt(2.0 * np.pi)
@@ -705,8 +706,6 @@ def _measure_shape(state, ctx, noise, n_max=16):
     # A skew below 0.05 moves a centroid by less than a tenth of sigma and is as likely a
     # Lorentzian-wing or sampling mismatch: the symmetric profile stays.
     pix = np.linspace(0, ctx.n - 1, 65)
-    from .instrument import _cheb
-
     few = p.shape[0] < 6  # skew and wings from fewer lines would follow their noise
     # The skew must stand out of its line-to-line scatter (an empirical error that includes
     # what the fits of single lines do not know: neighbours, background, sampling).
@@ -724,8 +723,6 @@ def _measure_shape(state, ctx, noise, n_max=16):
 
 def _shape_from_coeffs(coeffs, n):
     fw_coef, skew_coef, eta = coeffs
-    from .instrument import _cheb
-
     pix = np.arange(n)
     sig = np.maximum(_cheb(fw_coef, pix, n), 0.5) / FWHM_PER_SIGMA
     alpha = np.clip(_cheb(skew_coef, pix, n), -_MAX_SKEW, _MAX_SKEW)
