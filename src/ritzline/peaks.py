@@ -494,11 +494,12 @@ def _find_lines(spectrum, *, min_snr, fwhm_guess, saturation, gain, read_noise, 
         # Within 3% of the level a pixel is treated as clipped: full-well (bloomed) pixels
         # scatter just below the nominal level and linearity is lost there (common practice).
         saturated_px = valid & (raw >= _SATURATION_MARGIN * float(saturation))
-        # Close small gaps in a clipped run (noise dips below the margin inside a bloom).
+        # Close small gaps in a clipped run (noise dips below the margin inside a bloom); a
+        # dip below the non-linear range separates two clipped lines.
         gap = saturated_px.copy()
         for k in (1, 2):
             gap[k:-k] |= saturated_px[: -2 * k] & saturated_px[2 * k :]
-        saturated_px = gap & valid
+        saturated_px = gap & valid & (raw >= _NONLINEAR * float(saturation))
     counts = raw - d_counts if dark is not None else raw
     counts = np.where(valid, counts, 0.0)
     meta["saturation"] = None if saturation is None else float(saturation)
@@ -602,7 +603,14 @@ def _find_lines(spectrum, *, min_snr, fwhm_guess, saturation, gain, read_noise, 
     # Each clipped run is one line (added below); no other candidate is taken inside a run or
     # within 1.5 FWHM of it.
     if saturated_px.any():
-        cand = cand[~_near_saturation(sat_zone, cand, fwhm, 1.0)]
+        # Beside a clipped run the filter peaks on the clipped line's own wings: a line
+        # there shows a maximum of its own in the counts.
+        beside = _near_saturation(sat_zone, cand, fwhm, 1.0)
+        peak = np.zeros(n, bool)
+        peak[1:-1] = (counts[1:-1] >= counts[:-2]) & (counts[1:-1] >= counts[2:])
+        peak &= ~sat_zone
+        own_max = peak[cand] | peak[np.maximum(cand - 1, 0)] | peak[np.minimum(cand + 1, n - 1)]
+        cand = cand[~sat_zone[cand] & (~beside | own_max)]
     cand_c = cand.astype(float)
     cand_f = f_mf[cand]
     clip_c, clip_f, clip_half, clip_level = _clipped_runs(counts, bg, saturated_px,
@@ -635,6 +643,16 @@ def _find_lines(spectrum, *, min_snr, fwhm_guess, saturation, gain, read_noise, 
     estimate_slope = gain is None and not noise.method.startswith("gain from the instrument")
     if estimate_slope:
         noise = _reestimate_slope(noise, diag)
+    # A one-pixel event (spike, hot pixel) may sit on a line: its pixel is masked and the
+    # component fitted again in pass 2, where it stands as a line or falls below the cut.
+    local_s = ctx.shape_at(np.clip(state.centre, 0, n - 1))[0]
+    spiky = state.one_pixel & (state.sigma < 0.75 * local_s) & ~state.saturated
+    spiky &= (state.centre > -0.5) & (state.centre < n - 0.5)
+    if spiky.any():
+        ok[np.rint(state.centre[spiky]).astype(int)] = False
+        rejected["spike"] += int(np.count_nonzero(spiky))
+        state.sigma[spiky] = local_s[spiky]
+        state.one_pixel[spiky] = False
     state, rejected = _prune(state, ctx, fwhm, 0.5 * min_snr, rejected, final=False)
     # The line shape along the detector, from the bright isolated lines of pass 1: pass 2
     # fits with it.  A width far from the one used for detection means searching again.
@@ -821,7 +839,8 @@ def _misfit_companions(state, local, snr_cut):
     The misfit scale is measured on the bright isolated lines: ``eps = sqrt(chi2 - dof) /
     snr`` (the share of a line's significance its best-fit residuals keep; 0 for a perfect
     profile), upper quartile over lines with snr > 30.  A component within 3 FWHM of a line
-    of significance ``S`` needs ``snr >= snr_cut + 3 eps S``.
+    of significance ``S`` needs ``snr >= snr_cut + 2 eps S``; a clipped line's ``S`` is its
+    flux over the flux error of its wing fit (its matched filter sees the wings only).
     """
     single = (state.group_size == 1) & (state.snr > 30) & ~state.saturated
     if np.count_nonzero(single) < 3 or state.centre.size < 2:
@@ -833,7 +852,10 @@ def _misfit_companions(state, local, snr_cut):
     c = state.centre
     near = np.abs(c[:, None] - c[None, :]) < 3.0 * np.maximum(local[:, None], local[None, :])
     np.fill_diagonal(near, False)
-    brighter = np.where(near, np.abs(state.snr)[None, :], 0.0).max(axis=1)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        sig = np.where(state.saturated & (state.flux_err > 0),
+                       np.abs(state.flux) / state.flux_err, np.abs(state.snr))
+    brighter = np.where(near, np.nan_to_num(sig)[None, :], 0.0).max(axis=1)
     return (state.snr < snr_cut + 2.0 * eps * brighter) & (brighter > state.snr)
 
 

@@ -293,12 +293,18 @@ def _levenberg_marquardt(fixed, b0, c, s, f, noise, tol, start=None):
         grad = (wj @ resid[:, :, None])[..., 0]
         diag = hess[:, on_diag, on_diag]
         dead = diag <= 0  # no information (e.g. a component over masked pixels only)
+        # A centre or width at its bound that the gradient pushes outwards is held there for
+        # this step (the others take the step the constrained problem allows), so the
+        # promised gain is that of a step that can be taken and a fit at a bound converges.
+        g_c, g_s = grad[:, 1::3], grad[:, 2::3]
+        dead[:, 1::3] |= ((c <= fx["c_lo"]) & (g_c < 0)) | ((c >= fx["c_hi"]) & (g_c > 0))
+        dead[:, 2::3] |= ((s <= fx["s_lo"]) & (g_s < 0)) | ((s >= fx["s_hi"]) & (g_s > 0))
         if dead.any():
             damp = hess + (lam[:, None] * np.where(dead, 1.0, diag))[:, :, None] * eye
             damp = np.where(dead[:, :, None] | dead[:, None, :], eye, damp)
             grad = np.where(dead, 0.0, grad)
         else:
-            damp = hess
+            damp = hess.copy()
             damp[:, on_diag, on_diag] = diag * (1.0 + lam[:, None])
         try:
             step = np.linalg.solve(damp, grad[..., None])[..., 0]
@@ -308,13 +314,17 @@ def _levenberg_marquardt(fixed, b0, c, s, f, noise, tol, start=None):
         nc = np.minimum(np.maximum(c + step[:, 1::3], fx["c_lo"]), fx["c_hi"])
         ns = np.minimum(np.maximum(s + step[:, 2::3], fx["s_lo"]), fx["s_hi"])
         nf = f + step[:, 3::3]
+        # The step actually taken (a bound may have shortened it) and the chi2 it promises.
+        step[:, 1::3] = nc - c
+        step[:, 2::3] = ns - s
+        predicted = (2.0 * np.einsum("gp,gp->g", step, grad)
+                     - np.einsum("gp,gpq,gq->g", step, hess, step))
         nmodel, njac, nfrac = _profile_and_jacobian(fx["edges"], nb0, nc, ns, nf,
                                                     fx.get("alpha"), fx.get("eta"))
         nres = fx["y"] - nmodel
         nchi2 = np.einsum("gl,gl->g", w * nres, nres)
         better = (nchi2 <= chi2) & active
         all_better = better.all()
-        predicted = np.einsum("gp,gp->g", step, grad)
         miss = chi2 - nchi2 - predicted
         done = (predicted < tol) | (better & (lam <= 1e-2) & (predicted < 25.0)
                                     & (2.25 * miss * miss < tol * predicted))
@@ -385,10 +395,11 @@ def _fit_batch(groups, state, ctx, noise, neighbours_model, tol, final):
     y = ctx.excess[xi] - others
 
     base_level = bg_glob + others
-    c_lo = groups.lo[:, None] - 0.5
-    c_hi = groups.hi[:, None] + 0.5
-    s_lo = np.where(sat, 0.999 * sig_lsf, 0.2 * sig_lsf)
-    s_hi = np.where(sat, 1.001 * sig_lsf,
+    # A clipped line peaks inside its clipped run.
+    c_lo = np.where(sat, state.run_centre[m] - state.run_half[m], groups.lo[:, None] - 0.5)
+    c_hi = np.where(sat, state.run_centre[m] + state.run_half[m], groups.hi[:, None] + 0.5)
+    s_lo = np.where(sat, sig_lsf, 0.4 * sig_lsf)
+    s_hi = np.where(sat, sig_lsf,
                     np.maximum(6.0 * sig_lsf, (groups.hi - groups.lo)[:, None] / 4.0))
     valid_f = valid.astype(float)
     fixed = {"y": y, "valid_f": valid_f, "edges": edges, "base_level": base_level,
