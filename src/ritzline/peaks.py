@@ -718,6 +718,15 @@ def _find_lines(spectrum, *, min_snr, fwhm_guess, saturation, gain, read_noise, 
     if state.centre.size and gone.size:
         _fit_all(state, ctx, noise, near=gone)
         state, rejected = _prune(state, ctx, fwhm, min_snr, rejected, final=True)
+    if lsf_known:
+        # A component still far wider than the LSF after pass 2 (a pair the first fit merged)
+        # is split once more and its group refitted; the pruning decides again.
+        split = _split_wide(state, ctx, min_snr)
+        added = split.centre.size - state.centre.size
+        if added:
+            state = split
+            _fit_all(state, ctx, noise, near=state.centre[-2 * added:])
+            state, rejected = _prune(state, ctx, fwhm, min_snr, rejected, final=True)
 
     # LSF estimate from the clean, isolated, bright lines.
     fw = FWHM_PER_SIGMA * state.sigma

@@ -522,11 +522,15 @@ class _State:
         return new
 
     def extend(self, centre, sigma, flux, saturated=False):
-        new = _State(_cat(self.centre, centre), _cat(self.sigma, sigma),
-                     _cat(self.flux, flux))
-        new.saturated = _cat(self.saturated, np.broadcast_to(saturated, np.shape(centre)))
-        for name in ("run_half", "run_centre", "run_flux", "run_clip"):
-            setattr(new, name, _cat(getattr(self, name), np.zeros(np.shape(centre))))
+        """These components and new ones (their other attributes zero until fitted)."""
+        k = np.size(centre)
+        given = {"centre": centre, "sigma": sigma, "flux": flux,
+                 "saturated": np.broadcast_to(saturated, (k,))}
+        new = object.__new__(_State)
+        new.__dict__.update({
+            name: np.concatenate([value, given[name] if name in given
+                                  else np.zeros(k, value.dtype)])
+            for name, value in self.__dict__.items()})
         return new
 
 
