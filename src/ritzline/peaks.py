@@ -48,7 +48,7 @@ __all__ = ["attach_wavelengths", "centroid_crlb", "find_lines", "line_background
 BAND_INCLUDED = "wavelength_err_includes_band"
 
 _DEFAULT_FWHM = 2.5  # px, used only when no line is bright enough to measure the LSF
-_MAX_WIDTH = 3.5  # components wider than this many LSF FWHM are rejected
+_MAX_WIDTH = 3.0  # components wider than this many LSF FWHM are rejected
 _SATURATION_MARGIN = 0.97
 _NONLINEAR = 0.9  # of the saturation level: pixels above are left out of fits
 

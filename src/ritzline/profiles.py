@@ -383,7 +383,8 @@ def _fit_batch(groups, state, ctx, noise, neighbours_model, tol, final):
     s = state.sigma[m]
     f = state.flux[m]
     edges = (groups.lo[:, None, None] - 0.5) + np.arange(length + 1.0)[None, None, :]
-    b0 = np.zeros(n_g)
+    # Each group's background offset starts where its members' last fits left it.
+    b0 = state.bg_offset[m].mean(axis=1)
     # The local line shape at each component: LSF sigma, skew, Lorentzian fraction.
     sig_lsf, alpha, eta = ctx.shape_at(c)
     # A clipped line keeps the LSF width: its unclipped wings fix centre and flux, not width.
