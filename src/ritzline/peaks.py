@@ -708,7 +708,9 @@ def _find_lines(spectrum, *, min_snr, fwhm_guess, saturation, gain, read_noise, 
         moved = abs(new_noise.b / noise.b - 1.0) > 0.1
         noise = new_noise
         if moved:
-            _fit_all(state, ctx, noise, tol=0.5)
+            # The fits have converged: one Gauss-Newton step with the new weights moves each
+            # to the new optimum (within a small fraction of its error) and renews the errors.
+            _fit_all(state, ctx, noise, tol=np.inf)
     before = state
     broad = []
     state, rejected = _prune(state, ctx, fwhm, min_snr, rejected, final=True, broad=broad)
