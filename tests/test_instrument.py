@@ -222,3 +222,63 @@ def test_an_instrument_is_not_applied_to_counts_it_does_not_describe():
     scaled = find_lines(counts * 1e-9, instrument=inst)
     assert scaled.meta["noise_model"]["method"] != "gain from the instrument model"
     assert abs(len(scaled) - len(raw)) <= 1
+
+
+def _bloomed_pair(rng, sep, *, fwhm=2.4, n=400):
+    """Two lines at about twice full well, ``sep`` px apart, on a detector that blooms."""
+    centres = np.array([200.3, 200.3 + sep])
+    light = line_profiles(n, centres, np.array([2.4e5, 2.0e5]), LineShape(fwhm=(fwhm,))) + 300.0
+    det = Detector(offset=1000.0, full_well=40000.0, adc_bits=16)
+    counts, truth = read_out(light, rng, gain=1.5, read_noise=6.0, detector=det)
+    return counts, centres, truth
+
+
+def test_two_clipped_lines_with_a_dip_between_are_two_lines():
+    # Blooming fills the pixels between two clipped lines, but the pixel between them falls
+    # well below full well: two clipped runs, not one (common practice: a clipped run is one
+    # line only while it stays at the clip level).
+    rng = np.random.default_rng(41)
+    counts, centres, truth = _bloomed_pair(rng, 7.2)
+    assert truth.bloomed.any()
+    t = find_lines(counts)
+    sat = np.asarray(["saturated" in f for f in t["flags"]])
+    px = np.asarray(t["pixel"])[sat]
+    assert px.size == 2
+    assert np.all(np.abs(np.sort(px) - centres) < 1.0)
+
+
+def test_line_beside_a_clipped_run_is_found_and_the_wings_make_no_lines():
+    # A line two FWHM from a clipped line with Lorentzian wings: the line is found, the clipped
+    # line's wings (rising monotonically into the run) make no line of their own.
+    rng = np.random.default_rng(42)
+    n, fwhm = 400, 4.0
+    shape = LineShape(fwhm=(fwhm,), lorentz_fraction=0.03)
+    centres = np.array([200.0, 209.0])
+    light = line_profiles(n, centres, np.array([3e5, 6e4]), shape) + 300.0
+    det = Detector(offset=1000.0, full_well=60000.0, adc_bits=16)
+    counts, truth = read_out(light, rng, gain=2.0, read_noise=5.0, detector=det)
+    assert truth.bloomed.any()
+    t = find_lines(counts)
+    px = np.asarray(t["pixel"])
+    assert len(t) == 2
+    assert np.abs(px - centres[1]).min() < 0.5
+    assert np.abs(px - centres[0]).min() < 1.0
+
+
+def test_a_spike_on_a_line_masks_a_pixel_not_the_line():
+    # A cosmic-ray hit far brighter than the faint, wide line it lands on: the component first
+    # fits as one pixel; that pixel is taken out and the line stays, centred within its error.
+    rng = np.random.default_rng(43)
+    n, fwhm = 500, 5.7
+    centres = np.array([150.0, 250.4, 350.0])
+    light = line_profiles(n, centres, np.array([5e4, 1300.0, 5e4]),
+                          LineShape(fwhm=(fwhm,))) + 400.0
+    counts, _ = read_out(light, rng, gain=1.0, read_noise=8.0,
+                         detector=Detector(offset=800.0))
+    counts[250] += 1500.0
+    t = find_lines(counts)
+    px = np.asarray(t["pixel"])
+    assert len(t) == 3
+    j = int(np.argmin(np.abs(px - centres[1])))
+    assert abs(px[j] - centres[1]) < 4 * t["pixel_err"][j]
+    assert t.meta["rejected"]["spike"] >= 1
