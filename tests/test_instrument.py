@@ -282,3 +282,16 @@ def test_a_spike_on_a_line_masks_a_pixel_not_the_line():
     j = int(np.argmin(np.abs(px - centres[1])))
     assert abs(px[j] - centres[1]) < 4 * t["pixel_err"][j]
     assert t.meta["rejected"]["spike"] >= 1
+
+
+def test_a_faint_flat_topped_line_on_a_large_offset_is_not_clipped():
+    # Three top pixels within 0.3 % of 1133 ADU look like a plateau only if the 1000-ADU offset
+    # is counted as signal: above the background they differ by several percent of the line.
+    rng = np.random.default_rng(44)
+    counts, _ = read_out(np.full(128, 50.0), rng, gain=1.0, read_noise=10.0,
+                         detector=Detector(offset=1000.0))
+    counts[58:63] += np.array([40.0, 75.0, 80.0, 78.0, 35.0])
+    counts[59:62] = [1130.0, 1133.0, 1132.0]
+    t = find_lines(counts, min_snr=3)
+    assert t.meta["saturation"] is None
+    assert len(t) >= 1 and np.abs(np.asarray(t["pixel"]) - 60.0).min() < 1.0

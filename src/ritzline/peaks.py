@@ -75,10 +75,12 @@ def _detect_saturation(counts, valid) -> float | None:
     """The saturation level, if the spectrum shows a clipped top.
 
     A clipped line is a plateau: three or more neighbouring pixels within 0.3 % of the
-    highest count (averaged scans and a full-well spread keep clipped values from being
-    exactly equal; the top 0.3 % of a Gaussian line spans a sixth of its sigma, so no line
-    narrower than 20 px has such a plateau).  Exactly repeated maxima, or two at a power of
-    two (an ADC's full scale), count too.  Returns the lowest value of the plateau pixels.
+    highest count above the spectrum's median (averaged scans and a full-well spread keep
+    clipped values from being exactly equal; the top 0.3 % of a Gaussian line spans a sixth
+    of its sigma, so no line narrower than 20 px has such a plateau).  Exactly repeated
+    maxima, or two at a power of two (an ADC's full scale), count too.  Only a top far above
+    the noise (30 sigma) can be clipped: a faint line on a large offset is not.  Returns the
+    lowest value of the plateau pixels.
     """
     if not valid.any():
         return None
@@ -86,7 +88,12 @@ def _detect_saturation(counts, valid) -> float | None:
     top = float(usable.max())
     if not top > 0:
         return None
-    near = usable >= top - 0.003 * abs(top)
+    base = float(_median(counts[valid]))
+    d = np.diff(counts[valid])
+    noise = 1.4826 * float(_median(np.abs(d - _median(d)))) / math.sqrt(2.0) if d.size else 0.0
+    if top - base <= 30.0 * noise:
+        return None
+    near = usable >= top - 0.003 * (top - base)
     run3 = near[:-2] & near[1:-1] & near[2:]
     if run3.any():
         plateau = near & (np.convolve(run3, np.ones(3), mode="full")[: near.size] > 0)
