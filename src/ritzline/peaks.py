@@ -650,16 +650,6 @@ def _find_lines(spectrum, *, min_snr, fwhm_guess, saturation, gain, read_noise, 
     estimate_slope = gain is None and not noise.method.startswith("gain from the instrument")
     if estimate_slope:
         noise = _reestimate_slope(noise, diag)
-    # A one-pixel event (spike, hot pixel) may sit on a line: its pixel is masked and the
-    # component fitted again in pass 2, where it stands as a line or falls below the cut.
-    local_s = ctx.shape_at(np.clip(state.centre, 0, n - 1))[0]
-    spiky = state.one_pixel & (state.sigma < 0.75 * local_s) & ~state.saturated
-    spiky &= (state.centre > -0.5) & (state.centre < n - 0.5)
-    if spiky.any():
-        ok[np.rint(state.centre[spiky]).astype(int)] = False
-        rejected["spike"] += int(np.count_nonzero(spiky))
-        state.sigma[spiky] = local_s[spiky]
-        state.one_pixel[spiky] = False
     state, rejected = _prune(state, ctx, fwhm, 0.5 * min_snr, rejected, final=False)
     # The line shape along the detector, from the bright isolated lines of pass 1: pass 2
     # fits with it.  A width far from the one used for detection means searching again.
@@ -892,6 +882,16 @@ def _prune(state, ctx, fwhm, snr_cut, rejected, *, final, broad=None):
     # A one-pixel event fits better as one pixel than as a line of the local width, and its
     # free width collapses (a real line's width follows the LSF).
     spike = state.one_pixel & (fw < 0.75 * local) & ~outside & ~state.saturated
+    if spike.any():
+        # The event's pixel leaves every later fit.  It may sit on a line: before the final
+        # pass the component stays, at the local width, to be fitted again without it.
+        ctx.ok[np.clip(np.rint(state.centre[spike]), 0, ctx.n - 1).astype(int)] = False
+        rejected["spike"] += int(np.count_nonzero(spike))
+        if not final:
+            state.sigma[spike] = local[spike] / FWHM_PER_SIGMA
+            state.one_pixel[spike] = False
+            fw = np.where(spike, local, fw)
+            spike[:] = False
     narrow = (fw < 0.5 * local) & ((0.5 * local - fw) > 2.0 * fw_err) & ~outside & ~spike
     # Far wider than the LSF: a background wiggle or a fit gone astray, not a line.
     wide = (fw > _MAX_WIDTH * local) & ~outside & ~narrow & ~spike & ~state.saturated
@@ -917,7 +917,6 @@ def _prune(state, ctx, fwhm, snr_cut, rejected, *, final, broad=None):
     weaker = np.where(state.flux[for_idx_a] < state.flux[for_idx_b], for_idx_a, for_idx_b)
     dup[weaker] = True
     dup &= ~drop
-    rejected["spike"] += int(np.count_nonzero(spike))
     if final:
         rejected["outside"] += int(np.count_nonzero(outside))
         rejected["too_narrow"] += int(np.count_nonzero(narrow))
