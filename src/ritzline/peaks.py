@@ -680,7 +680,10 @@ def _find_lines(spectrum, *, min_snr, fwhm_guess, saturation, gain, read_noise, 
         state = _split_wide(state, ctx, min_snr)
     # Background again, from the spectrum minus the fitted lines.
     lines_now = _lines_model(state, n, shape)
-    bg = _block_background(counts - lines_now, ok, max(12.0, 8.0 * fwhm), q=None)
+    # Beside a clipped run the model of the clipped line (its wings extrapolated under
+    # blooming) is no measure of the background: those pixels stay out of it.
+    bg_ok = ok & ~_near_saturation(sat_zone, np.arange(n), fwhm, 2.5) if sat_zone.any() else ok
+    bg = _block_background(counts - lines_now, bg_ok, max(12.0, 8.0 * fwhm), q=None)
     excess = counts - bg
     ctx = _Context(n=n, excess=excess, background=bg, ok=ok, sigma_lsf=sigma_lsf, shape=shape)
     # Residual search for components the first pass missed (close blends).
