@@ -867,7 +867,9 @@ def _misfit_companions(state, local, snr_cut):
         sig = np.where(state.saturated & (state.flux_err > 0),
                        np.abs(state.flux) / state.flux_err, np.abs(state.snr))
     brighter = np.where(near, np.nan_to_num(sig)[None, :], 0.0).max(axis=1)
-    return (state.snr < snr_cut + 2.0 * eps * brighter) & (brighter > state.snr)
+    # A clipped line is no companion: its matched filter sees only its wings.
+    return ((state.snr < snr_cut + 2.0 * eps * brighter) & (brighter > state.snr)
+            & ~state.saturated)
 
 
 def _prune(state, ctx, fwhm, snr_cut, rejected, *, final, broad=None):
