@@ -965,7 +965,9 @@ def _table_from_state(state, ctx, fwhm, meta, n, noise):
     # clipped over more pixels (one pixel of slack).  A fit beyond that bound extrapolates far
     # past the data (wings shaped by blooming or a neighbour): no honest error comes from it.
     peak_fit = st.flux / (_SQRT2PI * st.sigma)
-    reach = np.minimum(0.5 * ((st.run_half + 1.0) / st.sigma) ** 2, 50.0)
+    # A top beyond e^8 (3000) times the clip level is no line's: such a fit has followed the
+    # far tails of a bloom, where the profile carries no centroid.
+    reach = np.minimum(0.5 * ((st.run_half + 1.0) / st.sigma) ** 2, 8.0)
     failed = st.saturated & ~((np.abs(st.centre - st.run_centre) <= st.run_half + 0.5 * fw)
                               & (st.flux > 0) & (peak_fit <= st.run_clip * np.exp(reach))
                               & np.isfinite(centre_err) & (centre_err < st.run_half + 0.5))
