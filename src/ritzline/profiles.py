@@ -672,7 +672,7 @@ def _measure_shape(state, ctx, noise, n_max=16):
     mod, jac = model_and_jac(*params.T)
     w = vf / noise.variance(base + mod)
     chi2 = np.einsum("gl,gl->g", w * (y - mod), y - mod)
-    for _ in range(8):
+    for _ in range(5):
         wj = jac * w[:, None, :]
         hess = wj @ jac.transpose(0, 2, 1)
         grad = (wj @ (y - mod)[:, :, None])[..., 0]
