@@ -427,11 +427,17 @@ def find_lines(
     When the LSF had to be guessed and the fitted widths disagree by more than 10 %, the
     whole search runs once more with the measured width.
 
-    Pixels within 3 % of the saturation level (and their neighbours) form clipped runs; each
-    run is one ``saturated`` line measured from the run itself (centre from its ends, error
-    0.25 px + 0.15 px per clipped pixel for unknown blooming asymmetry, flux a lower bound
-    with 50 % error), and pixels
-    within 2.5 FWHM of a run are left out of other fits.
+    Pixels within 3 % of the saturation level form clipped runs (small gaps closed while they
+    stay above 90 % of it: a deeper dip separates two clipped lines); each run is one
+    ``saturated`` line fitted to its unclipped wings at the local line width, its centre
+    inside the run, so its error is measured.  A wing fit whose top would pass what the
+    run's length allows (or 3000 times the clip level) reports the run's middle with a
+    run-length error and the run's flux.  Beside a run, a candidate is kept only where the
+    counts show a maximum of their own, and the background is measured away from runs.
+
+    A component that fits better as one pixel than as a line of the local width (a spike, a
+    hot pixel) is rejected at any amplitude, and its pixel is left out of every later fit: a
+    line beneath it is fitted again without it.
     """
     shape = None
     if instrument is not None:
