@@ -295,3 +295,19 @@ def test_a_faint_flat_topped_line_on_a_large_offset_is_not_clipped():
     t = find_lines(counts, min_snr=3)
     assert t.meta["saturation"] is None
     assert len(t) >= 1 and np.abs(np.asarray(t["pixel"]) - 60.0).min() < 1.0
+
+
+def test_no_bright_unclipped_line_reports_a_runaway_error():
+    # The Cramer-Rao bound of a centroid is about sigma_LSF / SNR (textbook result for a
+    # Gaussian profile): for SNR >= 50 a fiftieth of the width.  Even with a conservative
+    # gain, an error bar beyond the line's own FWHM on a bright, unclipped line means a fit
+    # went astray (a blended pair pushed into a degenerate configuration).
+    rng = np.random.default_rng(45)
+    from ritzline.synthetic import realistic_lamp_exposure
+
+    for _ in range(6):
+        counts, _ = realistic_lamp_exposure(rng)
+        t = find_lines(counts)
+        bright = (np.asarray(t["snr"]) > 50) & np.asarray(
+            ["saturated" not in f for f in t["flags"]])
+        assert np.all(np.asarray(t["pixel_err"])[bright] < np.asarray(t["fwhm_pixel"])[bright])

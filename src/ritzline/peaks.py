@@ -714,27 +714,37 @@ def _find_lines(spectrum, *, min_snr, fwhm_guess, saturation, gain, read_noise, 
         moved = abs(new_noise.b / noise.b - 1.0) > 0.1
         noise = new_noise
         if moved:
-            # The fits have converged: one Gauss-Newton step with the new weights moves each
-            # to the new optimum (within a small fraction of its error) and renews the errors.
-            _fit_all(state, ctx, noise, tol=np.inf)
-    before = state
+            _fit_all(state, ctx, noise, tol=0.5)
     broad = []
-    state, rejected = _prune(state, ctx, fwhm, min_snr, rejected, final=True, broad=broad)
-    # A component dropped from a joint fit shared flux with its partners: refit those.
-    joint = before.group_size > 1
-    gone = np.setdiff1d(before.centre[joint], state.centre) if joint.any() else joint[:0]
-    if state.centre.size and gone.size:
-        _fit_all(state, ctx, noise, near=gone)
-        state, rejected = _prune(state, ctx, fwhm, min_snr, rejected, final=True)
+
+    def settle(state, rejected, broad=None):
+        """The final pruning; a component dropped from a joint fit shared flux with its
+        partners, so those are refitted (and pruned) again."""
+        before = state
+        state, rejected = _prune(state, ctx, fwhm, min_snr, rejected, final=True, broad=broad)
+        joint = before.group_size > 1
+        gone = np.setdiff1d(before.centre[joint], state.centre) if joint.any() else joint[:0]
+        if state.centre.size and gone.size:
+            _fit_all(state, ctx, noise, near=gone)
+            state, rejected = _prune(state, ctx, fwhm, min_snr, rejected, final=True)
+        return state, rejected
+
+    state, rejected = settle(state, rejected, broad)
     if lsf_known:
         # A component still far wider than the LSF after pass 2 (a pair the first fit merged)
-        # is split once more and its group refitted; the pruning decides again.
+        # is split once more and its group refitted.  The pair stays only when it beats the
+        # wide line by a significant chi2 (three more parameters: 11.3, p = 0.01), else the
+        # wide component (a tail, a shoulder) is kept as it was.
         split = _split_wide(state, ctx, min_snr)
         added = split.centre.size - state.centre.size
         if added:
-            state = split
-            _fit_all(state, ctx, noise, near=state.centre[-2 * added:])
-            state, rejected = _prune(state, ctx, fwhm, min_snr, rejected, final=True)
+            wide = np.setdiff1d(state.centre, split.centre)
+            chi2_before = _window_chi2(state, wide)
+            trial, rejected_trial = split, dict(rejected)
+            _fit_all(trial, ctx, noise, near=trial.centre[-2 * added:])
+            trial, rejected_trial = settle(trial, rejected_trial)
+            if _window_chi2(trial, wide) < chi2_before - 11.3 * added:
+                state, rejected = trial, rejected_trial
 
     # LSF estimate from the clean, isolated, bright lines.
     fw = FWHM_PER_SIGMA * state.sigma
@@ -779,6 +789,16 @@ def _find_lines(spectrum, *, min_snr, fwhm_guess, saturation, gain, read_noise, 
     if has_wavelength:
         table = attach_wavelengths(table, _AxisSolution(arr.axis))
     return table
+
+
+def _window_chi2(state, near, reach=3.0):
+    """Sum of the chi2 of the fit groups with a component within ``reach`` of its own FWHM
+    of the positions ``near`` (each group counted once)."""
+    if state.centre.size == 0:
+        return 0.0
+    hit = np.min(np.abs(state.centre[:, None] - np.asarray(near)[None, :]), axis=1)
+    sel = hit < reach * np.maximum(state.sigma, 1.0) * FWHM_PER_SIGMA
+    return float(np.sum(np.unique(state.chi2[sel])))
 
 
 def _near_saturation(sat_zone, idx, fwhm, reach_fwhm=1.5):
