@@ -199,11 +199,16 @@ def _reestimate_slope(noise, diag):
     if rel >= noise.b_rel_err and _FROM_RESIDUALS not in noise.method:
         return noise  # the background pinned b better
     if rel > 0.82:
-        # Fewer than 3 photon-dominated degrees of freedom: the data cannot tell the gain;
-        # keep the conservative start if larger.
-        if b_start > b:
+        # Fewer than 3 photon-dominated degrees of freedom: the data cannot tell the gain.
+        # The largest slope the residuals allow (two sigma above the estimate, the error
+        # taken at the bound itself), or the conservative start when that is smaller.
+        up = b
+        for _ in range(3):
+            v_up = a + up * delta
+            up = b + 2.0 * math.sqrt(2.0 / max(float(np.sum((delta / v_up) ** 2 * dof)), 1e-300))
+        if not up < b_start:
             return noise
-        rel = 0.82
+        b, rel = up, 0.82
     method = noise.method.split("; ")[0] + "; " + _FROM_RESIDUALS
     return replace(noise, b=float(b), method=method, b_rel_err=float(rel))
 
