@@ -181,9 +181,25 @@ def test_a_given_instrument_is_used_as_it_is():
     assert len(t) >= 0.9 * centres.size
 
 
+def test_a_width_that_rises_toward_both_ends_is_measured():
+    # A curved focal plane: widths grow toward both ends with no linear trend (FWHM
+    # 3 + 1.2 x^2 px); a weak first-order term must not stop the search for the curve.
+    rng = np.random.default_rng(9)
+    shape = LineShape(fwhm=(3.0, 0.0, 1.2))
+    light, centres, _ = _lamp_like(rng, shape=shape, fwhm=4.2, flux=(2e4, 5e5))
+    counts, _ = read_out(light, rng, gain=2.0, read_noise=5.0, detector=Detector(offset=300.0))
+    inst = Instrument.from_dict(find_lines(counts).meta["instrument"])
+    probe = np.array([centres.min(), 1500.0, centres.max()])
+    np.testing.assert_allclose(inst.fwhm_at(probe), shape.fwhm_at(probe, 3000), rtol=0.1)
+    # Beyond the measured lines the width holds its end values (no extrapolated polynomial).
+    lo, hi = inst.shape_span
+    assert inst.fwhm_at(0.0) == pytest.approx(float(inst.fwhm_at(lo)))
+    assert inst.fwhm_at(2999.0) == pytest.approx(float(inst.fwhm_at(hi)))
+
+
 def test_instrument_file_round_trip(tmp_path):
     inst = Instrument(n_pixels=2048, offset=1000.0, gain=2.5, read_noise=3.0,
-                      fwhm=(2.5, 0.2), asymmetry=(0.1,), wing=0.03,
+                      fwhm=(2.5, 0.2), asymmetry=(0.1,), wing=0.03, shape_span=(40.0, 2000.0),
                       sources={"gain": "given"}, flags=("offset_unconstrained",))
     path = inst.save(tmp_path / "inst.json")
     assert Instrument.load(path) == inst

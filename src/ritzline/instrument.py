@@ -55,6 +55,9 @@ class Instrument:
         sigma ``s (1 + a)``, the blue half ``s (1 - a)``).
     wing : float
         Lorentzian fraction of the line profile (pseudo-Voigt, same FWHM).
+    shape_span : (float, float), optional
+        Pixel range of the lines the shape was measured on: beyond it the FWHM and skew hold
+        their end values (None: the whole detector).
     sources : dict
         For each quantity, how it was obtained.
     flags : tuple of str
@@ -72,6 +75,7 @@ class Instrument:
     fwhm: tuple[float, ...] = (2.5,)
     asymmetry: tuple[float, ...] = (0.0,)
     wing: float = 0.0
+    shape_span: tuple[float, float] | None = None
     sources: dict = field(default_factory=dict)
     flags: tuple[str, ...] = ()
     gain_rel_err: float = 0.0
@@ -99,6 +103,13 @@ class Instrument:
         elif np.any(np.abs(_cheb(self.asymmetry, np.linspace(0, self.n_pixels - 1, 33),
                                  self.n_pixels)) >= 0.8):
             problems.append("asymmetry must stay within (-0.8, 0.8) across the detector")
+        if self.shape_span is not None:
+            lo, hi = (float(v) for v in self.shape_span)
+            if not (math.isfinite(lo) and math.isfinite(hi) and lo <= hi):
+                problems.append(f"shape_span must be two finite pixels, low to high, got "
+                                f"{self.shape_span!r}")
+            else:
+                object.__setattr__(self, "shape_span", (lo, hi))
         if problems:
             raise SolutionFormatError("invalid instrument model: " + "; ".join(problems))
         object.__setattr__(self, "fwhm", tuple(float(c) for c in self.fwhm))
@@ -113,13 +124,17 @@ class Instrument:
         return self.read_noise**2 + level / self.gain
 
     # -- the line shape ---------------------------------------------------------------
+    def _within_span(self, pixel):
+        p = np.asarray(pixel, float)
+        return p if self.shape_span is None else np.clip(p, *self.shape_span)
+
     def fwhm_at(self, pixel):
-        """Line-spread FWHM (px) at ``pixel``."""
-        return _cheb(self.fwhm, pixel, self.n_pixels)
+        """Line-spread FWHM (px) at ``pixel`` (held at its end values beyond ``shape_span``)."""
+        return _cheb(self.fwhm, self._within_span(pixel), self.n_pixels)
 
     def asymmetry_at(self, pixel):
         """Line skew ``a`` at ``pixel`` (0 = symmetric; > 0 = red tail)."""
-        return _cheb(self.asymmetry, pixel, self.n_pixels)
+        return _cheb(self.asymmetry, self._within_span(pixel), self.n_pixels)
 
     @property
     def median_fwhm(self) -> float:
@@ -164,6 +179,8 @@ class Instrument:
             "fwhm_chebyshev_px": list(self.fwhm),
             "asymmetry_chebyshev": list(self.asymmetry),
             "lorentzian_fraction": float(self.wing),
+            **({} if self.shape_span is None
+               else {"line_shape_span_px": [float(v) for v in self.shape_span]}),
             "sources": {str(k): str(v) for k, v in self.sources.items()},
             "flags": list(self.flags),
         }
@@ -191,6 +208,8 @@ class Instrument:
                 fwhm=tuple(float(c) for c in d["fwhm_chebyshev_px"]),
                 asymmetry=tuple(float(c) for c in d.get("asymmetry_chebyshev", [0.0])),
                 wing=float(d.get("lorentzian_fraction", 0.0)),
+                shape_span=(None if d.get("line_shape_span_px") is None
+                            else tuple(float(v) for v in d["line_shape_span_px"])),
                 sources=dict(d.get("sources", {})),
                 flags=tuple(str(f) for f in d.get("flags", [])),
                 gain_rel_err=float(d.get("gain_rel_err", 0.0)),

@@ -317,10 +317,11 @@ def _instrument_record(noise, n, fwhm, lsf_method, flags, given, offset_source, 
     gain = min(max(1.0 / noise.b, 1e-6), 1e6)
     if gain > 1e3 or gain < 1e-3:
         flags.append("not_raw_adu")
-    fw_coef, skew_coef, eta = shape if shape is not None else ((float(fwhm),), (0.0,), 0.0)
+    fw_coef, skew_coef, eta, span = (shape if shape is not None
+                                     else ((float(fwhm),), (0.0,), 0.0, None))
     inst = Instrument(n_pixels=max(int(n), 2), offset=float(offset), gain=gain,
                       read_noise=float(read_noise), fwhm=fw_coef, asymmetry=skew_coef,
-                      wing=float(eta), sources=sources,
+                      wing=float(eta), shape_span=span, sources=sources,
                       flags=tuple(flags),
                       gain_rel_err=float(min(noise.b_rel_err, 1.0)))
     return inst.to_dict()

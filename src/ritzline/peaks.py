@@ -441,7 +441,8 @@ def find_lines(
     """
     shape = None
     if instrument is not None:
-        shape = (instrument.fwhm, instrument.asymmetry, instrument.wing)
+        shape = (instrument.fwhm, instrument.asymmetry, instrument.wing,
+                 instrument.shape_span)
         if fwhm_guess is None:
             fwhm_guess = instrument.median_fwhm
     return _find_lines(spectrum, min_snr=min_snr, fwhm_guess=fwhm_guess,
@@ -663,8 +664,9 @@ def _find_lines(spectrum, *, min_snr, fwhm_guess, saturation, gain, read_noise, 
     if shape_coeffs is None and fwhm_guess is None:
         measured = _measure_shape(state, ctx, noise)
         if measured is not None:
-            fw_coef, skew_coef, eta, n_used = measured
-            shape = _shape_from_coeffs((fw_coef, skew_coef, eta), n)
+            *coeffs, n_used = measured
+            eta = coeffs[2]
+            shape = _shape_from_coeffs(coeffs, n)
             fw_new = shape.sigma * FWHM_PER_SIGMA
             med = float(_median(fw_new))
             shape_note = (f"line shape measured on {n_used} bright lines (FWHM "
@@ -674,12 +676,12 @@ def _find_lines(spectrum, *, min_snr, fwhm_guess, saturation, gain, read_noise, 
                 again = _find_lines(spectrum, min_snr=min_snr, fwhm_guess=med,
                                     saturation=saturation, gain=gain, read_noise=read_noise,
                                     dark=dark, offset=offset, instrument=instrument,
-                                    shape_coeffs=(fw_coef, skew_coef, eta), rerun=True,
+                                    shape_coeffs=tuple(coeffs), rerun=True,
                                     lsf_known=True)
                 again.meta["lsf_method"] = f"{lsf_method}; {shape_note}"
                 again.meta["instrument"]["sources"]["fwhm"] = again.meta["lsf_method"]
                 return again
-            shape_coeffs = (fw_coef, skew_coef, eta)
+            shape_coeffs = tuple(coeffs)
             lsf_known = True
             ctx = replace(ctx, shape=shape)
     if lsf_known:

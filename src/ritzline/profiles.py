@@ -608,10 +608,10 @@ def _cheb_fit(x, y, err, n_pixels, max_degree, bounds=(-np.inf, np.inf)):
         cov = np.linalg.pinv(a.T @ a) * max(float(resid @ resid) / dof, 1.0)
         curve = grid[:, : deg + 1] @ coef
         inside = bool(np.all((curve > bounds[0]) & (curve < bounds[1])))
+        # Every degree is tried: a curve with a weak linear term may still bend (widths
+        # that rise toward both ends), so an insignificant degree does not end the search.
         if deg == 0 or (inside and abs(coef[-1]) > 3.0 * math.sqrt(max(cov[-1, -1], 0))):
             best = tuple(float(c) for c in coef)
-        else:
-            break
     return best
 
 
@@ -732,12 +732,17 @@ def _measure_shape(state, ctx, noise, n_max=16):
     eta_err = float(1.0 / np.sqrt(np.sum(we)))
     if few or eta < 3.0 * eta_err or eta < 0.01:
         eta = 0.0
-    return fw_coef, skew_coef, min(eta, _MAX_WING), int(p.shape[0])
+    # The smooth functions hold their end values beyond the lines that measured them (a
+    # polynomial extrapolated past its data follows no spectrometer).
+    span = (float(p[:, 1].min()), float(p[:, 1].max()))
+    return fw_coef, skew_coef, min(eta, _MAX_WING), span, int(p.shape[0])
 
 
 def _shape_from_coeffs(coeffs, n):
-    fw_coef, skew_coef, eta = coeffs
-    pix = np.arange(n)
+    """The line shape per pixel from ``(fwhm, skew, eta, span)``: Chebyshev coefficients,
+    the Lorentzian fraction and the pixel span (or None) beyond which the values hold."""
+    fw_coef, skew_coef, eta, span = coeffs
+    pix = np.arange(n) if span is None else np.clip(np.arange(n), *span)
     sig = np.maximum(_cheb(fw_coef, pix, n), 0.5) / FWHM_PER_SIGMA
     alpha = np.clip(_cheb(skew_coef, pix, n), -_MAX_SKEW, _MAX_SKEW)
     skewed = bool(np.any(np.abs(alpha) > 0.005))
