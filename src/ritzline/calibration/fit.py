@@ -219,6 +219,93 @@ def _new_pairs(det: Lines, ref: Refs, fit: Fit, banned: set):
     return rows[ok], near[ok]
 
 
+def _group_pairs(det: Lines, ref: Refs, fit: Fit, banned: set):
+    """Identities no detection has alone but a group has jointly.
+
+    Far from the matched lines the map is uncertain mostly in a few smooth terms, which all
+    the detections there share: naming one of them pins those terms for the others.  Every
+    plausible identity of an unmatched detection is such a hypothesis: the map is conditioned
+    on it (one Gaussian update of the posterior), the other detections are named under the
+    conditioned map where ``ODDS`` allow, and the resulting set is scored by its marginal
+    likelihood under the current map against all its lines being unlisted.  The best set
+    joins when it is ``ODDS`` times likelier than every set that names one of its detections
+    or listed lines otherwise."""
+    like, z = _likelihoods(det, ref, fit)
+    free_d = ~np.isin(np.arange(det.pixel.size), fit.di)
+    free_r = ~np.isin(np.arange(ref.wavelength.size), fit.ri)
+    ok = (z < Z_WINDOW) & free_d[:, None] & free_r[None, :]
+    hd, hr = np.nonzero(ok)
+    keep = np.array([(int(d), int(r)) not in banned for d, r in zip(hd, hr, strict=True)], bool)
+    hd, hr = hd[keep], hr[keep]
+    if hd.size < 2:
+        return np.zeros(0, int), np.zeros(0, int)
+    n = det.n_pixels
+    x = xnorm(det.pixel, n)
+    v = _cheb.chebvander(x, len(fit.coef) - 1)
+    disp = np.abs(_cheb.chebval(x, _cheb.chebder(fit.coef))) * 2 / (n - 1)
+    cen2 = fit.scale * (det.pixel_err * disp) ** 2
+    ref2 = fit.scale * ref.wavelength_err**2
+    # conditioned posteriors, one per hypothesis (H x K and H x K x K)
+    vh = v[hd]
+    pv = vh @ fit.cov
+    s2 = np.einsum("hk,hk->h", pv, vh) + cen2[hd] + ref2[hr]
+    gain = pv / s2[:, None]
+    m1 = fit.coef[None, :] + gain * (ref.wavelength[hr] - vh @ fit.coef)[:, None]
+    p1 = fit.cov[None] - gain[:, :, None] * pv[:, None, :]
+    dd = np.flatnonzero(free_d)
+    mu = m1 @ v[dd].T
+    var = np.einsum("dk,hkl,dl->hd", v[dd], p1, v[dd]) + cen2[dd][None, :]
+    sd = np.sqrt(np.clip(var, 0, None))
+    tot = sd[:, :, None] ** 2 + ref2[None, None, :]
+    zz = np.abs(ref.wavelength[None, None, :] - mu[:, :, None]) / np.sqrt(tot)
+    zz = np.where(np.isfinite(z[dd])[None], zz, np.inf)
+    lk = np.exp(-0.5 * np.minimum(zz, 40.0) ** 2) / (math.sqrt(2 * math.pi) * np.sqrt(tot))
+    lk = np.where(np.isfinite(zz), lk, 0.0)
+    lk[:, :, ~free_r] = 0.0
+    near = np.argmin(zz, axis=2)
+    best = np.take_along_axis(lk, near[:, :, None], 2)[:, :, 0]
+    span = 2 * abs(float(fit.coef[1])) or 1.0
+    unlisted = UNLISTED * np.bincount(det.frame)[det.frame[dd]] / span
+    rivals = np.take_along_axis(lk.sum(axis=1), near, 1) - best
+    odds = best / np.maximum(lk.sum(axis=2) - best + unlisted[None, :] + rivals, 1e-300)
+    named = (np.take_along_axis(zz, near[:, :, None], 2)[:, :, 0] < Z_WINDOW) & (odds > ODDS)
+    sets = {}
+    for h in range(hd.size):
+        pairs = {(int(hd[h]), int(hr[h]))}
+        pairs |= {(int(d), int(r)) for d, r in zip(dd[named[h]], near[h, named[h]], strict=True)
+                  if d != hd[h] and (int(d), int(r)) not in banned}
+        ds, rs = zip(*sorted(pairs), strict=True)
+        if len(set(rs)) == len(rs):
+            sets[(ds, rs)] = None
+    scored = []
+    for ds, rs in sets:
+        di, ri = np.asarray(ds), np.asarray(rs)
+        vs = v[di]
+        c = vs @ fit.cov @ vs.T + np.diag(cen2[di] + ref2[ri])
+        r = ref.wavelength[ri] - vs @ fit.coef
+        sign, logdet = np.linalg.slogdet(2 * np.pi * c)
+        if sign <= 0:
+            continue
+        u = UNLISTED * np.bincount(det.frame)[det.frame[di]] / span
+        score = -0.5 * (r @ np.linalg.solve(c, r) + logdet) - float(np.sum(np.log(u)))
+        scored.append((score, di, ri))
+    if not scored:
+        return np.zeros(0, int), np.zeros(0, int)
+    scored.sort(key=lambda s: -s[0])
+    top, di, ri = scored[0]
+    if top < math.log(ODDS):  # not clearly better than every line being unlisted
+        return np.zeros(0, int), np.zeros(0, int)
+    # a pair joins unless a set nearly as likely names its detection or listed line otherwise
+    agreed = np.ones(di.size, bool)
+    for score, d2, r2 in scored[1:]:
+        if score < top - math.log(ODDS):
+            break
+        same_d = d2[None, :] == di[:, None]
+        same_r = r2[None, :] == ri[:, None]
+        agreed &= ~np.any(same_d ^ same_r, axis=1)
+    return di[agreed], ri[agreed]
+
+
 def _reject(det: Lines, ref: Refs, fit: Fit, model: Model, banned: set) -> Fit | None:
     """Drop, one at a time, matched lines the map through the others rejects: a residual
     beyond ``Z_REJECT`` (robust) sigma, or an identity no longer the likeliest at the
@@ -282,6 +369,8 @@ def grow(det: Lines, ref: Refs, di, ri, model: Model, *, max_rounds=40) -> Fit |
         if fit is None:
             return None
         nd, nr = _new_pairs(det, ref, fit, banned)
+        if nd.size == 0:
+            nd, nr = _group_pairs(det, ref, fit, banned)
         if nd.size == 0:
             break
         fit = fit_pairs(det, ref, np.r_[fit.di, nd], np.r_[fit.ri, nr], model, fit.dropped)
