@@ -20,9 +20,12 @@ from numpy.polynomial import chebyshev as _cheb
 from .inputs import Lines, Refs
 
 DEGREE = 5  # highest Chebyshev degree; what the lines cannot determine the prior holds
-# 1-sigma prior of |c_k / c_1| for k = 2, 3, 4, 5 (grating spectrometers depart from a
-# linear map by up to a few per cent of the span, common practice)
-CURVATURE_PRIOR = (0.02, 0.01, 0.0005, 0.0002)
+# 1-sigma prior of |c_k / c_1| for k = 2, 3, 4, 5.  Grating spectrometers depart from a
+# linear map by up to a few per cent of the span (common practice).  Expanding the grating
+# equation of a flat detector seen over +-theta (theta ~ 0.15 rad) in the normalised pixel,
+# each further term is smaller by about theta / (2 k): the 4th and 5th Chebyshev terms come
+# out below ~3e-5 of c_1 (derived here); the prior allows a few times that for aberrations.
+CURVATURE_PRIOR = (0.02, 0.01, 0.0001, 0.00005)
 Z_WINDOW = 4.0  # a detection joins a listed line within this many sigma of the prediction
 # lamp exposures show lines their list does not hold (impurities, ghosts, unlisted weak
 # lines): about this fraction of the detections (common practice)
@@ -30,9 +33,15 @@ UNLISTED = 0.1
 ODDS = 10.0  # an identity must be this much likelier than all the alternatives together
 Z_REJECT = 4.5  # a matched line leaves when its leave-one-out residual exceeds this
 Z_END = 3.0  # the outermost lines must lie this close to the map the other lines predict
-# a listed line whose flux, at the lamp's listed intensity scale, would be this many times
-# fainter than a detection is not a plausible identity for it
-IMPLAUSIBLE = 30.0
+# listed intensities are trusted to a factor e at best (lamp current, pressure and the
+# spectral response change them; common practice): the flux scatter used is never below
+LN_TRUST = 1.0
+# a listed line far fainter than the detection named after it keeps this fraction of its
+# likelihood: the list may be wrong about one line's strength
+BRIGHT_FLOOR = 0.01
+# a listed line a lamp does not show at all, whatever its listed intensity (common practice:
+# lists compiled from several sources hold lines a given lamp lacks)
+MISSING = 0.3
 
 
 @dataclass(frozen=True)
@@ -157,24 +166,34 @@ def predict(det: Lines, fit: Fit):
     return mu, np.sqrt(var + fit.scale * (det.pixel_err * disp) ** 2), disp
 
 
-def _flux_scale(det: Lines, ref: Refs, fit: Fit) -> dict:
-    """Detected flux per listed intensity, per species (median of the matched lines)."""
+def _flux_scale(det: Lines, ref: Refs, fit: Fit) -> tuple[dict, float]:
+    """Detected flux per listed intensity, per species (median of the matched lines), and
+    how far listed intensities can be trusted here: the robust scatter (in ln) of the
+    matched lines' flux about that scale, never below ``LN_TRUST``."""
     out = {}
     f, inten = det.flux[fit.di], ref.intensity[fit.ri]
     ok = np.isfinite(f) & (f > 0) & np.isfinite(inten) & (inten > 0)
+    dev = []
     for s in np.unique(ref.species[fit.ri][ok]):
         sel = ok & (ref.species[fit.ri] == s)
         if sel.sum() >= 3:
-            out[s] = float(np.median(f[sel] / inten[sel]))
-    return out
+            r = np.log(f[sel] / inten[sel])
+            out[s] = float(np.exp(np.median(r)))
+            dev.append(r - np.median(r))
+    spread = 1.4826 * float(np.median(np.abs(np.concatenate(dev)))) if dev else 0.0
+    return out, max(LN_TRUST, spread)
 
 
 def _likelihoods(det: Lines, ref: Refs, fit: Fit, mu=None, sd=None):
     """Likelihood (per nm) of every (detection, listed line) identity of the same exposure
-    given the predicted wavelengths ``mu`` +- ``sd`` (default: the fit's), and z.  Zero where
-    the listed line is an implausible identity (far too faint for the detection) or the
-    centroid is too poor to name a line (known to worse than an eighth of the LSF width:
-    its window would hold a neighbour half a width away)."""
+    given the predicted wavelengths ``mu`` +- ``sd`` (default: the fit's), and z.
+
+    A detection far brighter than a listed line should be (at the matched lines' flux per
+    listed intensity, beyond their own scatter) is a less likely identity for it: the
+    likelihood falls as a Gaussian in ln flux beyond one scatter, to a floor ``BRIGHT_FLOOR``
+    (the list may simply be wrong about a line).  Zero where the centroid is too poor to
+    name a line (known to worse than an eighth of the LSF width: its window would hold a
+    neighbour half a width away)."""
     if mu is None:
         mu, sd, _ = predict(det, fit)
     var = (sd**2)[:, None] + fit.scale * (ref.wavelength_err**2)[None, :]
@@ -182,14 +201,23 @@ def _likelihoods(det: Lines, ref: Refs, fit: Fit, mu=None, sd=None):
     z[det.frame[:, None] != ref.frame[None, :]] = np.inf
     fw = np.where(np.isfinite(det.lsf), det.lsf, det.fwhm_median)
     z[Z_WINDOW * det.pixel_err > 0.5 * fw] = np.inf
-    scale = _flux_scale(det, ref, fit)
-    if scale:
-        expected = np.array([scale.get(s, np.nan) for s in ref.species]) * ref.intensity
-        with np.errstate(invalid="ignore"):
-            z[expected[None, :] * IMPLAUSIBLE < det.flux[:, None]] = np.inf
     like = np.exp(-0.5 * np.minimum(z, 40.0) ** 2) / (math.sqrt(2 * math.pi) * np.sqrt(var))
     like[~np.isfinite(z)] = 0.0
-    return like, z
+    return like * _brightness(det, ref, fit), z
+
+
+def _brightness(det: Lines, ref: Refs, fit: Fit):
+    """Factor on the likelihood of each (detection, listed line) identity from the flux:
+    1 unless the detection is brighter than the listed line should be by more than the
+    measured scatter, then a Gaussian in ln flux down to ``BRIGHT_FLOOR``."""
+    scale, trust = _flux_scale(det, ref, fit)
+    if not scale:
+        return 1.0
+    expected = np.array([scale.get(s, np.nan) for s in ref.species]) * ref.intensity
+    with np.errstate(invalid="ignore", divide="ignore"):
+        excess = np.log(det.flux[:, None] / expected[None, :]) / trust - 1.0
+    excess = np.where(np.isfinite(excess), np.clip(excess, 0.0, None), 0.0)
+    return np.maximum(np.exp(-0.5 * excess**2), BRIGHT_FLOOR)
 
 
 def _odds(det: Lines, ref: Refs, fit: Fit, like, rows, cols) -> np.ndarray:
@@ -230,7 +258,8 @@ def _group_pairs(det: Lines, ref: Refs, fit: Fit, banned: set):
     likelihood under the current map against all its lines being unlisted.  The best set
     joins when it is ``ODDS`` times likelier than every set that names one of its detections
     or listed lines otherwise."""
-    like, z = _likelihoods(det, ref, fit)
+    _, z = _likelihoods(det, ref, fit)
+    bright = np.broadcast_to(_brightness(det, ref, fit), z.shape)
     free_d = ~np.isin(np.arange(det.pixel.size), fit.di)
     free_r = ~np.isin(np.arange(ref.wavelength.size), fit.ri)
     ok = (z < Z_WINDOW) & free_d[:, None] & free_r[None, :]
@@ -260,7 +289,7 @@ def _group_pairs(det: Lines, ref: Refs, fit: Fit, banned: set):
     zz = np.abs(ref.wavelength[None, None, :] - mu[:, :, None]) / np.sqrt(tot)
     zz = np.where(np.isfinite(z[dd])[None], zz, np.inf)
     lk = np.exp(-0.5 * np.minimum(zz, 40.0) ** 2) / (math.sqrt(2 * math.pi) * np.sqrt(tot))
-    lk = np.where(np.isfinite(zz), lk, 0.0)
+    lk = np.where(np.isfinite(zz), lk * bright[dd][None], 0.0)
     lk[:, :, ~free_r] = 0.0
     near = np.argmin(zz, axis=2)
     best = np.take_along_axis(lk, near[:, :, None], 2)[:, :, 0]
@@ -287,7 +316,8 @@ def _group_pairs(det: Lines, ref: Refs, fit: Fit, banned: set):
         if sign <= 0:
             continue
         u = UNLISTED * np.bincount(det.frame)[det.frame[di]] / span
-        score = -0.5 * (r @ np.linalg.solve(c, r) + logdet) - float(np.sum(np.log(u)))
+        score = -0.5 * (r @ np.linalg.solve(c, r) + logdet) + float(
+            np.sum(np.log(bright[di, ri] / u)))
         scored.append((score, di, ri))
     if not scored:
         return np.zeros(0, int), np.zeros(0, int)
@@ -423,7 +453,7 @@ def log10_chance(det: Lines, ref: Refs, fit: Fit, n_trials: int) -> float:
     detector count against the map: the chance is divided by the probability of missing
     that many under it.
     """
-    from scipy.stats import binom, gamma
+    from scipy.stats import gamma
 
     _, sd, disp = predict(det, fit)
     floor = sd + math.sqrt(fit.scale) * float(np.median(ref.wavelength_err))
@@ -448,39 +478,55 @@ def log10_chance(det: Lines, ref: Refs, fit: Fit, n_trials: int) -> float:
         return 0.0
     terms = np.concatenate(terms)
     log10_p = float(gamma.logsf(terms.sum(), terms.size)) / math.log(10)
-    k, m = _missing_strong(det, ref, fit)
-    if m >= 3 and k > 0:
-        log10_p -= float(binom.logsf(k - 1, m, 0.35)) / math.log(10)
+    log10_p -= _missing_chance(det, ref, fit) / math.log(10)
     return min(0.0, math.log10(max(n_trials, 1)) + log10_p)
 
 
-def _missing_strong(det: Lines, ref: Refs, fit: Fit) -> tuple[int, int]:
-    """How many listed lines the map puts on the detector that should be strong (30x the
-    faintest detections of their exposure, at the matched lines' flux per intensity), and
-    how many of them have no detection inside their window."""
-    scale = _flux_scale(det, ref, fit)
+def _missing_chance(det: Lines, ref: Refs, fit: Fit) -> float:
+    """ln of the probability, were the map right, of missing at least as many of the listed
+    lines it puts on the detector as are missing (no detection inside their window).
+
+    A listed line is missed with probability ``MISSING`` (lists hold lines a lamp does not
+    show) or when its flux, expected from the matched lines' flux per listed intensity and
+    trusted only to their measured scatter, falls below the faintest detections: lines whose
+    intensity is unknown, or far below the detection limit, weigh nothing."""
+    from scipy.stats import norm
+
+    scale, trust = _flux_scale(det, ref, fit)
     if not scale:
-        return 0, 0
+        return 0.0
     n = det.n_pixels
     expected = np.array([scale.get(s, np.nan) for s in ref.species]) * ref.intensity
     p = _pixel_of(fit, ref.wavelength, n)
     margin = 3 * (det.fwhm_median if math.isfinite(det.fwhm_median) else 3.0)
-    on = np.isfinite(p) & (p > margin) & (p < n - 1 - margin)
-    k = m = 0
+    on = np.isfinite(p) & (p > margin) & (p < n - 1 - margin) & np.isfinite(expected) & (
+        expected > 0)
+    prob, missed = [], []
     for f in np.unique(det.frame):
-        fl = det.flux[(det.frame == f) & np.isfinite(det.flux)]
-        if fl.size < 3:
+        fl = det.flux[(det.frame == f) & np.isfinite(det.flux) & (det.flux > 0)]
+        sel = on & (ref.frame == f)
+        if fl.size < 3 or not sel.any():
             continue
-        strong = on & (ref.frame == f) & (expected > IMPLAUSIBLE * np.percentile(fl, 10))
-        if not strong.any():
-            continue
+        limit = np.percentile(fl, 10)
+        pm = MISSING + (1 - MISSING) * norm.cdf(np.log(limit / expected[sel]) / trust)
         pf = det.pixel[det.frame == f]
-        tol = np.maximum(Z_WINDOW * np.interp(p[strong], det.pixel, predict(det, fit)[1])
-                         / np.abs(_dispersion(fit, p[strong], n)), 2 * margin / 3)
-        gap = np.min(np.abs(pf[None, :] - p[strong][:, None]), axis=1) if pf.size else tol + 1
-        m += int(strong.sum())
-        k += int(np.sum(gap > tol))
-    return k, m
+        tol = np.maximum(Z_WINDOW * np.interp(p[sel], det.pixel, predict(det, fit)[1])
+                         / np.abs(_dispersion(fit, p[sel], n)), 2 * margin / 3)
+        gap = np.min(np.abs(pf[None, :] - p[sel][:, None]), axis=1)
+        prob.append(pm)
+        missed.append(gap > tol)
+    if not prob:
+        return 0.0
+    prob, k = np.concatenate(prob), int(np.concatenate(missed).sum())
+    if k == 0:
+        return 0.0
+    # Poisson-binomial tail P(K >= k), by recursion over the lines
+    dist = np.zeros(prob.size + 1)
+    dist[0] = 1.0
+    for q in prob:
+        dist[1:] = dist[1:] * (1 - q) + dist[:-1] * q
+        dist[0] *= 1 - q
+    return float(np.log(max(dist[k:].sum(), 1e-300)))
 
 
 def _dispersion(fit: Fit, p, n):
