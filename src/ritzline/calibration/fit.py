@@ -234,30 +234,16 @@ def _odds(det: Lines, ref: Refs, fit: Fit, like, rows, cols) -> np.ndarray:
 
 
 def _new_pairs(det: Lines, ref: Refs, fit: Fit, banned: set):
-    """Detections whose nearest plausible listed line is inside the window, not yet matched,
-    and ``ODDS`` times likelier than all the alternatives together."""
-    like, z = _likelihoods(det, ref, fit)
-    if z.size == 0 or ref.wavelength.size < 2:
-        return np.zeros(0, int), np.zeros(0, int)
-    rows = np.arange(z.shape[0])
-    near = np.argmin(z, axis=1)
-    ok = (z[rows, near] < Z_WINDOW) & (_odds(det, ref, fit, like, rows, near) > ODDS)
-    ok &= ~np.isin(rows, fit.di) & ~np.isin(near, fit.ri)
-    ok &= np.array([(int(d), int(r)) not in banned for d, r in zip(rows, near, strict=True)])
-    return rows[ok], near[ok]
+    """Identities of unmatched detections, judged one hypothesis at a time but jointly.
 
-
-def _group_pairs(det: Lines, ref: Refs, fit: Fit, banned: set):
-    """Identities no detection has alone but a group has jointly.
-
-    Far from the matched lines the map is uncertain mostly in a few smooth terms, which all
+    Far from the matched lines the map is uncertain mostly in a few smooth terms that all
     the detections there share: naming one of them pins those terms for the others.  Every
-    plausible identity of an unmatched detection is such a hypothesis: the map is conditioned
-    on it (one Gaussian update of the posterior), the other detections are named under the
+    plausible identity of an unmatched detection is a hypothesis: the map is conditioned on
+    it (one Gaussian update of the posterior), the other detections are named under the
     conditioned map where ``ODDS`` allow, and the resulting set is scored by its marginal
     likelihood under the current map against all its lines being unlisted.  The best set
-    joins when it is ``ODDS`` times likelier than every set that names one of its detections
-    or listed lines otherwise."""
+    must be ``ODDS`` times likelier than that; of its pairs, those join that no set nearly as
+    likely (within ``ODDS``) names otherwise.  A lone detection is the one-member case."""
     _, z = _likelihoods(det, ref, fit)
     bright = np.broadcast_to(_brightness(det, ref, fit), z.shape)
     free_d = ~np.isin(np.arange(det.pixel.size), fit.di)
@@ -266,7 +252,7 @@ def _group_pairs(det: Lines, ref: Refs, fit: Fit, banned: set):
     hd, hr = np.nonzero(ok)
     keep = np.array([(int(d), int(r)) not in banned for d, r in zip(hd, hr, strict=True)], bool)
     hd, hr = hd[keep], hr[keep]
-    if hd.size < 2:
+    if hd.size < 1:
         return np.zeros(0, int), np.zeros(0, int)
     n = det.n_pixels
     x = xnorm(det.pixel, n)
@@ -399,8 +385,6 @@ def grow(det: Lines, ref: Refs, di, ri, model: Model, *, max_rounds=40) -> Fit |
         if fit is None:
             return None
         nd, nr = _new_pairs(det, ref, fit, banned)
-        if nd.size == 0:
-            nd, nr = _group_pairs(det, ref, fit, banned)
         if nd.size == 0:
             break
         fit = fit_pairs(det, ref, np.r_[fit.di, nd], np.r_[fit.ri, nr], model, fit.dropped)
