@@ -149,19 +149,6 @@ def initial_pairs(pairs: np.ndarray):
     return key[:, 0], key[:, 1]
 
 
-def pairs_along_cell(det: Lines, ref: Refs, pairs: np.ndarray, dispersion: float):
-    """One-to-one pairs closest to a linear map of the given dispersion (nm/px) through
-    the median offset of all the pairs; those further than twice the median distance are
-    left out."""
-    offset = ref.wavelength[pairs[:, 1]] - dispersion * det.pixel[pairs[:, 0]]
-    mid = np.median(offset)
-    key = _one_to_one(pairs, np.argsort(np.abs(offset - mid), kind="stable"))
-    dist = np.abs(ref.wavelength[key[:, 1]] - dispersion * det.pixel[key[:, 0]] - mid)
-    key = key[dist <= 2.0 * np.median(dist)]
-    key = key[np.argsort(key[:, 0])]
-    return key[:, 0], key[:, 1]
-
-
 def pair_starts(det: Lines, ref: Refs, wrange, *, max_lines=12, keep=20):
     """For lamps with few lines: every pair of strong detections taken as every pair of
     listed lines (both directions) inside the plausible dispersions gives a linear map;
