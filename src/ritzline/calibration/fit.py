@@ -242,9 +242,10 @@ def _new_pairs(det: Lines, ref: Refs, fit: Fit, banned: set):
     plausible identity of an unmatched detection is a hypothesis: the map is conditioned on
     it (one Gaussian update of the posterior), the other detections are named under the
     conditioned map where ``ODDS`` allow, and the resulting set is scored by its marginal
-    likelihood under the current map against all its lines being unlisted.  The best set
-    must be ``ODDS`` times likelier than that; of its pairs, those join that no set nearly as
-    likely (within ``ODDS``) names otherwise.  A lone detection is the one-member case."""
+    likelihood under the current map against all its lines being unlisted.  A pair of the
+    best set joins when the sets holding it are ``ODDS`` times likelier than that null and
+    every set naming its detection or listed line otherwise, together.  A lone detection is
+    the one-member case."""
     _, z = _likelihoods(det, ref, fit)
     bright = np.broadcast_to(_brightness(det, ref, fit), z.shape)
     free_d = ~np.isin(np.arange(det.pixel.size), fit.di)
@@ -310,16 +311,17 @@ def _new_pairs(det: Lines, ref: Refs, fit: Fit, banned: set):
         return np.zeros(0, int), np.zeros(0, int)
     scored.sort(key=lambda s: -s[0])
     top, di, ri = scored[0]
-    if top < math.log(ODDS):  # not clearly better than every line being unlisted
-        return np.zeros(0, int), np.zeros(0, int)
-    # a pair joins unless a set nearly as likely names its detection or listed line otherwise
-    agreed = np.ones(di.size, bool)
-    for score, d2, r2 in scored[1:]:
-        if score < top - math.log(ODDS):
-            break
+    # posterior odds of each pair of the best set: the sets naming it against every line
+    # unlisted and the sets naming its detection or listed line otherwise
+    support = np.zeros(di.size)
+    against = np.full(di.size, math.exp(-top))
+    for score, d2, r2 in scored:
+        w = math.exp(score - top)
         same_d = d2[None, :] == di[:, None]
         same_r = r2[None, :] == ri[:, None]
-        agreed &= ~np.any(same_d ^ same_r, axis=1)
+        support += w * np.any(same_d & same_r, axis=1)
+        against += w * np.any(same_d ^ same_r, axis=1)
+    agreed = support > ODDS * against
     return di[agreed], ri[agreed]
 
 
