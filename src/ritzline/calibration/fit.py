@@ -193,15 +193,15 @@ def _likelihoods(det: Lines, ref: Refs, fit: Fit, mu=None, sd=None):
     listed intensity, beyond their own scatter) is a less likely identity for it: the
     likelihood falls as a Gaussian in ln flux beyond one scatter, to a floor ``BRIGHT_FLOOR``
     (the list may simply be wrong about a line).  Zero where the centroid is too poor to
-    name a line (known to worse than a quarter of the LSF width: its window would be wider
-    than the line, and an unlisted blend partner could have moved it anywhere in it)."""
+    name a line (known to worse than an eighth of the LSF width: its window would hold a
+    neighbour half a width away)."""
     if mu is None:
         mu, sd, _ = predict(det, fit)
     var = (sd**2)[:, None] + fit.scale * (ref.wavelength_err**2)[None, :]
     z = np.abs(ref.wavelength[None, :] - mu[:, None]) / np.sqrt(var)
     z[det.frame[:, None] != ref.frame[None, :]] = np.inf
     fw = np.where(np.isfinite(det.lsf), det.lsf, det.fwhm_median)
-    z[Z_WINDOW * det.pixel_err > 1.0 * fw] = np.inf
+    z[Z_WINDOW * det.pixel_err > 0.5 * fw] = np.inf
     like = np.exp(-0.5 * np.minimum(z, 40.0) ** 2) / (math.sqrt(2 * math.pi) * np.sqrt(var))
     like[~np.isfinite(z)] = 0.0
     return like * _brightness(det, ref, fit), z
