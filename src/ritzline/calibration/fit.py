@@ -28,9 +28,9 @@ DEGREE = 5  # highest Chebyshev degree; what the lines cannot determine the prio
 # such designs sits at 2.2 sigma.
 CURVATURE_PRIOR = (0.02, 0.01, 0.0001, 0.00005)
 Z_WINDOW = 4.0  # a detection joins a listed line within this many sigma of the prediction
-# lamp exposures show lines their list does not hold (impurities, ghosts, unlisted weak
-# lines): about this fraction of the detections (common practice)
-UNLISTED = 0.1
+# lamp exposures show lines their list does not hold (impurities, second-order ghosts,
+# unlisted weak lines): 10-30 % of the detections (common practice); the middle is taken
+UNLISTED = 0.2
 ODDS = 10.0  # an identity must be this much likelier than all the alternatives together
 Z_REJECT = 4.5  # a matched line leaves when its leave-one-out residual exceeds this
 Z_END = 3.0  # the outermost lines must lie this close to the map the other lines predict
