@@ -4,6 +4,7 @@ listed intensities are trusted."""
 
 import numpy as np
 import pytest
+from astropy.table import Table
 from numpy.polynomial import chebyshev as cheb
 
 from ritzline.calibration import fit as F
@@ -150,3 +151,26 @@ def test_bright_listed_lines_on_empty_detector_count_against_a_map_faint_ones_do
     # fainter matched lines are all seen: a pattern unlikely were the map right
     assert cost(1e5) < np.log(0.05)
     assert cost(1e-3) > -1e-3  # far below the detection limit: simply not seen
+
+
+def test_a_line_as_broad_as_its_neighbours_is_no_blend_where_the_instrument_model_is_narrower():
+    # the instrument model's width (a constant 2.0 px) is too narrow at this end of the
+    # detector, where every line is 3 px wide: the lines themselves say what a single line
+    # looks like there (common practice: a blend is broader than the lines around it)
+    from ritzline.calibration.inputs import detections
+    from ritzline.instrument import Instrument
+
+    n = 2048
+    pixel = np.linspace(100, 2000, 12)
+    width = np.where(pixel > 1500, 3.0, 2.0)
+    table = Table({"pixel": pixel, "pixel_err": np.full(12, 0.02), "fwhm_pixel": width,
+                   "flux": np.full(12, 1e4), "snr": np.full(12, 100.0),
+                   "flags": np.full(12, "")})
+    table.meta["instrument"] = Instrument(n_pixels=n, offset=0.0, gain=1.0, read_noise=5.0,
+                                          fwhm=(2.0,)).to_dict()
+    lines, _ = detections(table, n)
+    assert np.all(lines.pixel_err == pytest.approx(0.02))  # no error widened as a blend
+    # a line twice as broad as its neighbours still is one
+    table["fwhm_pixel"][-1] = 6.0
+    lines, _ = detections(table, n)
+    assert lines.pixel_err[-1] > 0.5
