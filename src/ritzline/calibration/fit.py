@@ -20,19 +20,29 @@ from numpy.polynomial import chebyshev as _cheb
 from .inputs import Lines, Refs
 
 DEGREE = 5  # highest Chebyshev degree; what the lines cannot determine the prior holds
-# 1-sigma prior of |c_k / c_1| for k = 2, 3, 4, 5 (grating spectrometers depart from a
-# linear map by up to a few per cent of the span, common practice)
-CURVATURE_PRIOR = (0.02, 0.01, 0.0005, 0.0002)
+# 1-sigma prior of |c_k / c_1| for k = 2, 3, 4, 5.  Grating spectrometers depart from a
+# linear map by up to a few per cent of the span (common practice).  The grating equation
+# of a flat detector behind a 50-200 mm camera (300-1800 lines/mm, diffraction angles
+# 10-45 deg) gives |c_2| up to ~0.035, |c_3| ~0.005, |c_4| 3e-6 - 2e-4 and |c_5| <= 3e-5
+# of c_1 (derived here; tests/test_calibration_growth.py): the 4th term of the steepest
+# such designs sits at 2.2 sigma.
+CURVATURE_PRIOR = (0.02, 0.01, 0.0001, 0.00005)
 Z_WINDOW = 4.0  # a detection joins a listed line within this many sigma of the prediction
-# lamp exposures show lines their list does not hold (impurities, ghosts, unlisted weak
-# lines): about this fraction of the detections (common practice)
-UNLISTED = 0.1
+# lamp exposures show lines their list does not hold (impurities, second-order ghosts,
+# unlisted weak lines): 10-30 % of the detections (common practice); the middle is taken
+UNLISTED = 0.2
 ODDS = 10.0  # an identity must be this much likelier than all the alternatives together
 Z_REJECT = 4.5  # a matched line leaves when its leave-one-out residual exceeds this
 Z_END = 3.0  # the outermost lines must lie this close to the map the other lines predict
-# a listed line whose flux, at the lamp's listed intensity scale, would be this many times
-# fainter than a detection is not a plausible identity for it
-IMPLAUSIBLE = 30.0
+# listed intensities are trusted to a factor e at best (lamp current, pressure and the
+# spectral response change them; common practice): the flux scatter used is never below
+LN_TRUST = 1.0
+# a listed line far fainter than the detection named after it keeps this fraction of its
+# likelihood: the list may be wrong about one line's strength
+BRIGHT_FLOOR = 0.01
+# a listed line a lamp does not show at all, whatever its listed intensity (common practice:
+# lists compiled from several sources hold lines a given lamp lacks)
+MISSING = 0.3
 
 
 @dataclass(frozen=True)
@@ -157,24 +167,34 @@ def predict(det: Lines, fit: Fit):
     return mu, np.sqrt(var + fit.scale * (det.pixel_err * disp) ** 2), disp
 
 
-def _flux_scale(det: Lines, ref: Refs, fit: Fit) -> dict:
-    """Detected flux per listed intensity, per species (median of the matched lines)."""
+def _flux_scale(det: Lines, ref: Refs, fit: Fit) -> tuple[dict, float]:
+    """Detected flux per listed intensity, per species (median of the matched lines), and
+    how far listed intensities can be trusted here: the robust scatter (in ln) of the
+    matched lines' flux about that scale, never below ``LN_TRUST``."""
     out = {}
     f, inten = det.flux[fit.di], ref.intensity[fit.ri]
     ok = np.isfinite(f) & (f > 0) & np.isfinite(inten) & (inten > 0)
+    dev = []
     for s in np.unique(ref.species[fit.ri][ok]):
         sel = ok & (ref.species[fit.ri] == s)
         if sel.sum() >= 3:
-            out[s] = float(np.median(f[sel] / inten[sel]))
-    return out
+            r = np.log(f[sel] / inten[sel])
+            out[s] = float(np.exp(np.median(r)))
+            dev.append(r - np.median(r))
+    spread = 1.4826 * float(np.median(np.abs(np.concatenate(dev)))) if dev else 0.0
+    return out, max(LN_TRUST, spread)
 
 
 def _likelihoods(det: Lines, ref: Refs, fit: Fit, mu=None, sd=None):
     """Likelihood (per nm) of every (detection, listed line) identity of the same exposure
-    given the predicted wavelengths ``mu`` +- ``sd`` (default: the fit's), and z.  Zero where
-    the listed line is an implausible identity (far too faint for the detection) or the
-    centroid is too poor to name a line (known to worse than an eighth of the LSF width:
-    its window would hold a neighbour half a width away)."""
+    given the predicted wavelengths ``mu`` +- ``sd`` (default: the fit's), and z.
+
+    A detection far brighter than a listed line should be (at the matched lines' flux per
+    listed intensity, beyond their own scatter) is a less likely identity for it: the
+    likelihood falls as a Gaussian in ln flux beyond one scatter, to a floor ``BRIGHT_FLOOR``
+    (the list may simply be wrong about a line).  Zero where the centroid is too poor to
+    name a line (known to worse than an eighth of the LSF width: its window would hold a
+    neighbour half a width away)."""
     if mu is None:
         mu, sd, _ = predict(det, fit)
     var = (sd**2)[:, None] + fit.scale * (ref.wavelength_err**2)[None, :]
@@ -182,14 +202,23 @@ def _likelihoods(det: Lines, ref: Refs, fit: Fit, mu=None, sd=None):
     z[det.frame[:, None] != ref.frame[None, :]] = np.inf
     fw = np.where(np.isfinite(det.lsf), det.lsf, det.fwhm_median)
     z[Z_WINDOW * det.pixel_err > 0.5 * fw] = np.inf
-    scale = _flux_scale(det, ref, fit)
-    if scale:
-        expected = np.array([scale.get(s, np.nan) for s in ref.species]) * ref.intensity
-        with np.errstate(invalid="ignore"):
-            z[expected[None, :] * IMPLAUSIBLE < det.flux[:, None]] = np.inf
     like = np.exp(-0.5 * np.minimum(z, 40.0) ** 2) / (math.sqrt(2 * math.pi) * np.sqrt(var))
     like[~np.isfinite(z)] = 0.0
-    return like, z
+    return like * _brightness(det, ref, fit), z
+
+
+def _brightness(det: Lines, ref: Refs, fit: Fit):
+    """Factor on the likelihood of each (detection, listed line) identity from the flux:
+    1 unless the detection is brighter than the listed line should be by more than the
+    measured scatter, then a Gaussian in ln flux down to ``BRIGHT_FLOOR``."""
+    scale, trust = _flux_scale(det, ref, fit)
+    if not scale:
+        return 1.0
+    expected = np.array([scale.get(s, np.nan) for s in ref.species]) * ref.intensity
+    with np.errstate(invalid="ignore", divide="ignore"):
+        excess = np.log(det.flux[:, None] / expected[None, :]) / trust - 1.0
+    excess = np.where(np.isfinite(excess), np.clip(excess, 0.0, None), 0.0)
+    return np.maximum(np.exp(-0.5 * excess**2), BRIGHT_FLOOR)
 
 
 def _odds(det: Lines, ref: Refs, fit: Fit, like, rows, cols) -> np.ndarray:
@@ -206,17 +235,94 @@ def _odds(det: Lines, ref: Refs, fit: Fit, like, rows, cols) -> np.ndarray:
 
 
 def _new_pairs(det: Lines, ref: Refs, fit: Fit, banned: set):
-    """Detections whose nearest plausible listed line is inside the window, not yet matched,
-    and ``ODDS`` times likelier than all the alternatives together."""
-    like, z = _likelihoods(det, ref, fit)
-    if z.size == 0 or ref.wavelength.size < 2:
+    """Identities of unmatched detections, judged one hypothesis at a time but jointly.
+
+    Far from the matched lines the map is uncertain mostly in a few smooth terms that all
+    the detections there share: naming one of them pins those terms for the others.  Every
+    plausible identity of an unmatched detection is a hypothesis: the map is conditioned on
+    it (one Gaussian update of the posterior), the other detections are named under the
+    conditioned map where ``ODDS`` allow, and the resulting set is scored by its marginal
+    likelihood under the current map against all its lines being unlisted.  A pair of the
+    best set joins when the sets holding it are ``ODDS`` times likelier than that null and
+    every set naming its detection or listed line otherwise, together.  A lone detection is
+    the one-member case."""
+    _, z = _likelihoods(det, ref, fit)
+    bright = np.broadcast_to(_brightness(det, ref, fit), z.shape)
+    free_d = ~np.isin(np.arange(det.pixel.size), fit.di)
+    free_r = ~np.isin(np.arange(ref.wavelength.size), fit.ri)
+    ok = (z < Z_WINDOW) & free_d[:, None] & free_r[None, :]
+    hd, hr = np.nonzero(ok)
+    keep = np.array([(int(d), int(r)) not in banned for d, r in zip(hd, hr, strict=True)], bool)
+    hd, hr = hd[keep], hr[keep]
+    if hd.size < 1:
         return np.zeros(0, int), np.zeros(0, int)
-    rows = np.arange(z.shape[0])
-    near = np.argmin(z, axis=1)
-    ok = (z[rows, near] < Z_WINDOW) & (_odds(det, ref, fit, like, rows, near) > ODDS)
-    ok &= ~np.isin(rows, fit.di) & ~np.isin(near, fit.ri)
-    ok &= np.array([(int(d), int(r)) not in banned for d, r in zip(rows, near, strict=True)])
-    return rows[ok], near[ok]
+    n = det.n_pixels
+    x = xnorm(det.pixel, n)
+    v = _cheb.chebvander(x, len(fit.coef) - 1)
+    disp = np.abs(_cheb.chebval(x, _cheb.chebder(fit.coef))) * 2 / (n - 1)
+    cen2 = fit.scale * (det.pixel_err * disp) ** 2
+    ref2 = fit.scale * ref.wavelength_err**2
+    # conditioned posteriors, one per hypothesis (H x K and H x K x K)
+    vh = v[hd]
+    pv = vh @ fit.cov
+    s2 = np.einsum("hk,hk->h", pv, vh) + cen2[hd] + ref2[hr]
+    gain = pv / s2[:, None]
+    m1 = fit.coef[None, :] + gain * (ref.wavelength[hr] - vh @ fit.coef)[:, None]
+    p1 = fit.cov[None] - gain[:, :, None] * pv[:, None, :]
+    dd = np.flatnonzero(free_d)
+    mu = m1 @ v[dd].T
+    var = np.einsum("dk,hkl,dl->hd", v[dd], p1, v[dd]) + cen2[dd][None, :]
+    sd = np.sqrt(np.clip(var, 0, None))
+    tot = sd[:, :, None] ** 2 + ref2[None, None, :]
+    zz = np.abs(ref.wavelength[None, None, :] - mu[:, :, None]) / np.sqrt(tot)
+    zz = np.where(np.isfinite(z[dd])[None], zz, np.inf)
+    lk = np.exp(-0.5 * np.minimum(zz, 40.0) ** 2) / (math.sqrt(2 * math.pi) * np.sqrt(tot))
+    lk = np.where(np.isfinite(zz), lk * bright[dd][None], 0.0)
+    lk[:, :, ~free_r] = 0.0
+    near = np.argmin(zz, axis=2)
+    best = np.take_along_axis(lk, near[:, :, None], 2)[:, :, 0]
+    span = 2 * abs(float(fit.coef[1])) or 1.0
+    unlisted = UNLISTED * np.bincount(det.frame)[det.frame[dd]] / span
+    rivals = np.take_along_axis(lk.sum(axis=1), near, 1) - best
+    odds = best / np.maximum(lk.sum(axis=2) - best + unlisted[None, :] + rivals, 1e-300)
+    named = (np.take_along_axis(zz, near[:, :, None], 2)[:, :, 0] < Z_WINDOW) & (odds > ODDS)
+    sets = {}
+    for h in range(hd.size):
+        pairs = {(int(hd[h]), int(hr[h]))}
+        pairs |= {(int(d), int(r)) for d, r in zip(dd[named[h]], near[h, named[h]], strict=True)
+                  if d != hd[h] and (int(d), int(r)) not in banned}
+        ds, rs = zip(*sorted(pairs), strict=True)
+        if len(set(rs)) == len(rs):
+            sets[(ds, rs)] = None
+    scored = []
+    for ds, rs in sets:
+        di, ri = np.asarray(ds), np.asarray(rs)
+        vs = v[di]
+        c = vs @ fit.cov @ vs.T + np.diag(cen2[di] + ref2[ri])
+        r = ref.wavelength[ri] - vs @ fit.coef
+        sign, logdet = np.linalg.slogdet(2 * np.pi * c)
+        if sign <= 0:
+            continue
+        u = UNLISTED * np.bincount(det.frame)[det.frame[di]] / span
+        score = -0.5 * (r @ np.linalg.solve(c, r) + logdet) + float(
+            np.sum(np.log(bright[di, ri] / u)))
+        scored.append((score, di, ri))
+    if not scored:
+        return np.zeros(0, int), np.zeros(0, int)
+    scored.sort(key=lambda s: -s[0])
+    top, di, ri = scored[0]
+    # posterior odds of each pair of the best set: the sets naming it against every line
+    # unlisted and the sets naming its detection or listed line otherwise
+    support = np.zeros(di.size)
+    against = np.full(di.size, math.exp(-top))
+    for score, d2, r2 in scored:
+        w = math.exp(score - top)
+        same_d = d2[None, :] == di[:, None]
+        same_r = r2[None, :] == ri[:, None]
+        support += w * np.any(same_d & same_r, axis=1)
+        against += w * np.any(same_d ^ same_r, axis=1)
+    agreed = support > ODDS * against
+    return di[agreed], ri[agreed]
 
 
 def _reject(det: Lines, ref: Refs, fit: Fit, model: Model, banned: set) -> Fit | None:
@@ -334,7 +440,7 @@ def log10_chance(det: Lines, ref: Refs, fit: Fit, n_trials: int) -> float:
     detector count against the map: the chance is divided by the probability of missing
     that many under it.
     """
-    from scipy.stats import binom, gamma
+    from scipy.stats import gamma
 
     _, sd, disp = predict(det, fit)
     floor = sd + math.sqrt(fit.scale) * float(np.median(ref.wavelength_err))
@@ -359,39 +465,53 @@ def log10_chance(det: Lines, ref: Refs, fit: Fit, n_trials: int) -> float:
         return 0.0
     terms = np.concatenate(terms)
     log10_p = float(gamma.logsf(terms.sum(), terms.size)) / math.log(10)
-    k, m = _missing_strong(det, ref, fit)
-    if m >= 3 and k > 0:
-        log10_p -= float(binom.logsf(k - 1, m, 0.35)) / math.log(10)
+    log10_p -= _missing_chance(det, ref, fit) / math.log(10)
     return min(0.0, math.log10(max(n_trials, 1)) + log10_p)
 
 
-def _missing_strong(det: Lines, ref: Refs, fit: Fit) -> tuple[int, int]:
-    """How many listed lines the map puts on the detector that should be strong (30x the
-    faintest detections of their exposure, at the matched lines' flux per intensity), and
-    how many of them have no detection inside their window."""
-    scale = _flux_scale(det, ref, fit)
+def _missing_chance(det: Lines, ref: Refs, fit: Fit) -> float:
+    """ln of the probability, were the map right, of missing listed lines (no detection
+    inside the window) at least as unlikely as those it leaves missing.
+
+    A listed line is missed with probability ``MISSING`` (lists hold lines a lamp does not
+    show) or when its flux, expected from the matched lines' flux per listed intensity and
+    trusted only to their measured scatter, falls below the faintest detections: lines whose
+    intensity is unknown, or far below the detection limit, weigh nothing.  The statistic,
+    the summed ln probability of the missed lines, is a sum of independent two-valued terms
+    (a line seen adds nothing); its tail is taken as normal."""
+    from scipy.stats import norm
+
+    scale, trust = _flux_scale(det, ref, fit)
     if not scale:
-        return 0, 0
+        return 0.0
     n = det.n_pixels
     expected = np.array([scale.get(s, np.nan) for s in ref.species]) * ref.intensity
     p = _pixel_of(fit, ref.wavelength, n)
     margin = 3 * (det.fwhm_median if math.isfinite(det.fwhm_median) else 3.0)
-    on = np.isfinite(p) & (p > margin) & (p < n - 1 - margin)
-    k = m = 0
+    on = np.isfinite(p) & (p > margin) & (p < n - 1 - margin) & np.isfinite(expected) & (
+        expected > 0)
+    prob, missed = [], []
     for f in np.unique(det.frame):
-        fl = det.flux[(det.frame == f) & np.isfinite(det.flux)]
-        if fl.size < 3:
+        fl = det.flux[(det.frame == f) & np.isfinite(det.flux) & (det.flux > 0)]
+        sel = on & (ref.frame == f)
+        if fl.size < 3 or not sel.any():
             continue
-        strong = on & (ref.frame == f) & (expected > IMPLAUSIBLE * np.percentile(fl, 10))
-        if not strong.any():
-            continue
+        limit = np.percentile(fl, 10)
+        prob.append(MISSING + (1 - MISSING) * norm.cdf(np.log(limit / expected[sel]) / trust))
         pf = det.pixel[det.frame == f]
-        tol = np.maximum(Z_WINDOW * np.interp(p[strong], det.pixel, predict(det, fit)[1])
-                         / np.abs(_dispersion(fit, p[strong], n)), 2 * margin / 3)
-        gap = np.min(np.abs(pf[None, :] - p[strong][:, None]), axis=1) if pf.size else tol + 1
-        m += int(strong.sum())
-        k += int(np.sum(gap > tol))
-    return k, m
+        tol = np.maximum(Z_WINDOW * np.interp(p[sel], det.pixel, predict(det, fit)[1])
+                         / np.abs(_dispersion(fit, p[sel], n)), 2 * margin / 3)
+        missed.append(np.min(np.abs(pf[None, :] - p[sel][:, None]), axis=1) > tol)
+    if not prob:
+        return 0.0
+    q, m = np.clip(np.concatenate(prob), 1e-9, 1.0), np.concatenate(missed)
+    lq = np.log(q)
+    observed = float(np.sum(lq[m]))
+    mean = float(np.sum(q * lq))
+    sd = math.sqrt(float(np.sum(q * (1 - q) * lq**2)))
+    if sd == 0 or observed >= mean:
+        return 0.0
+    return float(norm.logcdf((observed - mean) / sd))
 
 
 def _dispersion(fit: Fit, p, n):

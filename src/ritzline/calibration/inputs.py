@@ -109,15 +109,22 @@ def detections(spectrum, n_pixels: int | None) -> tuple[Lines, dict]:
 
 
 def _local_lsf(p, fwhm, ok, n, instrument) -> np.ndarray:
-    """The LSF width expected at each line: the instrument model's when the line finder
-    gave one, else a robust quadratic through the lines' own widths along the detector."""
+    """The LSF width expected at each line: a robust quadratic through the lines' own widths
+    along the detector, or the instrument model's width where that is larger (the model is
+    extrapolated beyond its bright lines; a line is a blend only when broader than both)."""
+    own = _width_trend(p, fwhm, ok, n)
     if isinstance(instrument, dict):
         try:
             from ..instrument import Instrument
 
-            return np.asarray(Instrument.from_dict(instrument).fwhm_at(p), float)
+            model = np.asarray(Instrument.from_dict(instrument).fwhm_at(p), float)
+            return np.fmax(model, own)
         except Exception:
             pass
+    return own
+
+
+def _width_trend(p, fwhm, ok, n) -> np.ndarray:
     ok = ok & np.isfinite(fwhm) & (fwhm > 0)
     if ok.sum() < 4:
         med = np.nanmedian(fwhm) if np.isfinite(fwhm).any() else np.nan

@@ -149,19 +149,6 @@ def initial_pairs(pairs: np.ndarray):
     return key[:, 0], key[:, 1]
 
 
-def pairs_along_cell(det: Lines, ref: Refs, pairs: np.ndarray, dispersion: float):
-    """One-to-one pairs closest to a linear map of the given dispersion (nm/px) through
-    the median offset of all the pairs; those further than twice the median distance are
-    left out."""
-    offset = ref.wavelength[pairs[:, 1]] - dispersion * det.pixel[pairs[:, 0]]
-    mid = np.median(offset)
-    key = _one_to_one(pairs, np.argsort(np.abs(offset - mid), kind="stable"))
-    dist = np.abs(ref.wavelength[key[:, 1]] - dispersion * det.pixel[key[:, 0]] - mid)
-    key = key[dist <= 2.0 * np.median(dist)]
-    key = key[np.argsort(key[:, 0])]
-    return key[:, 0], key[:, 1]
-
-
 def pair_starts(det: Lines, ref: Refs, wrange, *, max_lines=12, keep=20):
     """For lamps with few lines: every pair of strong detections taken as every pair of
     listed lines (both directions) inside the plausible dispersions gives a linear map;
@@ -200,24 +187,25 @@ def pair_starts(det: Lines, ref: Refs, wrange, *, max_lines=12, keep=20):
         if d.size == 0:
             continue
         lam = lo[:, None] + d[:, None] * p[None, :]
-        j = np.clip(np.searchsorted(w, lam), 1, w.size - 1)
-        near = np.where(np.abs(lam - w[j - 1]) < np.abs(lam - w[j]), j - 1, j)
-        dist_px = np.abs(lam - w[near]) / np.abs(d)[:, None]
+        near, dist_px = _nearest(w, lam, d)
         bow = np.abs((x[None, :] - x[da][:, None]) * (x[None, :] - x[db][:, None]))
         tol = 2 * fw + 1.5 * CURVATURE_PRIOR[0] * (n - 1) * bow
-        hit = dist_px < tol
         cols = np.arange(p.size)[None, :]
-        hit &= (cols != da[:, None]) & (cols != db[:, None])
-        score = hit.sum(1) - 0.1 * np.where(hit, dist_px / tol, 0).sum(1)
+        hit = (dist_px < tol) & (cols != da[:, None]) & (cols != db[:, None])
         key = np.stack([np.round(np.log(np.abs(d)) / 0.01),
                         np.round((lo + d * (n - 1) / 2) / (0.002 * np.abs(d) * n))], 1)
         for k in map(tuple, np.unique(key[hit.sum(1) >= 1], axis=0)):
             cells[(direction, *k)] = True
+        # the chord bends: curvature through the two anchors, fitted to the lines it hit
+        lam = _bend(lam, w[near], hit, x, x[da], x[db], d * (n - 1) / 2, fw * np.abs(d))
+        near, dist_px = _nearest(w, lam, d)
+        fine = (cols != da[:, None]) & (cols != db[:, None]) & (dist_px < 2 * fw)
+        score = np.sum(np.where(fine, np.exp(-0.5 * (dist_px / fw) ** 2), 0.0), axis=1)
         top = np.argsort(-score)[: 4 * keep]
         for t in top:
-            if hit[t].sum() < 2:
+            if fine[t].sum() < 2:
                 break
-            m = np.flatnonzero(hit[t])
+            m = np.flatnonzero(fine[t])
             di = np.r_[strong[da[t]], strong[db[t]], strong[m]]
             ri = np.r_[ra[t], rb[t], near[t, m]]
             starts.append((float(score[t]), di, ri))
@@ -232,3 +220,25 @@ def pair_starts(det: Lines, ref: Refs, wrange, *, max_lines=12, keep=20):
         if len(out) >= keep:
             break
     return out, len(cells)
+
+
+def _nearest(w: np.ndarray, lam: np.ndarray, d: np.ndarray):
+    """Index of the listed line nearest each predicted wavelength, and the distance in
+    pixels (rows of ``lam`` have dispersions ``d``)."""
+    j = np.clip(np.searchsorted(w, lam), 1, w.size - 1)
+    near = np.where(np.abs(lam - w[j - 1]) < np.abs(lam - w[j]), j - 1, j)
+    return near, np.abs(lam - w[near]) / np.abs(d)[:, None]
+
+
+def _bend(lam, target, hit, x, xa, xb, c1, sig_nm):
+    """Chords bent by quadratic and cubic terms that keep their two anchors: the terms are
+    fitted (per row, under the curvature prior) to the listed lines the chord hit."""
+    g2 = (x[None, :] - xa[:, None]) * (x[None, :] - xb[:, None])
+    g = np.stack([g2, g2 * x[None, :]], axis=-1)  # rows x lines x 2
+    # (x - xa)(x - xb) carries 2 c2 of a Chebyshev map, x (x - xa)(x - xb) carries 4 c3
+    prior = np.abs(c1)[:, None] * np.array([2 * CURVATURE_PRIOR[0], 4 * CURVATURE_PRIOR[1]])
+    wgt = hit / sig_nm[:, None] ** 2
+    a = np.einsum("rl,rli,rlj->rij", wgt, g, g) + np.eye(2)[None] / prior[:, :, None] ** 2
+    b = np.einsum("rl,rli,rl->ri", wgt, g, target - lam)
+    q = np.linalg.solve(a, b[..., None])[..., 0]
+    return lam + np.einsum("rli,ri->rl", g, q)

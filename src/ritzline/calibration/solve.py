@@ -13,7 +13,7 @@ from numpy.polynomial import chebyshev as _cheb
 from ..errors import CalibrationError
 from . import fit as _fit
 from .inputs import Lines, Refs, detections, pooled, references
-from .search import initial_pairs, pair_starts, pairs_along_cell, vote_cells
+from .search import initial_pairs, pair_starts, vote_cells
 from .solution import Solution, _line_columns, _version
 
 DEFAULT_RANGE_NM = (200.0, 1100.0)
@@ -26,7 +26,6 @@ CONFIDENT_P = 1e-5
 CONFIDENT_P_GUESS = 1e-3
 MAX_CHI2 = 25.0  # residuals above 5x the measured centroid errors are not a solution
 MIN_LINES = 4  # a map checked by fewer lines is never returned without a guess
-WELL_GROWN = 8  # a candidate with this many lines needs no other start from its cell
 # a candidate this many orders of magnitude below chance (after the look-elsewhere factor)
 # ends the search: no other start could do better by enough to matter
 DECISIVE = 20.0
@@ -227,7 +226,7 @@ def _blind(det: Lines, refs_at, raw: Refs, wrange, degree):
             candidates.append((f, ref))
         return f
 
-    for _count, direction, pairs, d_cell in seeds:
+    for _count, _direction, pairs, d_cell in seeds:
         if candidates and min(c[0].log10_p for c in candidates) < -DECISIVE - math.log10(
                 max(n_cells, 1)):
             break
@@ -236,9 +235,7 @@ def _blind(det: Lines, refs_at, raw: Refs, wrange, degree):
             continue
         ref = refs_at(_resolution_key(fw_px * d_cell))
         pairs = np.stack([pairs[:, 0], _remap(raw, ref, pairs[:, 1])], 1)
-        f = try_start(ref, *initial_pairs(pairs))
-        if f is None or f.di.size < WELL_GROWN:
-            try_start(ref, *pairs_along_cell(det, ref, pairs, direction * d_cell))
+        try_start(ref, *initial_pairs(pairs))
     n_trials = n_cells
     best = min(candidates, key=lambda c: c[0].log10_p, default=None)
     if best is None or best[0].log10_p + math.log10(max(n_trials, 1)) > math.log10(
