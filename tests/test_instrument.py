@@ -327,3 +327,16 @@ def test_no_bright_unclipped_line_reports_a_runaway_error():
         bright = (np.asarray(t["snr"]) > 50) & np.asarray(
             ["saturated" not in f for f in t["flags"]])
         assert np.all(np.asarray(t["pixel_err"])[bright] < np.asarray(t["fwhm_pixel"])[bright])
+
+
+def test_hot_pixels_do_not_set_the_line_width():
+    # Hot pixels brighter than every line are one pixel wide; the line-spread width is that of
+    # the lines (5 px here), not of the hot pixels (common practice: a hot pixel is one pixel).
+    rng = np.random.default_rng(46)
+    light, centres, _ = _lamp_like(rng, fwhm=5.0, flux=(2e4, 4e4), n_lines=4)
+    det = Detector(offset=500.0, n_hot=3, hot_level=(2e3, 3e3), pattern_seed=3)
+    counts, _ = read_out(light, rng, gain=2.0, read_noise=5.0, detector=det)
+    t = find_lines(counts)
+    assert t.meta["lsf_fwhm_pixel"] == pytest.approx(5.0, rel=0.15)
+    px = np.asarray(t["pixel"])
+    assert all(np.abs(px - c).min() < 1.0 for c in centres)

@@ -584,6 +584,10 @@ def _find_lines(spectrum, *, min_snr, fwhm_guess, saturation, gain, read_noise, 
             pk = pk[iso]
         widths = _half_max_widths(excess, ok, pk) if pk.size else np.zeros(0)
         widths = widths[np.isfinite(widths) & (widths > 0.8)]
+        # A hot pixel or spike the mask missed is a peak one pixel wide (half-maximum width
+        # about 1 px): when three or more peaks are clearly wider, those are the lines.
+        if np.count_nonzero(widths > 1.25) >= 3:
+            widths = widths[widths > 1.25]
         if widths.size >= 1:
             # The narrowest well-populated widths are the lines; broad features (phosphor
             # bands, continuum humps) are far wider and stay out of the line width.
