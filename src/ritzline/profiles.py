@@ -719,14 +719,17 @@ def _measure_shape(state, ctx, noise, n_max=16):
                         bounds=(0.5 * med, 2.0 * med))
     few = p.shape[0] < 6  # skew and wings from fewer lines would follow their noise
     # The skew must stand out of its line-to-line scatter (an empirical error that includes
-    # what the fits of single lines do not know: neighbours, background, sampling).  No
-    # absolute floor: a skew of 0.05 moves a centroid by 0.08 sigma, many times the error of
-    # a bright line.
+    # what the fits of single lines do not know: neighbours, background, sampling).  A skew
+    # below 0.05 moves a centroid by less than a tenth of sigma and is as likely a
+    # Lorentzian-wing or sampling mismatch: the symmetric profile stays.
     sem = float(np.std(p[:, 4])) / math.sqrt(max(p.shape[0] - 1, 1))
     skew_coef = (0.0,)
     if not few and abs(float(np.median(p[:, 4]))) >= 3.0 * sem:
         skew_coef = _cheb_fit(p[:, 1], p[:, 4], np.maximum(e_p[:, 4], 1e-3), ctx.n, 2,
                               bounds=(-0.7, 0.7))
+        pix = np.linspace(0, ctx.n - 1, 65)
+        if np.max(np.abs(_cheb(skew_coef, pix, ctx.n))) < 0.05:
+            skew_coef = (0.0,)
     we = 1.0 / np.maximum(e_p[:, 5], 1e-4) ** 2
     eta = float(np.sum(we * p[:, 5]) / np.sum(we))
     eta_err = float(1.0 / np.sqrt(np.sum(we)))
