@@ -159,7 +159,8 @@ def _reestimate_slope(noise, diag):
     lamp spectrum, which only ever inflate residuals) the 30 % quantile of the normalised
     residuals is matched to chi-square instead.  The relative error of b comes from the
     Fisher information, ``2 / sum((b delta / v)^2 (1 - h))``; when the pixels cannot pin b
-    within 70 % the starting (conservative) value stays.
+    within 82 %, the largest slope they allow (two sigma above the estimate) is taken, or the
+    starting (conservative) value when that is smaller.
     """
     if not diag:
         return noise
@@ -193,9 +194,13 @@ def _reestimate_slope(noise, diag):
             b = b_new
             if done:
                 break
-    v = a + b * delta
-    k_eff = float(np.sum((b * delta / v) ** 2 * dof))
-    rel = math.sqrt(2.0 / k_eff) if k_eff > 0 else np.inf
+
+    def slope_sigma(bb):
+        """1-sigma error of the slope from the residuals' Fisher information at ``bb``."""
+        info = float(np.sum((delta / (a + bb * delta)) ** 2 * dof))
+        return math.sqrt(2.0 / info) if info > 0 else np.inf
+
+    rel = slope_sigma(b) / b
     if rel >= noise.b_rel_err and _FROM_RESIDUALS not in noise.method:
         return noise  # the background pinned b better
     if rel > 0.82:
@@ -204,8 +209,7 @@ def _reestimate_slope(noise, diag):
         # taken at the bound itself), or the conservative start when that is smaller.
         up = b
         for _ in range(3):
-            v_up = a + up * delta
-            up = b + 2.0 * math.sqrt(2.0 / max(float(np.sum((delta / v_up) ** 2 * dof)), 1e-300))
+            up = b + 2.0 * slope_sigma(up)
         if not up < b_start:
             return noise
         b, rel = up, 0.82

@@ -89,9 +89,7 @@ def _detect_saturation(counts, valid) -> float | None:
     if not top > 0:
         return None
     base = float(_median(counts[valid]))
-    d = np.diff(counts[valid])
-    noise = 1.4826 * float(_median(np.abs(d - _median(d)))) / math.sqrt(2.0) if d.size else 0.0
-    if top - base <= 30.0 * noise:
+    if top - base <= 30.0 * (_second_diff_sigma(counts, valid) or 0.0):
         return None
     near = usable >= top - 0.003 * (top - base)
     run3 = near[:-2] & near[1:-1] & near[2:]
