@@ -666,62 +666,69 @@ def _measure_shape(state, ctx, noise, n_max=16):
                        axis=1)
         return b0[:, None] + fx * frac, jac
 
-    params = np.stack([b0, c, s, f, a, e], axis=1)
-    lo = np.array([-np.inf, -np.inf, 0.05, -np.inf, -_MAX_SKEW, 0.0])
-    hi = np.array([np.inf, np.inf, np.inf, np.inf, _MAX_SKEW, _MAX_WING])
-    mod, jac = model_and_jac(*params.T)
-    w = vf / noise.variance(base + mod)
-    chi2 = np.einsum("gl,gl->g", w * (y - mod), y - mod)
-    for _ in range(5):
+    def fit(params, lo, hi, lam):
+        """Batched Levenberg-Marquardt within bounds; params, 1-sigma errors, usable."""
+        free = hi > lo  # a parameter held fixed has no error and takes no part
+        k = int(free.sum())
+        mod, jac = model_and_jac(*params.T)
+        jac = jac[:, free]
+        w = vf / noise.variance(base + mod)
+        chi2 = np.einsum("gl,gl->g", w * (y - mod), y - mod)
+        for _ in range(5):
+            wj = jac * w[:, None, :]
+            hess = wj @ jac.transpose(0, 2, 1)
+            grad = (wj @ (y - mod)[:, :, None])[..., 0]
+            d = hess[:, range(k), range(k)]
+            damp = hess + (lam[:, None] * np.maximum(d, 1e-300))[:, :, None] * np.eye(k)
+            try:
+                step = np.linalg.solve(damp, grad[..., None])[..., 0]
+            except np.linalg.LinAlgError:
+                break
+            trial = params.copy()
+            trial[:, free] = np.clip(params[:, free] + step, lo[free], hi[free])
+            nmod, njac = model_and_jac(*trial.T)
+            njac = njac[:, free]
+            nchi2 = np.einsum("gl,gl->g", w * (y - nmod), y - nmod)
+            better = nchi2 < chi2
+            gained = np.where(better, chi2 - nchi2, 0.0)
+            params = np.where(better[:, None], trial, params)
+            mod = np.where(better[:, None], nmod, mod)
+            jac = np.where(better[:, None, None], njac, jac)
+            chi2 = np.where(better, nchi2, chi2)
+            lam = np.where(better, np.maximum(lam * 0.3, 1e-6), np.minimum(lam * 10.0, 1e6))
+            w = vf / noise.variance(base + mod)
+            if np.all(gained < 0.1) and np.any(better):  # nothing left to gain
+                break
         wj = jac * w[:, None, :]
         hess = wj @ jac.transpose(0, 2, 1)
-        grad = (wj @ (y - mod)[:, :, None])[..., 0]
-        d = hess[:, range(6), range(6)]
-        damp = hess + (lam[:, None] * np.maximum(d, 1e-300))[:, :, None] * np.eye(6)
         try:
-            step = np.linalg.solve(damp, grad[..., None])[..., 0]
+            cov = np.linalg.inv(hess)
         except np.linalg.LinAlgError:
-            break
-        trial = np.clip(params + step, lo, hi)
-        nmod, njac = model_and_jac(*trial.T)
-        nchi2 = np.einsum("gl,gl->g", w * (y - nmod), y - nmod)
-        better = nchi2 < chi2
-        gained = np.where(better, chi2 - nchi2, 0.0)
-        params = np.where(better[:, None], trial, params)
-        mod = np.where(better[:, None], nmod, mod)
-        jac = np.where(better[:, None, None], njac, jac)
-        chi2 = np.where(better, nchi2, chi2)
-        lam = np.where(better, np.maximum(lam * 0.3, 1e-6), np.minimum(lam * 10.0, 1e6))
-        w = vf / noise.variance(base + mod)
-        if np.all(gained < 0.1) and np.any(better):  # nothing left to gain
-            break
-    wj = jac * w[:, None, :]
-    hess = wj @ jac.transpose(0, 2, 1)
-    try:
-        cov = np.linalg.inv(hess)
-    except np.linalg.LinAlgError:
-        cov = np.linalg.pinv(hess)
-    err = np.sqrt(np.maximum(cov[:, range(6), range(6)], 0))
-    dof = np.maximum(valid.sum(axis=1) - 6, 1)
-    err = err * np.sqrt(np.maximum(chi2 / dof, 1.0))[:, None]
-    # Fits that ran into a bound (or whose covariance failed) say nothing about the shape.
-    ok = (np.all(np.isfinite(err), axis=1) & (err[:, 2] > 0) & (params[:, 2] > 0.3 * s)
-          & (params[:, 2] < 3.0 * s) & (np.abs(params[:, 4]) < _MAX_SKEW - 1e-6)
-          & (params[:, 5] < _MAX_WING - 1e-6))
-    # No single line may dominate a smooth function: a floor of 1 % on each value's error.
-    err[:, 2] = np.maximum(err[:, 2], 0.01 * params[:, 2])
+            cov = np.linalg.pinv(hess)
+        err = np.zeros_like(params)
+        err[:, free] = np.sqrt(np.maximum(cov[:, range(k), range(k)], 0))
+        dof = np.maximum(valid.sum(axis=1) - k, 1)
+        err = err * np.sqrt(np.maximum(chi2 / dof, 1.0))[:, None]
+        # Fits that ran into a bound (or whose covariance failed) say nothing about the shape.
+        ok = (np.all(np.isfinite(err), axis=1) & (err[:, 2] > 0) & (params[:, 2] > 0.3 * s)
+              & (params[:, 2] < 3.0 * s) & ((np.abs(params[:, 4]) < _MAX_SKEW - 1e-6) | ~free[4])
+              & ((params[:, 5] < _MAX_WING - 1e-6) | ~free[5]))
+        # No single line may dominate a smooth function: a floor of 1 % on each value's error.
+        err[:, 2] = np.maximum(err[:, 2], 0.01 * params[:, 2])
+        return params, err, ok
+
+    start = np.stack([b0, c, s, f, a, e], axis=1)
+    lo = np.array([-np.inf, -np.inf, 0.05, -np.inf, -_MAX_SKEW, 0.0])
+    hi = np.array([np.inf, np.inf, np.inf, np.inf, _MAX_SKEW, _MAX_WING])
+    params, err, ok = fit(start, lo, hi, lam)
     if np.count_nonzero(ok) < 3:
         return None
-    p, e_p = params[ok], err[ok]
-    fw = FWHM_PER_SIGMA * p[:, 2]
-    med = float(_median(fw))
-    fw_coef = _cheb_fit(p[:, 1], fw, FWHM_PER_SIGMA * e_p[:, 2], ctx.n, 2,
-                        bounds=(0.5 * med, 2.0 * med))
-    few = p.shape[0] < 6  # skew and wings from fewer lines would follow their noise
+    few = np.count_nonzero(ok) < 6  # skew and wings from fewer lines would follow their noise
     # The skew must stand out of its line-to-line scatter (an empirical error that includes
     # what the fits of single lines do not know: neighbours, background, sampling).  A skew
     # below 0.05 moves a centroid by less than a tenth of sigma and is as likely a
     # Lorentzian-wing or sampling mismatch: the symmetric profile stays.
+    p, e_p = params[ok], err[ok]
     sem = float(np.std(p[:, 4])) / math.sqrt(max(p.shape[0] - 1, 1))
     skew_coef = (0.0,)
     if not few and abs(float(np.median(p[:, 4]))) >= 3.0 * sem:
@@ -735,6 +742,26 @@ def _measure_shape(state, ctx, noise, n_max=16):
     eta_err = float(1.0 / np.sqrt(np.sum(we)))
     if few or eta < 3.0 * eta_err or eta < 0.01:
         eta = 0.0
+    # A shape term the lines do not bear out is held at its value (zero, or the Lorentzian
+    # fraction found) and the widths measured again: with it free, each line's wings took
+    # part of its width (a blend's shoulders read as Lorentzian wings narrow the core).
+    held = [k for k, off in ((4, skew_coef == (0.0,)), (5, True)) if off]
+    if held:
+        lo2, hi2 = lo.copy(), hi.copy()
+        start = params.copy()
+        start[:, 4] = np.where(skew_coef == (0.0,), 0.0, params[:, 4])
+        start[:, 5] = eta
+        for k in held:
+            lo2[k] = hi2[k] = float(start[0, k])
+        params, err, ok2 = fit(start, lo2, hi2, np.full(g, 1e-2))
+        ok &= ok2
+        if np.count_nonzero(ok) < 3:
+            return None
+        p, e_p = params[ok], err[ok]
+    fw = FWHM_PER_SIGMA * p[:, 2]
+    med = float(_median(fw))
+    fw_coef = _cheb_fit(p[:, 1], fw, FWHM_PER_SIGMA * e_p[:, 2], ctx.n, 2,
+                        bounds=(0.5 * med, 2.0 * med))
     # The smooth functions hold their end values beyond the lines that measured them (a
     # polynomial extrapolated past its data follows no spectrometer).
     span = (float(p[:, 1].min()), float(p[:, 1].max()))

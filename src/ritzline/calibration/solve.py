@@ -11,6 +11,7 @@ import numpy as np
 from numpy.polynomial import chebyshev as _cheb
 
 from ..errors import CalibrationError
+from ..instrument import Instrument
 from . import fit as _fit
 from .inputs import Lines, Refs, detections, pooled, references
 from .search import initial_pairs, pair_starts, vote_cells
@@ -323,6 +324,13 @@ def _shifted(guess: Solution, shift: float) -> np.ndarray:
     return _cheb.chebfit(nodes, guess.wavelength(p - shift), deg)
 
 
+def _symmetric(cov) -> np.ndarray:
+    """Exactly symmetric (inversions leave rounding-level asymmetry, which the solution
+    file's reader refuses)."""
+    cov = np.asarray(cov, float)
+    return 0.5 * (cov + cov.T)
+
+
 def _solution(det: Lines, ref: Refs, fit, lamps, medium, meta, verdict, info) -> Solution:
     n = det.n_pixels
     dropped = list(fit.dropped.items())
@@ -350,7 +358,7 @@ def _solution(det: Lines, ref: Refs, fit, lamps, medium, meta, verdict, info) ->
             f"{determined} map); the terms beyond come from the curvature prior")
     return Solution(
         coefficients=np.asarray(fit.coef, float),
-        covariance=_symmetric(np.asarray(fit.cov + _fit.jackknife_cov(det, ref, fit), float)),
+        covariance=_symmetric(fit.cov + _fit.jackknife_cov(det, ref, fit)),
         n_pixels=n, medium=medium, lamps=tuple(lamps), lines=lines,
         rms_nm=float(np.sqrt(np.mean(resid[used] ** 2))),
         rms_pixel=float(np.sqrt(np.mean((resid[used] / disp[used]) ** 2))),
@@ -361,16 +369,4 @@ def _solution(det: Lines, ref: Refs, fit, lamps, medium, meta, verdict, info) ->
 
 def _instrument(info: dict):
     doc = info.get("instrument")
-    if not isinstance(doc, dict):
-        return None
-    try:
-        from ..instrument import Instrument
-    except ImportError:
-        return None
-    return Instrument.from_dict(doc)
-
-
-def _symmetric(cov: np.ndarray) -> np.ndarray:
-    """A covariance matrix exactly symmetric (inversions leave rounding-level asymmetry, which a
-    saved solution file must not carry: its reader refuses asymmetric covariances)."""
-    return 0.5 * (cov + cov.T)
+    return Instrument.from_dict(doc) if isinstance(doc, dict) else None
